@@ -1,0 +1,1 @@
+"""Plain TOML configs shipped with grainwright, one per data regime."""

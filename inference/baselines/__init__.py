@@ -1,0 +1,1 @@
+"""Classical denoisers by name (no torch); see ``registry.py``."""

@@ -1,0 +1,16 @@
+"""Check for PyTorch without importing it, so the torch-free half stays torch-free."""
+from __future__ import annotations
+
+import importlib.util
+
+from grainwright.inference.errors import GrainwrightError
+
+
+def require_torch(command: str) -> None:
+    """Raise a clear error when ``command`` needs PyTorch and it is not installed."""
+    if importlib.util.find_spec("torch") is None:
+        raise GrainwrightError(
+            f"'grainwright {command}' needs PyTorch, which is not installed here "
+            "(the runtime-only install has no torch). Install the training extra: "
+            "pip install -c constraints.txt 'grainwright[train]'"
+        )

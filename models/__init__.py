@@ -1,0 +1,1 @@
+"""grainwright's torch half, part one: denoising architectures by name, checkpoints and ONNX export."""

@@ -1,0 +1,60 @@
+"""The package shape: one grainwright.* namespace, a torch-free runtime half, one console command."""
+from __future__ import annotations
+
+import importlib.util
+import pkgutil
+import subprocess
+import sys
+
+import grainwright.inference
+
+BLOCK_TORCH = "import sys; sys.modules['torch'] = None\n"
+
+
+def _inference_modules() -> list[str]:
+    return [
+        info.name
+        for info in pkgutil.walk_packages(grainwright.inference.__path__, prefix="grainwright.inference.")
+        if not info.name.endswith("__main__")
+    ]
+
+
+def test_every_inference_module_imports_with_torch_blocked():
+    modules = _inference_modules()
+    assert "grainwright.inference.cli" in modules
+    script = BLOCK_TORCH + "".join(f"import {name}\n" for name in modules) + "print('ok')\n"
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "ok"
+
+
+def test_blocking_works_at_all():
+    # The block above is only a proof if importing torch really fails under it.
+    result = subprocess.run([sys.executable, "-c", BLOCK_TORCH + "import torch"], capture_output=True, text=True)
+    assert result.returncode != 0
+
+
+def test_no_bare_top_level_packages_installed():
+    for bare in ("models", "trainer", "inference", "configs"):
+        assert importlib.util.find_spec(bare) is None, f"'{bare}' must only exist as grainwright.{bare}"
+
+
+def test_help_lists_every_command_without_torch():
+    script = BLOCK_TORCH + "from grainwright.inference.cli import main\nmain(['--help'])\n"
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    for command in ("inspect", "train", "export", "info", "denoise", "compare", "demo", "bench"):
+        assert command in result.stdout
+
+
+def test_torch_command_without_torch_gives_clear_message(tmp_path):
+    script = BLOCK_TORCH + (
+        "import importlib.util\n"
+        "real = importlib.util.find_spec\n"
+        "importlib.util.find_spec = lambda name, *a: None if name == 'torch' else real(name, *a)\n"
+        "from grainwright.inference.cli import main\n"
+        f"sys.exit(main(['train', '--data', {str(tmp_path)!r}]))\n"
+    )
+    result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
+    assert result.returncode != 0
+    assert "needs PyTorch" in result.stderr

@@ -1,0 +1,1 @@
+"""grainwright's torch half, part two: data layouts, training schemes and the training loop."""
