@@ -1,0 +1,66 @@
+"""Denoising architectures by name.
+
+Adding an architecture is adding one file: a :class:`~grainwright.models.base.Denoiser` subclass with a ``name``,
+listed in ``MODELS`` below, plus its test (``tests/test_models*.py`` runs the shared checks on every entry).
+"""
+from __future__ import annotations
+
+import difflib
+import inspect
+from typing import Any
+
+from grainwright.inference.errors import ConfigError
+from grainwright.models.base import Denoiser
+from grainwright.models.residual import ResidualDenoiser
+from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
+from grainwright.models.unet_small import UNetSmallDenoiser
+
+MODELS: dict[str, type[Denoiser]] = {
+    cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser)
+}
+
+
+def _suggest(word: str, choices: list[str]) -> str:
+    close = difflib.get_close_matches(word, choices, n=1)
+    return f" (did you mean '{close[0]}'?)" if close else f" (known: {', '.join(sorted(choices))})"
+
+
+def architecture(name: str) -> type[Denoiser]:
+    """The class registered as ``name``; a clear error with a suggestion otherwise."""
+    if name not in MODELS:
+        raise ConfigError(f"unknown architecture '{name}'{_suggest(name, list(MODELS))}")
+    return MODELS[name]
+
+
+def hyper_defaults(name: str) -> dict[str, Any]:
+    """Default hyper-parameters of architecture ``name`` (constructor keywords besides ``channels``)."""
+    parameters = inspect.signature(architecture(name).__init__).parameters
+    return {key: p.default for key, p in parameters.items() if key not in ("self", "channels")}
+
+
+def build_model(name: str, channels: int, **hyper: Any) -> Denoiser:
+    """Build architecture ``name`` for ``channels`` image channels, randomly initialised.
+
+    Parameters
+    ----------
+    name : str
+        A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"`` or ``"unet-small"``.
+    channels : int
+        Image channels in and out (1 for grayscale, 3 for RGB, more for multi-band).
+    **hyper
+        Architecture hyper-parameters (e.g. ``depth``, ``width``, ``skip``); missing ones take their defaults.
+
+    Raises
+    ------
+    ConfigError
+        Unknown architecture or hyper-parameter (with a close-match suggestion), or a value out of range.
+    """
+    cls = architecture(name)
+    known = hyper_defaults(name)
+    for key in hyper:
+        if key not in known:
+            raise ConfigError(f"architecture '{name}' has no hyper-parameter '{key}'{_suggest(key, list(known))}")
+    try:
+        return cls(channels, **hyper)
+    except (ValueError, TypeError) as error:
+        raise ConfigError(f"architecture '{name}': {error}") from None
