@@ -1,0 +1,98 @@
+"""Seamless tiling: the tiled result equals the whole-image result, borders included."""
+from __future__ import annotations
+
+import functools
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from grainwright.inference.runner import Denoiser
+from grainwright.inference.tiling import (
+    MAX_OVERLAP_COST,
+    default_tile,
+    overlap_cost,
+    pad_to_alignment,
+    plan_tiles,
+    reflect_indices,
+    tile_margin,
+)
+from test_runner import NATIVE_HIGH, build_conv_model
+
+_MODEL_DIR = Path(tempfile.mkdtemp(prefix="grainwright-tiling-"))
+
+
+@functools.cache
+def _graph_denoiser(channels: int, pooled: bool, noise_map: bool) -> Denoiser:
+    name = f"c{channels}-p{int(pooled)}-m{int(noise_map)}.onnx"
+    path = build_conv_model(_MODEL_DIR / name, channels=channels, pooled=pooled, noise_map=noise_map,
+                            layers=3, width=4, seed=channels)
+    return Denoiser(path, threads=1, noise_sigma=30.0)
+
+
+@given(extra=st.integers(0, 40), size=st.integers(1, 9))
+def test_reflect_indices_match_numpy_reflect_padding(extra, size):
+    # Reference: numpy.pad(mode="reflect"), which a whole-image run of an exported model is padded with.
+    signal = np.arange(size)
+    expected = np.pad(signal, (0, extra), mode="reflect")
+    np.testing.assert_array_equal(signal[reflect_indices(size + extra, size)], expected)
+
+
+@given(
+    height=st.integers(1, 90), width=st.integers(1, 90), tile=st.integers(1, 40),
+    radius=st.integers(0, 6), alignment=st.sampled_from([1, 2, 4, 8]),
+)
+def test_plan_covers_every_pixel_once_with_aligned_equal_windows(height, width, tile, radius, alignment):
+    margin = tile_margin(2 * radius + 1, alignment)
+    plan = plan_tiles(height, width, tile=tile, margin=margin, alignment=alignment)
+    covered = np.zeros((height, width), int)
+    shapes = set()
+    for t in plan.tiles:
+        y0, y1, x0, x1 = t.window
+        ky0, ky1, kx0, kx1 = t.keep
+        shapes.add((y1 - y0, x1 - x0))
+        assert y0 % alignment == x0 % alignment == 0 and (y1 - y0) % alignment == (x1 - x0) % alignment == 0
+        assert 0 <= y0 and y1 <= plan.padded_height and 0 <= x0 and x1 <= plan.padded_width
+        # Each kept pixel is at least the margin away from any window edge that is not an image border.
+        assert y0 == 0 or ky0 - y0 >= margin
+        assert x0 == 0 or kx0 - x0 >= margin
+        assert y1 == plan.padded_height or y1 - ky1 >= margin
+        assert x1 == plan.padded_width or x1 - kx1 >= margin
+        covered[ky0:ky1, kx0:kx1] += 1
+    assert len(shapes) == 1
+    assert np.all(covered == 1)
+
+
+@pytest.mark.parametrize("receptive_field", [3, 21, 41, 81])
+def test_default_tile_keeps_overlap_cost_within_budget(receptive_field):
+    margin = tile_margin(receptive_field, 4)
+    tile = default_tile(margin, 4)
+    assert overlap_cost(tile, margin) <= MAX_OVERLAP_COST
+    assert tile % 16 == 0 and tile % 4 == 0
+
+
+def test_pad_to_alignment_is_numpy_reflect():
+    image = np.arange(5 * 7).reshape(5, 7, 1)
+    expected = np.pad(image, ((0, 3), (0, 1), (0, 0)), mode="reflect")
+    np.testing.assert_array_equal(pad_to_alignment(image, 8)[:, :8], expected)
+
+
+@settings(max_examples=25, deadline=None)
+@given(
+    height=st.integers(1, 70), width=st.integers(1, 70), tile=st.integers(1, 48),
+    channels=st.sampled_from([1, 2, 3]), pooled=st.booleans(), noise_map=st.booleans(),
+    ensemble=st.sampled_from([1, 1, 2, 8]), seed=st.integers(0, 2**16),
+)
+def test_tiled_equals_whole_for_test_graphs(height, width, tile, channels, pooled, noise_map, ensemble, seed):
+    # Strips of one pixel and images smaller than one tile are in range; the reference is the same graph run
+    # once on the whole padded image.
+    denoiser = _graph_denoiser(channels, pooled, noise_map)
+    denoiser.tile, denoiser.ensemble, denoiser.batch = tile, ensemble, 1 + seed % 3
+    image = np.random.default_rng(seed).uniform(0, NATIVE_HIGH, (height, width, channels)).astype(np.float32)
+    tiled = denoiser.run(image, as_float=True)
+    whole = denoiser.run_whole(image)
+    assert tiled.shape == image.shape
+    assert np.max(np.abs(tiled - whole)) / NATIVE_HIGH <= 1e-5
