@@ -24,6 +24,7 @@ import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.errors import ConfigError, InputError
+from grainwright.inference.estimation import estimate_sigma
 from grainwright.inference.tiling import (
     Tile,
     TilePlan,
@@ -291,8 +292,6 @@ class Denoiser:
         if self.noise_sigma == "training":
             return float(self.spec.training_sigma)
         if self.noise_sigma == "estimate":
-            from grainwright.inference.estimation import estimate_sigma
-
             return float(np.mean(estimate_sigma(image)))
         return float(self.noise_sigma)
 
