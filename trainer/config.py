@@ -1,0 +1,281 @@
+"""The training configuration: one schema, plain-TOML files, strict validation.
+
+A config is a nested dict of plain values (what ``tomllib`` returns). Every key has one entry in ``SCHEMA`` with
+its type, default, allowed range and meaning; unknown keys, wrong types and out-of-range values are rejected
+with the key path and, for a misspelt key or choice, the closest valid spelling. The README's config reference is
+rendered from ``SCHEMA`` by ``schema_markdown`` (a test keeps the two identical).
+"""
+from __future__ import annotations
+
+import copy
+import difflib
+import tomllib
+from importlib import resources
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from grainwright.inference.errors import ConfigError
+
+SCHEME_NAMES = ("auto", "supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted")
+
+
+@dataclass(frozen=True)
+class Key:
+    """One configuration key.
+
+    ``kind`` is ``"int"``, ``"float"``, ``"bool"``, ``"str"``, ``"choice"``, ``"bool-or-auto"`` or
+    ``"table"`` (a free table passed through, e.g. architecture hyper-parameters checked by the model itself).
+    """
+
+    kind: str
+    default: Any
+    doc: str
+    low: float | None = None
+    high: float | None = None
+    choices: tuple[str, ...] = ()
+
+
+SCHEMA: dict[str, dict[str, Key] | Key] = {
+    "scheme": Key("choice", "auto", "Training scheme; `auto` picks one from the data layout and says why.",
+                  choices=SCHEME_NAMES),
+    "seed": Key("int", 0, "Seed of every random draw (initial weights, patches, noise, masks).", 0, 2**31 - 1),
+    "threads": Key("int", 0, "Torch threads; 0 = the number of physical cores.", 0, 256),
+    "model": {
+        "name": Key("str", "residual", "Architecture name from the model registry."),
+        "skip": Key("bool-or-auto", "auto",
+                    "Input-to-output skip; `auto` = off for `masked` (required there), on otherwise."),
+        "hyper": Key("table", {}, "Architecture hyper-parameters (e.g. `depth`, `width`), checked by the model."),
+    },
+    "data": {
+        "folder": Key("str", "", "Data folder (set by `--data`; recorded so that `--resume` finds it)."),
+        "patch_size": Key("int", 64, "Edge of the square training patches, pixels.", 8, 1024),
+        "batch_size": Key("int", 16, "Patches per step.", 1, 4096),
+        "augment": Key("bool", True, "Random flips and 90-degree rotations of each patch."),
+        "skip_flat": Key("bool", False, "Redraw patches whose standard deviation is below `data.flat_level`."),
+        "flat_level": Key("float", 0.005, "Standard deviation (working units, fraction of range) below which "
+                          "a patch counts as flat background.", 0.0, 1.0),
+        "validation_fraction": Key("float", 0.2, "Share of the images held out for validation (split by image; "
+                                   "a single image is split into two regions).", 0.0, 0.9),
+        "bit_depth": Key("int", 0, "Effective bit depth of integer data; 0 = detect from the data.", 0, 16),
+        "fixed_pattern": Key("choice", "auto", "Row/column fixed-pattern correction before training: `auto` = "
+                             "when the banding or correlation flag is raised.", choices=("auto", "always", "never")),
+        "transform": Key("choice", "auto", "Variance-stabilising transform of the working range: `auto` = "
+                         "generalized Anscombe for Poisson-Gaussian noise in `recorrupted`, none otherwise.",
+                         choices=("auto", "none", "anscombe")),
+    },
+    "noise": {
+        "file": Key("str", "", "Noise description (TOML, from `grainwright inspect --save-noise`); empty = "
+                    "`noise.toml` in the data folder if present, else estimated where a scheme needs it."),
+    },
+    "optim": {
+        "optimizer": Key("choice", "adam", "Optimiser.", choices=("adam", "adamw")),
+        "lr": Key("float", 1e-3, "Peak learning rate.", 1e-7, 1.0),
+        "weight_decay": Key("float", 0.0, "Weight decay (decoupled for `adamw`).", 0.0, 1.0),
+        "warmup_fraction": Key("float", 0.03, "Share of the budget spent warming up linearly from zero.", 0.0, 0.5),
+        "final_lr_fraction": Key("float", 0.01, "Learning rate at the end of the cosine decay, as a share of "
+                                 "`optim.lr`.", 0.0, 1.0),
+        "grad_clip": Key("float", 1.0, "Maximum gradient norm; 0 = no clipping.", 0.0, 1e6),
+    },
+    "budget": {
+        "steps": Key("int", 0, "Optimiser steps; the schedule follows the step count. 0 = use `budget.minutes`.",
+                     0, 10**9),
+        "minutes": Key("float", 10.0, "Wall-clock minutes when `budget.steps` is 0; the schedule follows the "
+                       "elapsed fraction.", 0.0, 10**6),
+    },
+    "validation": {
+        "every_steps": Key("int", 200, "Steps between validations.", 1, 10**9),
+        "patches": Key("int", 32, "Fixed held-out patches evaluated at each validation.", 1, 4096),
+        "patience": Key("int", 10, "Validations without improvement before stopping early; 0 = never stop early.",
+                        0, 10**6),
+        "min_delta": Key("float", 0.0, "Smallest change that counts as an improvement (dB for PSNR, else loss).",
+                         0.0, 1e6),
+    },
+    "checkpoint": {
+        "every_minutes": Key("float", 3.0, "Minutes between saves of `checkpoints/last.pt` (also saved at the end "
+                             "and on SIGINT/SIGTERM).", 0.01, 10**6),
+    },
+    "logging": {
+        "tensorboard": Key("bool", True, "Write TensorBoard event files to `tensorboard/` in the run folder."),
+        "progress": Key("bool", True, "Show a progress bar."),
+    },
+    "mask": {
+        "fraction": Key("float", 0.02, "`masked`: share of pixels masked and scored per patch.", 1e-4, 0.5),
+        "grid": Key("bool", True, "`masked`: one masked pixel per grid cell at a random place (stratified), "
+                    "instead of independent random pixels."),
+        "replace": Key("choice", "neighbor", "`masked`: what replaces a masked pixel: a random pixel of its 5x5 "
+                       "neighbourhood (`neighbor`), the mean of its 4 neighbours (`mean`), uniform noise (`noise`) "
+                       "or zero (`zero`).", choices=("neighbor", "mean", "noise", "zero")),
+    },
+    "neighbor2neighbor": {
+        "gamma": Key("float", 2.0, "Weight of the consistency regulariser (Huang et al. 2021 use 2).", 0.0, 100.0),
+    },
+    "recorrupted": {
+        "alpha": Key("float", 0.5, "Recorruption strength: input y + alpha*z, target y - z/alpha.", 0.01, 10.0),
+    },
+}
+
+
+def defaults() -> dict[str, Any]:
+    """The full config with every default."""
+    def build(node: dict[str, Any]) -> dict[str, Any]:
+        return {name: build(sub) if isinstance(sub, dict) else copy.deepcopy(sub.default) for name, sub in node.items()}
+    return build(SCHEMA)
+
+
+def _suggest(word: str, options: list[str] | tuple[str, ...], prefix: str = "") -> str:
+    close = difflib.get_close_matches(word, list(options), n=1, cutoff=0.5)
+    return f" (did you mean '{prefix}{close[0]}'?)" if close else ""
+
+
+def _check_value(path: str, key: Key, value: Any) -> Any:
+    kind = key.kind
+    if kind == "bool-or-auto":
+        if isinstance(value, bool) or value == "auto":
+            return value
+        raise ConfigError(f"{path}: expected true, false or \"auto\", got {value!r}")
+    if kind == "bool":
+        if not isinstance(value, bool):
+            raise ConfigError(f"{path}: expected true or false, got {value!r}")
+        return value
+    if kind == "table":
+        if not isinstance(value, dict):
+            raise ConfigError(f"{path}: expected a table, got {value!r}")
+        return dict(value)
+    if kind in ("str", "choice"):
+        if not isinstance(value, str):
+            raise ConfigError(f"{path}: expected a string, got {value!r}")
+        if kind == "choice" and value not in key.choices:
+            raise ConfigError(f"{path}: {value!r} is not one of {', '.join(key.choices)}{_suggest(value, key.choices)}")
+        return value
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{path}: expected an integer, got {value!r}")
+    elif kind == "float":
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{path}: expected a number, got {value!r}")
+        value = float(value)
+        if value != value:
+            raise ConfigError(f"{path}: expected a number, got NaN")
+    if (key.low is not None and value < key.low) or (key.high is not None and value > key.high):
+        raise ConfigError(f"{path}: {value!r} is out of range [{key.low:g}, {key.high:g}]")
+    return value
+
+
+def validate(config: dict[str, Any]) -> dict[str, Any]:
+    """Check ``config`` against ``SCHEMA`` and return it completed with defaults.
+
+    Raises
+    ------
+    ConfigError
+        On an unknown key (with the closest valid key), a wrong type or an out-of-range value; the message
+        starts with the dotted key path.
+    """
+    def walk(node: dict[str, Any], schema: dict[str, Any], prefix: str) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for name, value in node.items():
+            path = prefix + name
+            if name not in schema:
+                raise ConfigError(f"{path}: unknown key{_suggest(name, list(schema), prefix)}")
+            entry = schema[name]
+            if isinstance(entry, dict):
+                if not isinstance(value, dict):
+                    raise ConfigError(f"{path}: expected a table [{path}], got {value!r}")
+                out[name] = walk(value, entry, path + ".")
+            else:
+                out[name] = _check_value(path, entry, value)
+        return out
+
+    checked = walk(config, SCHEMA, "")
+    merged = defaults()
+    for name, value in checked.items():
+        if isinstance(value, dict) and isinstance(SCHEMA[name], dict):
+            merged[name].update(value)
+        else:
+            merged[name] = value
+    return merged
+
+
+def parse_assignment(text: str) -> tuple[str, Any]:
+    """Parse one ``--set key.path=value``; the value is read as TOML (``0.5``, ``true``, ``"adam"``), and a bare
+    word that is not valid TOML is taken as a string."""
+    if "=" not in text:
+        raise ConfigError(f"--set {text}: expected key=value")
+    path, raw = (part.strip() for part in text.split("=", 1))
+    try:
+        value = tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        value = raw
+    return path, value
+
+
+def apply_assignments(config: dict[str, Any], assignments: list[str]) -> dict[str, Any]:
+    """Return a copy of ``config`` with each ``key.path=value`` of ``assignments`` set (not yet validated)."""
+    out = copy.deepcopy(config)
+    for text in assignments:
+        path, value = parse_assignment(text)
+        node = out
+        parts = path.split(".")
+        for part in parts[:-1]:
+            node = node.setdefault(part, {})
+            if not isinstance(node, dict):
+                raise ConfigError(f"--set {text}: '{part}' is a value, not a table")
+        node[parts[-1]] = value
+    return out
+
+
+def shipped_config(name: str) -> Path | None:
+    """Path of a config shipped in ``grainwright.configs`` (``"fast-cpu"`` or ``"fast-cpu.toml"``), else None."""
+    candidate = Path(str(resources.files("grainwright.configs"))) / f"{name.removesuffix('.toml')}.toml"
+    return candidate if candidate.is_file() else None
+
+
+def load_config(path: str | Path | None, assignments: list[str] = ()) -> dict[str, Any]:
+    """Read a TOML config (or start from the defaults), apply ``--set`` assignments and validate."""
+    raw: dict[str, Any] = {}
+    if path is not None:
+        path = Path(path)
+        if not path.is_file():
+            shipped = shipped_config(path.name)
+            if path.parent != Path(".") or shipped is None:
+                raise ConfigError(f"{path}: config file not found")
+            path = shipped
+        try:
+            raw = tomllib.loads(path.read_text(encoding="utf-8"))
+        except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
+            raise ConfigError(f"{path}: not valid TOML ({error})") from None
+        try:
+            return validate(apply_assignments(raw, list(assignments)))
+        except ConfigError as error:
+            raise ConfigError(f"{path}: {error}") from None
+    return validate(apply_assignments(raw, list(assignments)))
+
+
+def schema_markdown() -> str:
+    """The config reference as a Markdown table, rendered from ``SCHEMA`` (the README embeds it verbatim)."""
+    lines = ["| Key | Type | Default | Allowed | Meaning |", "|---|---|---|---|---|"]
+
+    def show(value: Any) -> str:
+        if isinstance(value, bool):
+            return "true" if value else "false"
+        if isinstance(value, str):
+            return f'"{value}"'
+        if isinstance(value, dict):
+            return "{}"
+        return f"{value:g}" if isinstance(value, float) else str(value)
+
+    def walk(node: dict[str, Any], prefix: str) -> None:
+        for name, entry in node.items():
+            if isinstance(entry, dict):
+                walk(entry, prefix + name + ".")
+                continue
+            if entry.choices:
+                allowed = ", ".join(f"`{choice}`" for choice in entry.choices)
+            elif entry.low is not None:
+                allowed = f"{entry.low:g} to {entry.high:g}"
+            else:
+                allowed = ""
+            lines.append(f"| `{prefix}{name}` | {entry.kind} | `{show(entry.default)}` | {allowed} | {entry.doc} |")
+
+    walk(SCHEMA, "")
+    return "\n".join(lines) + "\n"

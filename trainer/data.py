@@ -1,0 +1,270 @@
+"""Training data: folder layouts, loading once into memory, and vectorised patch sampling.
+
+Folder layouts (plain names of our own, documented in the README):
+
+============  =========================================  ====================================
+layout        what the data folder holds                 roles of each sample
+============  =========================================  ====================================
+clean-only    ``clean/`` (+ a noise description)         ``clean``
+clean-noisy   ``clean/`` and ``noisy/``, same file names ``clean``, ``noisy``
+noisy-pairs   ``noisy-a/`` and ``noisy-b/``, same names  ``noisy``, ``noisy_b``
+noisy-stacks  ``noisy-stacks/``: multi-frame files of a  ``noisy``, ``noisy_b`` (frame i, i+1)
+              static scene
+noisy-only    ``noisy/``, or images directly in the      ``noisy``
+              folder
+============  =========================================  ====================================
+
+Every image is read once, normalised to the float32 working range, and kept in one flat buffer per role; a
+batch of patches is one fancy-indexing gather with the flips and rotations folded into the index arrays.
+"""
+from __future__ import annotations
+
+import hashlib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from grainwright.inference.errors import InputError
+
+LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {
+    "clean-noisy": ("clean", "noisy"),
+    "noisy-pairs": ("noisy-a", "noisy-b"),
+    "noisy-stacks": ("noisy-stacks",),
+    "clean-only": ("clean",),
+    "noisy-only": ("noisy",),
+}
+LAYOUT_ROLES: dict[str, tuple[str, ...]] = {
+    "clean-only": ("clean",),
+    "clean-noisy": ("clean", "noisy"),
+    "noisy-pairs": ("noisy", "noisy_b"),
+    "noisy-stacks": ("noisy", "noisy_b"),
+    "noisy-only": ("noisy",),
+}
+LAYOUT_TEXT: dict[str, str] = {
+    "clean-only": "clean images only (clean/)",
+    "clean-noisy": "clean/noisy pairs (clean/ + noisy/)",
+    "noisy-pairs": "pairs of independent noisy shots (noisy-a/ + noisy-b/)",
+    "noisy-stacks": "stacks of noisy frames of a static scene (noisy-stacks/)",
+    "noisy-only": "single noisy images",
+}
+
+
+@dataclass
+class Layout:
+    """What was found in a data folder: the layout name and its files, one tuple per sample (one file per role,
+    or a single multi-frame file for ``noisy-stacks``)."""
+
+    name: str
+    root: Path
+    samples: list[tuple[Path, ...]]
+
+    @property
+    def roles(self) -> tuple[str, ...]:
+        return LAYOUT_ROLES[self.name]
+
+    @property
+    def has_ground_truth(self) -> bool:
+        return "clean" in self.roles
+
+    def fingerprint(self) -> str:
+        """SHA-256 of the sorted relative file list (what the model was trained on, without the pixels)."""
+        names = sorted(str(path.relative_to(self.root)) for sample in self.samples for path in sample)
+        return hashlib.sha256("\n".join(names).encode()).hexdigest()
+
+
+def detect_layout(root: str | Path) -> Layout:
+    """Find which layout the folder ``root`` holds and pair its files by name.
+
+    Raises
+    ------
+    InputError
+        The folder is missing or holds no images, or a pair is missing its partner.
+    """
+    from grainwright.inference.imageio import find_images
+
+    root = Path(root)
+    if not root.is_dir():
+        raise InputError(root, "data folder not found")
+    for name, folders in LAYOUT_FOLDERS.items():
+        if all((root / folder).is_dir() for folder in folders):
+            break
+    else:
+        name, folders = "noisy-only", (".",)
+    lists = [find_images([root / folder]) for folder in folders]
+    if not lists[0]:
+        where = root / folders[0] if folders[0] != "." else root
+        raise InputError(where, "no images found (supported: PNG, TIFF, .npy)")
+    if len(folders) == 1:
+        return Layout(name, root, [(path,) for path in lists[0]])
+    by_stem = [{path.stem: path for path in files} for files in lists]
+    first, second = by_stem
+    for stem in sorted(set(first) ^ set(second)):
+        have, lack = (folders[0], folders[1]) if stem in first else (folders[1], folders[0])
+        source = (first if stem in first else second)[stem]
+        raise InputError(source, f"has no partner named '{stem}.*' in {lack}/ (files in {have}/ and {lack}/ are "
+                         "paired by name)")
+    return Layout(name, root, [(first[stem], second[stem]) for stem in sorted(first)])
+
+
+class PatchSource:
+    """Images of one or more roles held as float32 ``(H, W, C)`` in one flat buffer per role.
+
+    All roles share the image shapes, so one set of indices gathers aligned patches from each.
+    """
+
+    def __init__(self, images: dict[str, list[np.ndarray]]):
+        roles = list(images)
+        first = images[roles[0]]
+        self.channels = first[0].shape[2]
+        self.heights = np.array([image.shape[0] for image in first], dtype=np.int64)
+        self.widths = np.array([image.shape[1] for image in first], dtype=np.int64)
+        sizes = self.heights * self.widths * self.channels
+        self.offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+        self.buffers = {role: np.concatenate([image.reshape(-1) for image in images[role]]).astype(np.float32)
+                        for role in roles}
+
+    @property
+    def roles(self) -> tuple[str, ...]:
+        return tuple(self.buffers)
+
+    def __len__(self) -> int:
+        return len(self.heights)
+
+    def image(self, role: str, index: int) -> np.ndarray:
+        """Image ``index`` of ``role`` as an ``(H, W, C)`` view."""
+        h, w, c = self.heights[index], self.widths[index], self.channels
+        start = self.offsets[index]
+        return self.buffers[role][start:start + h * w * c].reshape(h, w, c)
+
+    def sample(self, rng: np.random.Generator, count: int, size: int, augment: bool = True,
+               flat_level: float | None = None) -> dict[str, np.ndarray]:
+        """Draw ``count`` aligned ``size`` x ``size`` patches per role, shaped ``(count, C, size, size)``.
+
+        Images are chosen in proportion to their number of patch positions. With ``augment`` each patch gets one
+        of the 8 flips/90-degree rotations. With ``flat_level`` set, patches whose standard deviation (clean role
+        if present, else the first role) is below it are replaced by non-flat candidates when there are any.
+        """
+        draw = count if flat_level is None else 2 * count
+        positions = (self.heights - size + 1) * (self.widths - size + 1)
+        index = rng.choice(len(self), size=draw, p=positions / positions.sum())
+        top = (rng.random(draw) * (self.heights[index] - size + 1)).astype(np.int64)
+        left = (rng.random(draw) * (self.widths[index] - size + 1)).astype(np.int64)
+        rows = np.arange(size)[None, :, None]
+        cols = np.arange(size)[None, None, :]
+        if augment:
+            code = rng.integers(0, 8, draw)
+            swap = (code & 4).astype(bool)[:, None, None]
+            rows, cols = np.where(swap, cols, rows), np.where(swap, rows, cols)
+            rows = np.where((code & 1).astype(bool)[:, None, None], size - 1 - rows, rows)
+            cols = np.where((code & 2).astype(bool)[:, None, None], size - 1 - cols, cols)
+        pixel = (top[:, None, None] + rows) * self.widths[index][:, None, None] + left[:, None, None] + cols
+        flat = (self.offsets[index][:, None, None] + pixel * self.channels)[..., None] + np.arange(self.channels)
+        if flat_level is not None:
+            reference = "clean" if "clean" in self.buffers else self.roles[0]
+            spread = self.buffers[reference][flat].reshape(draw, -1).std(axis=1)
+            order = np.argsort(spread < flat_level, kind="stable")  # non-flat candidates first, order kept
+            flat = flat[order[:count]]
+        return {role: np.ascontiguousarray(buffer[flat].transpose(0, 3, 1, 2)) for role, buffer in self.buffers.items()}
+
+
+@dataclass
+class TrainingData:
+    """Everything the loop needs from the data folder, normalised once."""
+
+    layout: Layout
+    normalization: object
+    train: PatchSource
+    validation: PatchSource | None
+    channels: int
+    notes: list[str] = field(default_factory=list)
+
+
+def _read_sample(layout: Layout, sample: tuple[Path, ...]) -> list[dict[str, np.ndarray]] | None:
+    """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields, or None (with
+    a warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
+    from grainwright.inference.imageio import read_frames
+
+    try:
+        arrays = [read_frames(path) for path in sample]
+    except InputError as error:
+        if "NaN" in error.problem:
+            raise
+        warnings.warn(f"skipped {error}", stacklevel=3)
+        return None
+    if layout.name == "noisy-stacks":
+        frames = arrays[0]
+        if frames.shape[0] < 2:
+            raise InputError(sample[0], f"a stack needs at least 2 frames, found {frames.shape[0]}")
+        return [{"noisy": frames[i], "noisy_b": frames[i + 1]} for i in range(frames.shape[0] - 1)]
+    if layout.name == "noisy-only":
+        return [{"noisy": frame} for frame in arrays[0]]
+    for path, frames in zip(sample, arrays):
+        if frames.shape[0] != 1:
+            raise InputError(path, f"holds {frames.shape[0]} frames; expected a single image in this layout")
+    images = [frames[0] for frames in arrays]
+    if len(images) == 2:
+        (first, second), (path_a, path_b) = images, sample
+        if first.shape != second.shape or first.dtype != second.dtype:
+            raise InputError(path_a, f"does not match its partner {path_b}: {first.shape} {first.dtype} vs "
+                             f"{second.shape} {second.dtype}")
+    return [dict(zip(layout.roles, images))]
+
+
+def read_layout(layout: Layout, patch_size: int) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
+    """Read every sample of ``layout`` in native values; skip files that cannot be read, with a warning.
+
+    Returns the images (one ``{role: array}`` per image) and the file each came from.
+
+    Raises
+    ------
+    InputError
+        No image could be read; NaN/Inf pixels; a pair does not match; channel counts differ; an image is
+        smaller than the patch size.
+    """
+    images: list[dict[str, np.ndarray]] = []
+    sources: list[Path] = []
+    for sample in layout.samples:
+        read = _read_sample(layout, sample)
+        if read is None:
+            continue
+        images.extend(read)
+        sources.extend([sample[0]] * len(read))
+    if not images:
+        raise InputError(layout.root, "none of the images could be read")
+    channels = images[0][layout.roles[0]].shape[2]
+    for item, source in zip(images, sources):
+        array = item[layout.roles[0]]
+        if array.shape[2] != channels:
+            raise InputError(source, f"has {array.shape[2]} channels, but {sources[0]} has {channels}; all "
+                             "training images need the same channel count")
+        if min(array.shape[:2]) < patch_size:
+            raise InputError(source, f"is {array.shape[1]}x{array.shape[0]} pixels, smaller than the patch size "
+                             f"{patch_size} (lower data.patch_size)")
+    return images, sources
+
+
+def split_by_image(count: int, fraction: float, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Indices of training and validation images: a ``fraction`` of whole images (at least one when there are
+    two or more images and ``fraction > 0``) is held out, never parts of an image."""
+    order = rng.permutation(count)
+    held = 0 if fraction <= 0 or count < 2 else min(count - 1, max(1, round(fraction * count)))
+    return np.sort(order[held:]), np.sort(order[:held])
+
+
+def split_single_image(image: dict[str, np.ndarray], fraction: float,
+                       patch_size: int) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray] | None]:
+    """Split one image into a training region and a held-out region (the last rows, or columns when the image
+    is wider than tall) when both stay at least one patch large; else no validation."""
+    array = next(iter(image.values()))
+    axis = 1 if array.shape[1] > array.shape[0] else 0
+    length = array.shape[axis]
+    held = max(patch_size, int(round(length * fraction)))
+    if fraction <= 0 or length - held < patch_size:
+        return image, None
+    cut = length - held
+    train = {role: np.take(a, np.arange(cut), axis=axis) for role, a in image.items()}
+    validation = {role: np.take(a, np.arange(cut, length), axis=axis) for role, a in image.items()}
+    return train, validation
+

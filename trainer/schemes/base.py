@@ -1,0 +1,71 @@
+"""What every training scheme shares.
+
+A scheme turns a batch of patches into a loss. Its randomness (synthetic noise, masks, sub-sampling choices) is
+drawn in numpy by ``prepare`` from the loop's seeded generator, so a run is reproducible and resumable, and the
+validation batches are prepared once with fixed draws. ``loss`` then only does torch arithmetic.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import torch
+
+
+class Scheme:
+    """Base class of the registered training schemes.
+
+    Attributes
+    ----------
+    name : str
+        Registry name.
+    layouts : tuple of str
+        Data layouts (see :mod:`grainwright.trainer.data`) the scheme can train on.
+    needs_no_skip : bool
+        True when the architecture must be built without its input-to-output skip (blind-spot training).
+    patch_multiple : int
+        The patch edge must be a multiple of this times the architecture's alignment.
+    forward_passes_per_pixel : float
+        Cost of one step in forward passes over the patch pixels (a backward pass counts as two), for the
+        achieved-GFLOP/s figure.
+    """
+
+    name: str = ""
+    layouts: tuple[str, ...] = ()
+    needs_no_skip: bool = False
+    patch_multiple: int = 1
+    forward_passes_per_pixel: float = 3.0
+
+    def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None):
+        """``noise``: the noise model in working units (or None); ``sigma``: per-channel Gaussian standard
+        deviation of the noise in working units (known or estimated; None when unknown)."""
+        self.config = config
+        self.noise = noise
+        self.sigma = None if sigma is None else np.asarray(sigma, dtype=np.float32).reshape(1, -1, 1, 1)
+
+    def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
+        """Add the scheme's random draws to a batch of patches (numpy, ``(N, C, H, W)``)."""
+        raise NotImplementedError
+
+    def loss(self, model: torch.nn.Module, batch: dict[str, torch.Tensor], progress: float) -> torch.Tensor:
+        """The training loss of ``model`` on a prepared batch; ``progress`` runs from 0 to 1 over the budget."""
+        raise NotImplementedError
+
+    def noise_level(self, batch: dict[str, np.ndarray]) -> np.ndarray | None:
+        """The per-pixel noise level of ``batch['noisy']`` for noise-map models, ``(N, 1, H, W)``, or None."""
+        if self.sigma is None:
+            return None
+        noisy = batch["noisy"]
+        level = np.float32(np.sqrt(np.mean(self.sigma ** 2)))
+        return np.full((noisy.shape[0], 1) + noisy.shape[2:], level, dtype=np.float32)
+
+
+def apply_model(model: torch.nn.Module, image: torch.Tensor, level: torch.Tensor | None = None) -> torch.Tensor:
+    """Run ``model`` on ``image``, handing noise-map models their noise level (resized to ``image``)."""
+    if not getattr(model, "takes_noise_map", False):
+        return model(image)
+    if level is None:
+        raise ValueError("a noise-map model needs a noise level")
+    if level.shape[-2:] != image.shape[-2:]:
+        level = level.mean(dim=(2, 3), keepdim=True).expand(-1, -1, *image.shape[-2:])
+    return model(image, level)

@@ -1,0 +1,59 @@
+"""Training schemes by name, and the ``auto`` choice from the data layout.
+
+Adding a scheme is adding one file with a :class:`~grainwright.trainer.schemes.base.Scheme` subclass and listing
+it in ``SCHEMES`` below (see DEVELOPERS.md, "A training scheme").
+"""
+from __future__ import annotations
+
+from grainwright.inference.errors import ConfigError
+from grainwright.trainer.data import LAYOUT_TEXT
+from grainwright.trainer.schemes.base import Scheme
+from grainwright.trainer.schemes.masked import Masked
+from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor
+from grainwright.trainer.schemes.noise2noise import Noise2Noise
+from grainwright.trainer.schemes.recorrupted import Recorrupted
+from grainwright.trainer.schemes.supervised import Supervised
+
+SCHEMES: dict[str, type[Scheme]] = {
+    cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted)
+}
+
+
+def scheme_class(name: str) -> type[Scheme]:
+    """The scheme registered as ``name``."""
+    if name not in SCHEMES:
+        raise ConfigError(f"scheme: unknown scheme '{name}' (known: {', '.join(SCHEMES)}, auto)")
+    return SCHEMES[name]
+
+
+def choose_scheme(layout: str, noise_known: bool, noise_estimated: bool) -> tuple[str, str]:
+    """The scheme ``auto`` picks for ``layout``, and why (one sentence).
+
+    ``noise_known``: a noise description was given; ``noise_estimated``: the estimator found a confident Gaussian
+    or Poisson-Gaussian model in the images.
+    """
+    found = LAYOUT_TEXT[layout]
+    if layout == "clean-only":
+        if not noise_known:
+            raise ConfigError(f"found {found} but no noise description: put a noise.toml in the data folder or "
+                              "set noise.file (see 'grainwright inspect --save-noise')")
+        return "supervised", f"found {found} and a noise description: supervised with fresh synthetic noise"
+    if layout == "clean-noisy":
+        return "supervised", f"found {found}: supervised on the real pairs"
+    if layout in ("noisy-pairs", "noisy-stacks"):
+        return "noise2noise", f"found {found}: Noise2Noise"
+    if noise_known:
+        return "recorrupted", f"found {found} and a noise description: recorrupted (every pixel in the loss)"
+    if noise_estimated:
+        return "recorrupted", f"found {found}; the noise was estimated confidently from the images: recorrupted"
+    return "neighbor2neighbor", (f"found {found}; the noise could not be estimated confidently: neighbor2neighbor "
+                                 "(needs no noise model)")
+
+
+def check_scheme_fits(name: str, layout: str) -> None:
+    """Stop with an error saying what was found when scheme ``name`` cannot train on ``layout``."""
+    cls = scheme_class(name)
+    if layout not in cls.layouts:
+        fits = [scheme for scheme, c in SCHEMES.items() if layout in c.layouts]
+        raise ConfigError(f"scheme '{name}' needs {' or '.join(LAYOUT_TEXT[l] for l in cls.layouts)}, but the data "
+                          f"folder holds {LAYOUT_TEXT[layout]}; schemes that fit: {', '.join(fits)}")
