@@ -76,9 +76,11 @@ def plan_jobs(
     out_resolved = out_dir.resolve()
     for entry in inputs:
         entry = Path(entry)
+        # An output folder inside an input folder holds earlier outputs, not inputs.
+        nested = entry.is_dir() and entry.resolve() in out_resolved.parents
         for source in find_images([entry], recursive=recursive):
-            if out_resolved in source.resolve().parents:
-                continue  # an earlier run's output inside an input folder is not an input
+            if nested and out_resolved in source.resolve().parents:
+                continue
             relative = source.relative_to(entry) if entry.is_dir() else Path(source.name)
             output = out_dir / relative
             if suffix is not None:
