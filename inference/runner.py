@@ -25,6 +25,7 @@ import onnxruntime as ort
 
 from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.estimation import estimate_sigma
+from grainwright.inference.modelinfo import METADATA_KEY, check_metadata
 from grainwright.inference.tiling import (
     Tile,
     TilePlan,
@@ -36,7 +37,6 @@ from grainwright.inference.tiling import (
     tile_margin,
 )
 
-METADATA_KEY = "grainwright"
 # Window pixels per ONNX Runtime call when the caller does not choose a batch size, measured with
 # `grainwright bench runtime` (README, bench-runtime): larger batches gained nothing and cost memory.
 DEFAULT_BATCH_PIXELS = 400_000
@@ -107,7 +107,7 @@ class ModelSpec:
     dtype: str | None = None
     training_sigma: float | None = None
     training_bit_depth: int | None = None
-    metadata: dict[str, Any] = field(default_factory=dict)
+    metadata: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
         if self.receptive_field < 1 or self.alignment < 1:
@@ -254,7 +254,7 @@ class Denoiser:
         if text is None:
             return None
         try:
-            return json.loads(text)
+            return check_metadata(json.loads(text), self.path)
         except json.JSONDecodeError:
             raise InputError(self.path, "grainwright metadata is not valid JSON") from None
 

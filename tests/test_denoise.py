@@ -145,14 +145,24 @@ def test_killed_batch_leaves_no_partial_output(batch, monkeypatch):
     assert not batch["out"].exists() or not any(batch["out"].iterdir())
 
 
-def test_denoise_runs_with_torch_blocked(batch):
+@pytest.mark.parametrize("architecture", ["residual", "residual-noisemap"])
+def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
+    # The model is exported here (torch is allowed in the test process); the run itself must not need torch.
+    from grainwright.inference.normalization import Normalization
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    normalization = Normalization(dtype="uint16", bit_depth=10, low=0.0, high=1023.0, channels=1)
+    payload = new_checkpoint(architecture, 1, normalization, hyper={"depth": 3, "width": 8})
+    export_checkpoint(save_checkpoint(tmp_path / "model.pt", payload), tmp_path / "model.onnx", threads=1)
     script = BLOCK_TORCH + (
         "from grainwright.inference.cli import main\n"
-        f"code = main(['denoise', {str(batch['model'])!r}, {str(batch['in'])!r}, '-o', {str(batch['out'])!r}, "
-        "'-r', '-q', '--threads', '1'])\n"
-        "assert 'torch' not in sys.modules or sys.modules['torch'] is None\n"
+        f"code = main(['denoise', {str(tmp_path / 'model.onnx')!r}, {str(batch['in'])!r}, "
+        f"'-o', {str(batch['out'])!r}, '-r', '-q', '--threads', '1'])\n"
+        "assert sys.modules.get('torch') is None\n"
         "sys.exit(code)\n"
     )
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
-    assert "done 4" in result.stdout
+    assert "done 4, skipped 0, failed 0" in result.stdout
+    assert read_frames(batch["out"] / "b.tif").shape == (3, 40, 30, 1)

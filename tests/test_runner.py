@@ -87,6 +87,8 @@ def build_conv_model(
     model.ir_version = 8
     if metadata:
         document = {
+            "format": "grainwright-model",
+            "format_version": 1,
             "architecture": {"name": "test-conv", "receptive_field": 2 * radius + 1,
                              "alignment": 2 if pooled else 1, "macs_per_pixel": 9 * width * width * layers},
             "channels": channels,

@@ -96,3 +96,62 @@ def test_tiled_equals_whole_for_test_graphs(height, width, tile, channels, poole
     whole = denoiser.run_whole(image)
     assert tiled.shape == image.shape
     assert np.max(np.abs(tiled - whole)) / NATIVE_HIGH <= 1e-5
+
+
+# Tiny sizes of every registered architecture; the property test below fails if one is registered without a size.
+TINY_HYPER = {
+    "residual": {"depth": 3, "width": 6},
+    "residual-noisemap": {"depth": 3, "width": 6},
+    "unet-small": {"levels": 3, "width": 4},
+}
+
+
+@functools.cache
+def _exported_denoiser(name: str, channels: int, anscombe: bool) -> Denoiser:
+    """Export a randomly initialised registered architecture (needs torch; the runtime itself does not)."""
+    from grainwright.inference.normalization import Normalization
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    normalization = Normalization(dtype="uint16", bit_depth=12, low=0.0, high=4095.0, channels=channels)
+    if anscombe:
+        normalization = normalization.with_anscombe(gain=0.01, read=0.005)
+    stem = f"{name}-c{channels}-a{int(anscombe)}"
+    payload = new_checkpoint(name, channels, normalization, hyper=TINY_HYPER[name], seed=channels,
+                             training_noise={"sigma_native": 40.0})
+    checkpoint = save_checkpoint(_MODEL_DIR / f"{stem}.pt", payload)
+    export_checkpoint(checkpoint, _MODEL_DIR / f"{stem}.onnx", threads=1)
+    return Denoiser(_MODEL_DIR / f"{stem}.onnx", threads=1, noise_sigma="training")
+
+
+def test_every_registered_architecture_has_a_tiny_size():
+    from grainwright.models.registry import MODELS
+
+    assert set(MODELS) <= set(TINY_HYPER)
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    name=st.sampled_from(sorted(TINY_HYPER)), channels=st.sampled_from([1, 2, 3]), anscombe=st.booleans(),
+    height=st.integers(1, 72), width=st.integers(1, 72), tile=st.integers(1, 48), seed=st.integers(0, 2**16),
+)
+def test_tiled_equals_whole_for_exported_architectures(name, channels, anscombe, height, width, tile, seed):
+    # Exported from randomly initialised models; the reference is the same ONNX file run once on the whole image
+    # (padded by reflection to the alignment, as export's own parity check pads). 1e-5 of the range = working units.
+    denoiser = _exported_denoiser(name, channels, anscombe)
+    denoiser.tile, denoiser.batch = tile, 1 + seed % 4
+    image = np.random.default_rng(seed).uniform(0, 4095, (height, width, channels)).astype(np.float32)
+    tiled = denoiser.run(image, as_float=True)
+    whole = denoiser.run_whole(image)
+    assert np.max(np.abs(tiled - whole)) / 4095.0 <= 1e-5
+
+
+@pytest.mark.parametrize("ensemble", [2, 8])
+def test_self_ensemble_tiled_equals_whole_for_residual(ensemble):
+    denoiser = _exported_denoiser("residual", 1, False)
+    denoiser.tile, denoiser.ensemble = 16, ensemble
+    try:
+        image = np.random.default_rng(ensemble).uniform(0, 4095, (45, 38, 1)).astype(np.float32)
+        assert np.max(np.abs(denoiser.run(image, as_float=True) - denoiser.run_whole(image))) / 4095.0 <= 1e-5
+    finally:
+        denoiser.ensemble = 1
