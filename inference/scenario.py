@@ -27,6 +27,9 @@ import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 from scipy import ndimage
 
+from grainwright.inference.imageio import write_image
+from grainwright.inference.noise import BandingNoise, MixtureNoise, NoiseModel, PoissonGaussianNoise
+
 BIT_DEPTH = 12
 FULL_SCALE = 2**BIT_DEPTH - 1
 
@@ -46,7 +49,8 @@ class SensorModel:
 
     Per pixel, ``noisy = gain * Poisson(clean / gain) + Normal(0, read^2) + offset[row]``, rounded and clipped to
     ``0..4095``; ``offset[row] ~ Normal(0, row_banding^2)``, drawn afresh for each frame. The pixel variance is
-    ``gain * clean + read^2`` (Foi et al. 2008), plus ``row_banding^2`` shared along each row.
+    ``gain * clean + read^2`` (Foi et al. 2008), plus ``row_banding^2`` shared along each row. Sampling goes
+    through the noise registry (``poisson-gaussian`` then ``banding``, see :mod:`grainwright.inference.noise`).
 
     Parameters
     ----------
@@ -66,20 +70,28 @@ class SensorModel:
         """Per-pixel variance in DN^2 without the row offsets: ``gain * clean + read^2``."""
         return self.gain * np.asarray(clean, dtype=np.float64) + self.read**2
 
+    def noise_model(self) -> NoiseModel:
+        """The sensor as a model of the noise registry, in working units (fractions of the 12-bit full scale).
+
+        Variance scales with the square of the unit, so ``gain`` (variance per unit of signal) divides by the full
+        scale once, and the standard deviations ``read`` and ``row_banding`` divide by it once.
+        """
+        pixel = PoissonGaussianNoise(gain=self.gain / FULL_SCALE, read=self.read / FULL_SCALE)
+        if self.row_banding <= 0:
+            return pixel
+        return MixtureNoise([pixel, BandingNoise(row_sigma=self.row_banding / FULL_SCALE, column_sigma=0.0)])
+
     def sample(self, clean: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         """Draw a noisy frame (float64 DN, unrounded, unclipped) for a clean frame of shape (H, W) in DN."""
-        clean = np.clip(np.asarray(clean, dtype=np.float64), 0.0, None)
-        noisy = self.gain * rng.poisson(clean / self.gain) + rng.normal(0.0, self.read, clean.shape)
-        if self.row_banding > 0:
-            noisy += rng.normal(0.0, self.row_banding, (clean.shape[0],) + (1,) * (clean.ndim - 1))
-        return noisy
+        clean = np.asarray(clean, dtype=np.float64)
+        working = (clean / FULL_SCALE).astype(np.float32)[..., None]
+        return self.noise_model().sample(working, rng)[..., 0].astype(np.float64) * FULL_SCALE
 
     def to_noise_description(self) -> dict:
-        """The pixel noise as a noise description in working units (fractions of the 12-bit full scale).
+        """The pixel-independent part of the noise as a noise description (working units).
 
-        Variance scales with the square of the unit, so ``gain`` divides by the full scale once and ``read`` by it
-        once as a standard deviation. The row banding is a fixed pattern the correction removes, not part of the
-        pixel-independent model the trainer uses.
+        The row banding is a fixed pattern that the correction removes before training, not part of the
+        pixel-independent model the training schemes assume.
         """
         return {"kind": "poisson-gaussian", "gain": self.gain / FULL_SCALE, "read": self.read / FULL_SCALE}
 
@@ -450,16 +462,6 @@ LARGE_ROIS_FILE = "large-rois.json"
 MANIFEST_FILE = "scenario.json"
 
 
-def _write_uint16(path: Path, array: np.ndarray) -> None:
-    """Write an (H, W, 1) uint16 frame as a TIFF, atomically."""
-    import tifffile
-
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    tifffile.imwrite(tmp, array[..., 0], photometric="minisblack")
-    os.replace(tmp, path)
-
-
 def _write_json(path: Path, document: dict) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.partial")
@@ -521,8 +523,8 @@ def write_scenario(
         for i, frame_seed in enumerate(seeds.spawn(sets)):
             frame = generate_frame(h, w, frame_seed, sensor)
             name = f"{prefix}-{i:03d}.tif"
-            _write_uint16(out / noisy_dir / name, frame.noisy)
-            _write_uint16(out / clean_dir / name, frame.clean)
+            write_image(out / noisy_dir / name, frame.noisy, text=f"grainwright demo scenario, seed {seed}, noisy")
+            write_image(out / clean_dir / name, frame.clean, text=f"grainwright demo scenario, seed {seed}, clean")
             rois[name] = frame.rois()
             manifest["frames"][f"{noisy_dir}/{name}"] = {"serial": frame.serial, "details": len(frame.details)}
         return rois
