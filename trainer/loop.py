@@ -39,7 +39,7 @@ class TrainingSetup:
     normalization: Any
     noise: Any = None
     data_fingerprint: str | None = None
-    data_profile: dict[str, Any] | None = None
+    training_noise: dict[str, Any] | None = None
     summary: dict[str, Any] = field(default_factory=dict)
 
 
@@ -177,7 +177,7 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
         summary = dict(setup.summary, **summarise())
         content = checkpoint_payload(model, setup.normalization, noise=setup.noise, scheme=scheme.name,
                                      training_summary=summary, data_fingerprint=setup.data_fingerprint,
-                                     data_profile=setup.data_profile)
+                                     training_noise=setup.training_noise)
         if with_resume:
             content.update(optimizer=optimizer.state_dict(), step=state["step"],
                            scheduler={key: state[key] for key in ("elapsed", "best", "best_step", "stale", "history")},
@@ -235,9 +235,9 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
             timing["seconds"] += seconds
             bar.update(1 if budget_steps else seconds)
             rate = config["data"]["batch_size"] / max(seconds, 1e-9)
-            bar.set_postfix(loss=f"{float(loss):.3g}", patches_s=f"{rate:.0f}", refresh=False)
+            bar.set_postfix(loss=f"{loss.item():.3g}", patches_s=f"{rate:.0f}", refresh=False)
             if writer is not None:
-                writer.add_scalar("train/loss", float(loss), state["step"])
+                writer.add_scalar("train/loss", loss.item(), state["step"])
                 writer.add_scalar("train/lr", rate_now, state["step"])
                 writer.add_scalar("speed/patches_per_second", rate, state["step"])
                 writer.add_scalar("speed/gflops_per_second", flops_per_step / max(seconds, 1e-9) / 1e9, state["step"])

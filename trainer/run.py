@@ -63,19 +63,16 @@ def _noise_description(config: dict[str, Any], root: Path) -> tuple[Any, Path | 
 
 
 def _estimate_noise(images: list[np.ndarray]) -> tuple[np.ndarray, bool, tuple[float, float] | None]:
-    """Per-channel Gaussian sigma (working units, median of the per-image MAD estimates), whether the estimate is
+    """Per-image, per-channel Gaussian sigma (MAD estimate, units of the images), whether the estimate is
     confident, and a Poisson-Gaussian ``(gain, read)`` fit when the noise looks signal-dependent."""
     from grainwright.inference.estimation import estimate_sigma, fit_poisson_gaussian
 
     per_image = np.array([estimate_sigma(image) for image in images], dtype=np.float64)
-    sigma = np.median(per_image, axis=0)
     spread = per_image.std(axis=0) / np.maximum(per_image.mean(axis=0), 1e-12)
-    confident = bool(np.all(sigma > 0) and np.all(spread < CONFIDENT_SPREAD))
+    confident = bool(np.all(np.median(per_image, axis=0) > 0) and np.all(spread < CONFIDENT_SPREAD))
     fit = fit_poisson_gaussian(images[int(np.argmax([image.size for image in images]))])
-    poisson = None
-    if getattr(fit, "signal_dependent", False):
-        poisson = (float(fit.gain), float(fit.read))
-    return sigma.astype(np.float32), confident, poisson
+    poisson = (float(fit.gain), float(fit.read)) if fit.signal_dependent and fit.confident else None
+    return per_image, confident or poisson is not None, poisson
 
 
 def _fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...], mode: str,
@@ -129,8 +126,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     noisy_native = [item[role] for item in images for role in roles if role != "clean"]
     estimated_sigma, confident, poisson = None, False, None
     if noisy_native:
-        estimated_sigma, confident, poisson = _estimate_noise(noisy_native)
-        estimated_sigma = estimated_sigma / np.float32(normalization.full_range)
+        per_image_sigma, confident, poisson = _estimate_noise(noisy_native)
+        estimated_sigma = (np.median(per_image_sigma, axis=0) / normalization.full_range).astype(np.float32)
         if poisson is not None:
             poisson = (poisson[0] / normalization.full_range, poisson[1] / normalization.full_range)
 
@@ -234,11 +231,12 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
             chunk = {role: array[start:start + size] for role, array in patches.items()}
             validation.append(scheme.prepare(chunk, fixed))
 
-    profile = None
+    training_noise = None
     if estimated_sigma is not None:
-        native_sigma = [float(s * normalization.full_range) for s in estimated_sigma]
-        profile = {"noise_sigma": native_sigma, "noise_sigma_range": [min(native_sigma), max(native_sigma)],
-                   "effective_bit_depth": normalization.bit_depth}
+        per_image = per_image_sigma.mean(axis=1)
+        training_noise = {"sigma_native": float(np.mean(estimated_sigma) * normalization.full_range),
+                          "sigma_native_range": [float(per_image.min()), float(per_image.max())],
+                          "effective_bit_depth": normalization.bit_depth}
     summary = {"layout": layout.name, "scheme": name, "training_images": len(train_images),
                "validation_images": len(validation_images), "data_folder": str(layout.root),
                "fixed_pattern_corrected": fixed_pattern, "transform": transform,
@@ -246,7 +244,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=source(train_images),
                           validation=validation, ground_truth=layout.has_ground_truth, normalization=normalization,
                           noise=noise, data_fingerprint=data_fingerprint(sorted({p for s in layout.samples for p in s})),
-                          data_profile=profile, summary=summary)
+                          training_noise=training_noise, summary=summary)
     return setup, layout, noise
 
 
@@ -259,7 +257,10 @@ def _create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFold
         raise InputError(out, "run folder exists and is not empty (choose another --out, or --resume it)")
     out.parent.mkdir(parents=True, exist_ok=True)
     temporary = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
     try:
+        temporary.chmod(0o777 & ~umask)  # mkdtemp makes it private; a run folder is an ordinary folder
         write_toml(temporary / "config.toml", config, header="grainwright training config, resolved (every key)")
         if noise is not None:
             save_noise(noise, temporary / "noise.toml")

@@ -23,9 +23,11 @@ from grainwright.trainer.schemes.base import Scheme, apply_model
 NEIGHBOUR_OFFSETS = np.array([(dy, dx) for dy in range(-2, 3) for dx in range(-2, 3) if (dy, dx) != (0, 0)])
 
 
-def _reflect(index: np.ndarray, size: int) -> np.ndarray:
-    index = np.abs(index)
-    return np.where(index > size - 1, 2 * (size - 1) - index, index)
+def _step(index: np.ndarray, offset: np.ndarray | int, size: int) -> np.ndarray:
+    """``index + offset``, or ``index - offset`` where that would leave ``[0, size)``: the mirrored neighbour,
+    never the pixel itself."""
+    moved = index + offset
+    return np.where((moved < 0) | (moved > size - 1), index - offset, moved)
 
 
 def draw_mask(rng: np.random.Generator, count: int, height: int, width: int, fraction: float,
@@ -56,9 +58,9 @@ def replace_masked(noisy: np.ndarray, mask: np.ndarray, how: str, rng: np.random
     height, width = mask.shape[1:]
     if how == "neighbor":
         offset = NEIGHBOUR_OFFSETS[rng.integers(0, len(NEIGHBOUR_OFFSETS), len(rows))]
-        source = noisy[sample, :, _reflect(rows + offset[:, 0], height), _reflect(cols + offset[:, 1], width)]
+        source = noisy[sample, :, _step(rows, offset[:, 0], height), _step(cols, offset[:, 1], width)]
     elif how == "mean":
-        source = sum(noisy[sample, :, _reflect(rows + dy, height), _reflect(cols + dx, width)]
+        source = sum(noisy[sample, :, _step(rows, dy, height), _step(cols, dx, width)]
                      for dy, dx in ((-1, 0), (1, 0), (0, -1), (0, 1))) / 4.0
     elif how == "noise":
         source = rng.random((len(rows), noisy.shape[1])).astype(np.float32)
