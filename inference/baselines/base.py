@@ -10,7 +10,8 @@ Every baseline function has the same call, ``function(image, sigma, **params) ->
 
 Parameters are physical: a radius or a width in pixels, a strength as a multiple of ``sigma``, or a
 named choice. Each parameter lists a small ground-truth search grid and a smaller grid for J-invariant
-calibration; a value left out of a grid keeps its default, which the baseline derives from ``sigma``.
+calibration; a value left out of a grid keeps its default, which the baseline derives from the noise level
+relative to the data's full range.
 """
 from __future__ import annotations
 
@@ -53,7 +54,8 @@ class Baseline:
     title : method and source for tables and docs, e.g. ``"BM3D (Dabov et al. 2007)"``.
     function : ``function(image, sigma, **params)``, see the module docstring.
     parameters : the tunable parameters, in physical units.
-    defaults : ``defaults(sigma) -> dict`` with a value for every parameter.
+    defaults : ``defaults(relative_sigma) -> dict`` with a value for every parameter, where ``relative_sigma``
+        is the noise standard deviation as a fraction of the data's full range.
     """
 
     name: str
@@ -79,6 +81,15 @@ class Baseline:
             return [{}]
         names = [name for name, _ in axes]
         return [dict(zip(names, values)) for values in itertools.product(*(values for _, values in axes))]
+
+
+def by_noise_level(relative_sigma: float, low: Any, medium: Any, high: Any) -> Any:
+    """Pick a default by noise level relative to the full range: below 15/255, below 35/255, above.
+
+    The bands are ours: they separate the noise levels at which our grid search picked different values.
+    """
+    level = relative_sigma * 255.0
+    return low if level < 15 else medium if level < 35 else high
 
 
 def per_channel(function: Callable[[np.ndarray], np.ndarray], image: np.ndarray) -> np.ndarray:

@@ -316,7 +316,7 @@ BASELINES = (
             Parameter("wiener", "choice", "run the Wiener stage"),
             Parameter("colour", "choice", "opponent or per-channel for colour images"),
         ),
-        defaults=lambda sigma: {
+        defaults=lambda level: {
             "threshold": 2.7, "search_radius": 19, "step": 3, "group_hard": 16, "group_wiener": 32,
             "match_hard": 4.0, "match_wiener": 0.64, "block": 8, "kaiser_beta": 2.0, "wiener": True,
             "colour": "opponent",

@@ -50,8 +50,12 @@ def get_baseline(name: str) -> Baseline:
     raise ConfigError(f"unknown baseline {name!r}{hint} (known: {', '.join(BASELINES)})")
 
 
-def resolve_params(name: str, sigma: float | np.ndarray, params: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Defaults for ``sigma`` (mean over channels) overlaid with ``params``; unknown keys raise ``ConfigError``."""
+def resolve_params(name: str, relative_sigma: float, params: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Defaults for a noise level overlaid with ``params``; unknown keys raise ``ConfigError``.
+
+    ``relative_sigma`` is the noise standard deviation as a fraction of the data's full range (in the working
+    range, simply sigma).
+    """
     baseline = get_baseline(name)
     params = dict(params or {})
     unknown = sorted(set(params) - set(baseline.parameter_names))
@@ -60,7 +64,7 @@ def resolve_params(name: str, sigma: float | np.ndarray, params: dict[str, Any] 
             f"baseline {name!r} has no parameter {', '.join(map(repr, unknown))} "
             f"(its parameters: {', '.join(baseline.parameter_names)})"
         )
-    resolved = baseline.defaults(float(np.mean(sigma)))
+    resolved = baseline.defaults(float(relative_sigma))
     resolved.update(params)
     return resolved
 
@@ -77,7 +81,9 @@ def channel_sigmas(sigma: float | np.ndarray | list[float], channels: int) -> np
     return sigmas
 
 
-def denoise(name: str, image: np.ndarray, sigma: float | np.ndarray, **params: Any) -> np.ndarray:
+def denoise(
+    name: str, image: np.ndarray, sigma: float | np.ndarray, *, data_range: float = 1.0, **params: Any
+) -> np.ndarray:
     """Denoise ``image`` with the baseline ``name``; additive white Gaussian noise of std ``sigma``.
 
     Parameters
@@ -87,6 +93,8 @@ def denoise(name: str, image: np.ndarray, sigma: float | np.ndarray, **params: A
     sigma : noise standard deviation in the image's units, one value or one per channel. Channels with
         different sigmas are rescaled to their mean sigma before filtering and back after, which is exact
         for every registered baseline because their parameters scale with sigma.
+    data_range : the full range of the data in the image's units (1.0 in the working range; the span of the
+        transformed range in a transformed domain); only the sigma-derived defaults use it.
     **params : the baseline's parameters in physical units; the rest come from its sigma-derived defaults.
 
     Returns
@@ -105,7 +113,7 @@ def denoise(name: str, image: np.ndarray, sigma: float | np.ndarray, **params: A
     sigmas = channel_sigmas(sigma, work.shape[2])
     common = float(np.mean(sigmas))
     scale = (common / sigmas).astype(np.float32)
-    resolved = resolve_params(name, common, params)
+    resolved = resolve_params(name, common / data_range, params)
     out = baseline.function(np.ascontiguousarray(work * scale, dtype=np.float32), common, **resolved)
     out = (out / scale).astype(np.float32)
     return out.reshape(array.shape)
