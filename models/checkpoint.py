@@ -18,9 +18,11 @@ Payload keys (every checkpoint):
 ``scheme``             training scheme name (``"supervised"``, ``"recorrupted"``, ...), or None
 ``training_summary``   dict written by the trainer (steps, minutes, best validation figures, ...), or None
 ``data_fingerprint``   str, :func:`data_fingerprint` of the training file list, or None
-``data_profile``       dict describing the training data as the runtime's domain check needs it, or None:
-                       ``noise_sigma`` (list per channel, native units, typical MAD estimate over the training
-                       images), ``noise_sigma_range`` ([min, max], native units), ``effective_bit_depth`` (int)
+``training_noise``     dict describing the training data as the runtime's domain check needs it, or None:
+                       ``sigma_native`` (float, typical noise standard deviation of the training images in native
+                       units, e.g. the median over images of the MAD estimate, averaged over channels),
+                       ``sigma_native_range`` ([min, max] over images, native units), ``effective_bit_depth``
+                       (int or None); more keys may be added
 ``created``            ISO 8601 UTC time the checkpoint was written
 ``tool_version``       grainwright version that wrote it
 
@@ -56,7 +58,7 @@ from grainwright.models.registry import architecture, build_model
 FORMAT = "grainwright-checkpoint"
 FORMAT_VERSION = 1
 REQUIRED_KEYS = ("format", "format_version", "architecture", "hyper", "channels", "state_dict", "normalization")
-OPTIONAL_KEYS = ("noise", "scheme", "training_summary", "data_fingerprint", "data_profile", "created", "tool_version")
+OPTIONAL_KEYS = ("noise", "scheme", "training_summary", "data_fingerprint", "training_noise", "created", "tool_version")
 RESUME_KEYS = ("optimizer", "scheduler", "rng", "step")
 
 
@@ -130,7 +132,7 @@ def checkpoint_payload(
     scheme: str | None = None,
     training_summary: Mapping[str, Any] | None = None,
     data_fingerprint: str | None = None,
-    data_profile: Mapping[str, Any] | None = None,
+    training_noise: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The payload dict for ``model`` and its data descriptions (objects with ``to_dict()`` or plain dicts)."""
     return {
@@ -145,7 +147,7 @@ def checkpoint_payload(
         "scheme": scheme,
         "training_summary": None if training_summary is None else dict(training_summary),
         "data_fingerprint": data_fingerprint,
-        "data_profile": None if data_profile is None else dict(data_profile),
+        "training_noise": None if training_noise is None else dict(training_noise),
         "created": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
         "tool_version": __version__,
     }

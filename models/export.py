@@ -1,0 +1,400 @@
+"""Export a checkpoint to one self-contained ONNX file: native values in, native values out.
+
+The graph holds the whole chain: normalisation to the working range, the variance-stabilising transform, the
+network (batch norm folded), the inverse transform and the mapping back to native values. A program with nothing
+but ONNX Runtime and the tiling rule from the metadata gets the same result as grainwright's own runtime.
+
+Interface (opset 17, dynamic batch, height and width):
+
+- input ``image``: float32 ``N x C x H x W``, native pixel values (e.g. 0..4095 for 12-bit data);
+- input ``noise_sigma`` (``residual-noisemap`` only): float32 ``N x 1 x H x W``, noise standard deviation per
+  pixel in native units (the graph converts it, see :mod:`grainwright.models.working_range`);
+- output ``denoised``: float32 ``N x C x H x W``, native values, neither clipped nor rounded.
+
+H and W must be multiples of the model's alignment. One JSON document under the ``metadata_props`` key
+``grainwright`` describes the model (:func:`build_metadata`). Every export checks ONNX Runtime against torch
+(numpy normalisation + torch network) and writes nothing when they differ by more than ``PARITY_TOLERANCE``.
+"""
+from __future__ import annotations
+
+import datetime
+import io
+import json
+import os
+import tempfile
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import torch
+from torch import nn
+
+from grainwright.inference import __version__
+from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.imageio import find_images, read_frames
+from grainwright.inference.modelinfo import METADATA_FORMAT, METADATA_KEY, METADATA_VERSION
+from grainwright.inference.normalization import Normalization
+from grainwright.models.base import Denoiser
+from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint, resolve_checkpoint
+from grainwright.models.working_range import WorkingRange
+
+OPSET = 17
+# Largest ONNX Runtime vs torch difference accepted, in fractions of the native range (high - low).
+PARITY_TOLERANCE = 1e-4
+PARITY_SHAPE = (123, 77)  # odd on purpose: padding to the alignment is part of what is checked
+CALIBRATION_CROP = 256
+MAX_CALIBRATION_FILES = 64
+CAUTION = (
+    "Denoising can remove exactly the detail that matters. On medical or safety-critical images the output is "
+    "an aid for viewing and screening, not a substitute for the original or for qualified review; follow local "
+    "regulations and licensed practice."
+)
+
+
+class ExportGraph(nn.Module):
+    """Native values -> working range -> network -> native values, as one module to trace."""
+
+    def __init__(self, model: Denoiser, working_range: WorkingRange):
+        super().__init__()
+        self.model = model
+        self.working_range = working_range
+
+    def forward(self, image: torch.Tensor, noise_sigma: torch.Tensor | None = None) -> torch.Tensor:
+        working = self.working_range.to_working(image)
+        sigma = None
+        if self.model.takes_noise_map:
+            sigma = self.working_range.noise_sigma_to_working(noise_sigma, image)
+        return self.working_range.from_working_float(self.model(working, sigma))
+
+
+def export_graph(model: Denoiser, normalization: Normalization, opset: int = OPSET) -> onnx.ModelProto:
+    """Trace ``model`` (eval mode, batch norm folded) with its normalisation into an ONNX model."""
+    graph = ExportGraph(model.for_export().eval(), WorkingRange(normalization)).eval()
+    side = 2 * model.alignment
+    example = [torch.rand(1, model.channels, side, side) * normalization.full_range + normalization.low]
+    names, axes = ["image"], {"image": {0: "N", 2: "H", 3: "W"}, "denoised": {0: "N", 2: "H", 3: "W"}}
+    if model.takes_noise_map:
+        example.append(torch.full((1, 1, side, side), 0.01 * normalization.full_range))
+        names.append("noise_sigma")
+        axes["noise_sigma"] = {0: "N", 2: "H", 3: "W"}
+    buffer = io.BytesIO()
+    with warnings.catch_warnings():
+        # The TorchScript-based exporter is deprecated in favour of one that needs onnxscript, which the training
+        # install does not carry; this one covers every operator we use.
+        warnings.simplefilter("ignore")
+        torch.onnx.export(
+            graph, tuple(example), buffer, input_names=names, output_names=["denoised"], dynamic_axes=axes,
+            opset_version=opset, do_constant_folding=True, dynamo=False,
+        )
+    proto = onnx.load_from_string(buffer.getvalue())
+    proto.producer_name, proto.producer_version = "grainwright", __version__
+    proto.doc_string = f"grainwright {model.name} denoiser: native float32 image in, denoised native float32 out"
+    return proto
+
+
+def session_for(proto: onnx.ModelProto | bytes, threads: int = 2) -> ort.InferenceSession:
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = threads
+    options.inter_op_num_threads = 1
+    data = proto if isinstance(proto, bytes) else proto.SerializeToString()
+    return ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
+
+
+def run_session(session: ort.InferenceSession, image: np.ndarray, noise_sigma: np.ndarray | None = None) -> np.ndarray:
+    """Run a grainwright ONNX session on a native ``(N, C, H, W)`` float32 batch."""
+    feeds = {"image": np.ascontiguousarray(image, dtype=np.float32)}
+    if noise_sigma is not None and any(i.name == "noise_sigma" for i in session.get_inputs()):
+        feeds["noise_sigma"] = np.ascontiguousarray(noise_sigma, dtype=np.float32)
+    return session.run(["denoised"], feeds)[0]
+
+
+def reference_output(model: Denoiser, normalization: Normalization, image: np.ndarray,
+                     noise_sigma: np.ndarray | None = None) -> np.ndarray:
+    """What the export must reproduce: numpy ``to_working``, the torch network, numpy ``from_working_float``."""
+    working = torch.from_numpy(normalization.to_working(image))
+    sigma = None
+    if model.takes_noise_map:
+        sigma = WorkingRange(normalization).noise_sigma_to_working(torch.from_numpy(noise_sigma), torch.from_numpy(image))
+    with torch.no_grad():
+        output = model.eval()(working, sigma).numpy()
+    return normalization.from_working_float(output)
+
+
+def pad_to_alignment(image: np.ndarray, alignment: int) -> np.ndarray:
+    """Pad ``(N, C, H, W)`` at the bottom and right to multiples of ``alignment`` by reflection (as the runtime)."""
+    height, width = image.shape[-2:]
+    extra = (-height % alignment, -width % alignment)
+    if extra == (0, 0):
+        return image
+    return np.pad(image, ((0, 0), (0, 0), (0, extra[0]), (0, extra[1])), mode="reflect")
+
+
+def parity_difference(session: ort.InferenceSession, model: Denoiser, normalization: Normalization,
+                      image: np.ndarray, noise_sigma: np.ndarray | None) -> float:
+    """Largest |ONNX Runtime - torch| over ``image``, in fractions of the native range."""
+    expected = reference_output(model, normalization, image, noise_sigma)
+    actual = run_session(session, image, noise_sigma)
+    if actual.shape != expected.shape:
+        raise GrainwrightError(f"exported graph returned shape {actual.shape}, expected {expected.shape}")
+    return float(np.max(np.abs(actual.astype(np.float64) - expected)) / normalization.full_range)
+
+
+def typical_sigma_native(payload: dict[str, Any], normalization: Normalization) -> float:
+    """Noise level for parity runs and calibration of noise-map models: the training level, else 2% of range."""
+    training = payload.get("training_noise") or {}
+    if training.get("sigma_native"):
+        return float(training["sigma_native"])
+    return 0.02 * normalization.full_range
+
+
+def tiling_rule(receptive_field: int, alignment: int, margin: int) -> str:
+    """The tiling rule in words, with this model's numbers (the runtime's rule, ``grainwright.inference.tiling``)."""
+    return (
+        f"1. Pad the image at the bottom and right by mirror reflection (numpy.pad mode 'reflect') to multiples "
+        f"of the alignment, {alignment} px; a whole-image run pads the same way. "
+        f"2. Cut the padded image into kept squares whose origins lie on the {alignment}-px grid. "
+        f"3. Run each kept square with a margin of {margin} px on every side (at least the receptive-field "
+        f"radius, {(receptive_field - 1) // 2} px, and a multiple of the alignment); never extend a window beyond "
+        f"the padded image, shift it inwards at the borders instead. "
+        f"4. Keep only each window's kept square, then crop the padding. The result equals a whole-image run."
+    )
+
+
+def build_metadata(payload: dict[str, Any], model: Denoiser, normalization: Normalization,
+                   parity: dict[str, Any], source: Path) -> dict[str, Any]:
+    """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in DEVELOPERS.md)."""
+    figures = model.describe()
+    inputs = {"image": "float32 N x C x H x W, native pixel values; H and W multiples of the alignment"}
+    if model.takes_noise_map:
+        inputs["noise_sigma"] = ("float32 N x 1 x H x W, noise standard deviation per pixel in native units; "
+                                 "scale it to change the strength")
+    return {
+        "format": METADATA_FORMAT,
+        "format_version": METADATA_VERSION,
+        "precision": "float32",
+        "architecture": {"name": model.name, "hyper": dict(model.hyper)},
+        "parameters": figures["parameters"],
+        "macs_per_pixel": figures["macs_per_pixel"],
+        "receptive_field": figures["receptive_field"],
+        "alignment": figures["alignment"],
+        "tile_margin": figures["tile_margin"],
+        "tiling_rule": tiling_rule(figures["receptive_field"], figures["alignment"], figures["tile_margin"]),
+        "channels": model.channels,
+        "takes_noise_map": model.takes_noise_map,
+        "inputs": inputs,
+        "outputs": {"denoised": "float32 N x C x H x W, native values, not clipped or rounded"},
+        "normalization": normalization.to_dict(),
+        "noise": payload.get("noise"),
+        "training_noise": payload.get("training_noise"),
+        "scheme": payload.get("scheme"),
+        "data_fingerprint": payload.get("data_fingerprint"),
+        "training_summary": payload.get("training_summary"),
+        "source_checkpoint": {"file": source.name, "created": payload.get("created"),
+                              "tool_version": payload.get("tool_version")},
+        "opset": OPSET,
+        "parity": parity,
+        "tool_version": __version__,
+        "created": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
+        "caution": CAUTION,
+    }
+
+
+def attach_metadata(proto: onnx.ModelProto, metadata: dict[str, Any]) -> onnx.ModelProto:
+    """Store ``metadata`` as JSON under the single ``grainwright`` key (replacing any earlier one)."""
+    kept = [entry for entry in proto.metadata_props if entry.key != METADATA_KEY]
+    del proto.metadata_props[:]
+    proto.metadata_props.extend(kept)
+    proto.metadata_props.add(key=METADATA_KEY, value=json.dumps(metadata, default=str, sort_keys=False))
+    return proto
+
+
+def write_model(proto: onnx.ModelProto, path: Path, overwrite: bool = False) -> Path:
+    """Check the model with ``onnx.checker`` and write it atomically (temporary name, then rename)."""
+    onnx.checker.check_model(proto, full_check=True)
+    if path.exists() and not overwrite:
+        raise InputError(path, "already exists; pass --overwrite to replace it")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(proto.SerializeToString())
+            stream.flush()
+            os.fsync(stream.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+    return path
+
+
+@dataclass
+class CalibrationImage:
+    path: Path
+    frame: np.ndarray  # (C, H, W) float32 native values
+
+
+def read_calibration(folder: str | Path, normalization: Normalization, limit: int = MAX_CALIBRATION_FILES) -> list[CalibrationImage]:
+    """Read up to ``limit`` images (first frame of each) and check they fit the model's data description."""
+    folder = Path(folder)
+    if not folder.exists():
+        raise InputError(folder, "no such calibration folder or file")
+    files = find_images(folder)[:limit]
+    if not files:
+        raise InputError(folder, "no PNG, TIFF or npy images found for calibration")
+    images = []
+    for path in files:
+        frames = read_frames(path)
+        channels = frames.shape[-1]
+        if channels != normalization.channels:
+            raise InputError(path, f"has {channels} channel(s); the model takes {normalization.channels}")
+        if frames.dtype.name != normalization.dtype:
+            raise InputError(path, f"is {frames.dtype.name} data; the model was trained on {normalization.dtype} data")
+        images.append(CalibrationImage(path, np.moveaxis(frames[0], -1, 0).astype(np.float32)))
+    return images
+
+
+def centre_crop(image: np.ndarray, edge: int) -> np.ndarray:
+    """Central crop of at most ``edge`` x ``edge`` pixels of a ``(C, H, W)`` array, as a batch of one."""
+    height, width = image.shape[-2:]
+    top, left = max(0, (height - edge) // 2), max(0, (width - edge) // 2)
+    return image[None, :, top:top + edge, left:left + edge]
+
+
+@dataclass
+class ExportResult:
+    path: Path
+    metadata: dict[str, Any]
+    int8_path: Path | None = None
+    int8_report: dict[str, Any] | None = None
+    messages: list[str] = field(default_factory=list)
+
+
+def int8_path_for(path: Path) -> Path:
+    """``model.onnx`` -> ``model.int8.onnx``."""
+    return path.with_name(f"{path.stem}.int8{path.suffix or '.onnx'}")
+
+
+def export_checkpoint(
+    source: str | Path,
+    output: str | Path,
+    *,
+    calibration: str | Path | None = None,
+    int8: bool = False,
+    min_int8_psnr: float = 40.0,
+    overwrite: bool = False,
+    threads: int = 2,
+    seed: int = 0,
+    log: Callable[[str], None] = lambda message: None,
+) -> ExportResult:
+    """Export a checkpoint (or a run folder's best checkpoint) to ONNX, with parity checks and metadata.
+
+    Parameters
+    ----------
+    source : path
+        A checkpoint file or a run folder (its ``checkpoints/best.pt`` is exported).
+    output : path
+        The FP32 ONNX file to write. With ``int8``, the INT8 file goes beside it as ``NAME.int8.onnx``.
+    calibration : path, optional
+        Folder of the user's images (same dtype and channels as in training): a parity crop, and with ``int8``
+        the calibration and held-out patches.
+    int8 : bool
+        Also write a statically quantised INT8 model (convolutions only), if its PSNR against the FP32 output
+        on held-out patches reaches ``min_int8_psnr`` dB.
+    overwrite : bool
+        Replace existing output files.
+
+    Returns
+    -------
+    ExportResult
+        Written paths, the FP32 metadata and the INT8 report (``int8_report["passed"]`` tells the gate's verdict).
+
+    Raises
+    ------
+    GrainwrightError
+        Bad input, or an ONNX Runtime vs torch difference above ``PARITY_TOLERANCE`` (nothing written then).
+    """
+    checkpoint = resolve_checkpoint(source)
+    output = Path(output)
+    if output.resolve() == checkpoint.resolve():
+        raise InputError(output, "is the checkpoint itself; choose another output name")
+    if int8 and calibration is None:
+        raise ConfigError("--int8 needs --calibration DIR: static quantisation is calibrated on your own images")
+    targets = [output] + ([int8_path_for(output)] if int8 else [])
+    for target in targets:
+        if target.exists() and not overwrite:
+            raise InputError(target, "already exists; pass --overwrite to replace it")
+    payload = load_checkpoint(checkpoint)
+    try:
+        normalization = Normalization.from_dict(payload["normalization"])
+    except GrainwrightError as error:
+        raise InputError(checkpoint, f"bad normalisation description: {error}") from None
+    if normalization.channels != payload["channels"]:
+        raise InputError(checkpoint, f"normalisation is for {normalization.channels} channel(s), "
+                                     f"the network for {payload['channels']}")
+    model = model_from_checkpoint(payload, checkpoint)
+    images = read_calibration(calibration, normalization) if calibration is not None else []
+
+    proto = export_graph(model, normalization)
+    session = session_for(proto, threads)
+    rng = np.random.default_rng(seed)
+    sigma_level = typical_sigma_native(payload, normalization)
+
+    def noise_map_for(batch: np.ndarray, random: bool) -> np.ndarray | None:
+        if not model.takes_noise_map:
+            return None
+        shape = (batch.shape[0], 1, *batch.shape[2:])
+        if random:  # a map that varies over the image, as signal-dependent noise does
+            return rng.uniform(0.25, 4.0, shape).astype(np.float32) * np.float32(sigma_level)
+        return np.full(shape, sigma_level, np.float32)
+
+    random_image = rng.uniform(normalization.low, normalization.high, (1, model.channels, *PARITY_SHAPE))
+    random_image = pad_to_alignment(random_image.astype(np.float32), model.alignment)
+    parity: dict[str, Any] = {
+        "tolerance": PARITY_TOLERANCE,
+        "units": "fractions of the native range (high - low), i.e. the working range before any transform",
+        "random": {"shape": list(random_image.shape),
+                   "max_abs_diff": parity_difference(session, model, normalization, random_image,
+                                                     noise_map_for(random_image, random=True))},
+        "calibration": None,
+    }
+    if images:
+        crop = pad_to_alignment(centre_crop(images[0].frame, CALIBRATION_CROP), model.alignment)
+        parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
+                                 "max_abs_diff": parity_difference(session, model, normalization, crop,
+                                                                   noise_map_for(crop, random=False))}
+    worst = max(entry["max_abs_diff"] for entry in (parity["random"], parity["calibration"]) if entry)
+    if not worst <= PARITY_TOLERANCE:
+        raise GrainwrightError(
+            f"{checkpoint}: parity check failed, ONNX Runtime and torch differ by {worst:.3g} of the range "
+            f"(limit {PARITY_TOLERANCE:g}); nothing was written"
+        )
+
+    metadata = build_metadata(payload, model, normalization, parity, checkpoint)
+    write_model(attach_metadata(proto, metadata), output, overwrite=overwrite)
+    result = ExportResult(output, metadata)
+    result.messages.append(f"wrote {output} (parity {worst:.2g} of the range, limit {PARITY_TOLERANCE:g})")
+    log(result.messages[-1])
+
+    if int8:
+        from grainwright.models.quantize import quantize_model
+
+        report, int8_proto = quantize_model(proto, model, normalization, images, noise_map_for,
+                                            min_psnr=min_int8_psnr, threads=threads, seed=seed)
+        result.int8_report = report
+        if report["passed"]:
+            int8_metadata = {**metadata, "precision": "int8", "int8": report}
+            result.int8_path = write_model(attach_metadata(int8_proto, int8_metadata), int8_path_for(output),
+                                           overwrite=overwrite)
+            result.messages.append(
+                f"wrote {result.int8_path} (INT8 vs FP32 on {report['held_out_patches']} held-out patches: "
+                f"{report['psnr_vs_fp32_db']:.1f} dB, {report['speed_ratio_vs_fp32']:.2f}x the FP32 speed)")
+        else:
+            result.messages.append(
+                f"INT8 model not written: {report['psnr_vs_fp32_db']:.1f} dB against the FP32 output on "
+                f"{report['held_out_patches']} held-out patches, below the {min_int8_psnr:g} dB threshold")
+        log(result.messages[-1])
+    return result
