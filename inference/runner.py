@@ -26,6 +26,7 @@ import onnxruntime as ort
 from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.estimation import estimate_sigma
 from grainwright.inference.modelinfo import METADATA_KEY, check_metadata
+from grainwright.inference.noise import NoiseModel, noise_from_dict
 from grainwright.inference.tiling import (
     Tile,
     TilePlan,
@@ -54,6 +55,7 @@ ENSEMBLE_TRANSFORMS: tuple[tuple[bool, bool, bool], ...] = (
     (True, True, True),
 )
 ENSEMBLE_SIZES = (1, 2, 4, 8)
+NOISE_SIGMA_MODES = ("estimate", "training", "model")
 
 
 def _transform(batch: np.ndarray, member: tuple[bool, bool, bool]) -> np.ndarray:
@@ -188,9 +190,11 @@ class Denoiser:
     strength : float
         For noise-map models, a factor on the noise map (0.5 denoises as if the noise were half as strong).
         For other models, a blend: ``output = input + strength * (model output - input)``.
-    noise_sigma : float or "estimate" or "training"
+    noise_sigma : float or "estimate" or "training" or "model"
         Noise-map models only: the noise standard deviation in native units, or "estimate" (per image, MAD
-        estimator of Donoho & Johnstone 1994), or "training" (the level in the model's metadata).
+        estimator of Donoho & Johnstone 1994), or "training" (the level in the model's metadata), or "model"
+        (a per-pixel map from the training noise model, e.g. ``sqrt(gain * x + read**2)`` for Poisson-Gaussian
+        noise after Foi et al. 2008, evaluated on the noisy input as the estimate of ``x``).
     ensemble : int
         1, 2, 4 or 8: average over that many flips / 90-degree rotations (self-ensemble).
     spec : ModelSpec, optional
@@ -216,8 +220,8 @@ class Denoiser:
             raise ConfigError(f"--ensemble must be one of {ENSEMBLE_SIZES}, got {ensemble}")
         if not np.isfinite(strength) or strength < 0:
             raise ConfigError(f"--strength must be a non-negative number, got {strength}")
-        if isinstance(noise_sigma, str) and noise_sigma not in ("estimate", "training"):
-            raise ConfigError(f"noise sigma must be a number, 'estimate' or 'training', got {noise_sigma!r}")
+        if isinstance(noise_sigma, str) and noise_sigma not in NOISE_SIGMA_MODES:
+            raise ConfigError(f"noise sigma must be a number or one of {NOISE_SIGMA_MODES}, got {noise_sigma!r}")
         self.threads = int(threads or os.cpu_count() or 1)
         options = ort.SessionOptions()
         options.intra_op_num_threads = self.threads
@@ -242,6 +246,7 @@ class Denoiser:
         self.spec = spec
         if spec.takes_noise_map and noise_sigma == "training" and spec.training_sigma is None:
             raise ConfigError(f"{self.path}: metadata has no training noise level; give a number or 'estimate'")
+        self.noise_model = self._noise_model(noise_sigma) if spec.takes_noise_map else None
         self.output_name = self.session.get_outputs()[0].name
         self.tile = int(tile) if tile else default_tile(spec.margin, spec.alignment)
         self.batch = int(batch) if batch else None
@@ -257,6 +262,27 @@ class Denoiser:
             return check_metadata(json.loads(text), self.path)
         except json.JSONDecodeError:
             raise InputError(self.path, "grainwright metadata is not valid JSON") from None
+
+    def _noise_model(self, noise_sigma: float | str) -> NoiseModel | None:
+        if noise_sigma != "model":
+            return None
+        description = (self.metadata or {}).get("noise")
+        if not description or self.spec.low is None or self.spec.high is None:
+            raise ConfigError(f"{self.path}: metadata has no noise model or native range; use 'estimate'")
+        model = noise_from_dict(description)
+        if model.sigma_map(np.zeros((1, 1, 1), np.float32)) is None:
+            raise ConfigError(f"{self.path}: the training noise ({model.kind}) has no per-pixel level; use 'estimate'")
+        return model
+
+    def _noise_map(self, windows: np.ndarray, sigma: float | None) -> np.ndarray:
+        """The ``noise_sigma`` input for ``(N, C, h, w)`` windows, native units, strength applied."""
+        shape = (windows.shape[0], 1, *windows.shape[2:])
+        if self.noise_model is None:
+            return np.full(shape, np.float32(self.strength * (sigma or 0.0)), np.float32)
+        scale = self.spec.high - self.spec.low
+        working = np.clip((windows - self.spec.low) / scale, 0.0, 1.0)
+        level = self.noise_model.sigma_map(working).mean(axis=1, keepdims=True) * scale
+        return (self.strength * level).astype(np.float32)
 
     # -- settings --------------------------------------------------------------------------------------------
 
@@ -289,6 +315,8 @@ class Denoiser:
             return None
         if sigma is not None:
             return float(sigma)
+        if self.noise_sigma == "model":
+            return None
         if self.noise_sigma == "training":
             return float(self.spec.training_sigma)
         if self.noise_sigma == "estimate":
@@ -305,8 +333,7 @@ class Denoiser:
             moved = _transform(windows, member)
             feeds = {"image": moved}
             if self.spec.takes_noise_map:
-                level = np.float32(self.strength * (sigma or 0.0))
-                feeds["noise_sigma"] = np.full((moved.shape[0], 1, *moved.shape[2:]), level, np.float32)
+                feeds["noise_sigma"] = self._noise_map(moved, sigma)
             result = _untransform(self.session.run([self.output_name], feeds)[0], member)
             total = result if total is None else total + result
         denoised = total if self.ensemble == 1 else total / np.float32(self.ensemble)

@@ -47,6 +47,8 @@ RECORD_TOOL = "grainwright denoise"
 DOMAIN_FACTOR = 2.0
 # Edge of the central crop a streamed frame's noise level and bit depth are estimated on (pixels).
 SAMPLE_EDGE = 1024
+# Below this edge (pixels) the wavelet MAD estimate has too few coefficients to be worth a warning.
+MIN_ESTIMATE_EDGE = 16
 
 
 @dataclass
@@ -107,10 +109,11 @@ def _same_run(record: dict[str, Any], expected: dict[str, Any]) -> bool:
 
 def domain_warnings(denoiser: Denoiser, sample: np.ndarray) -> list[str]:
     """Compare an input's noise level (MAD estimate, Donoho & Johnstone 1994) and effective bit depth with what
-    the model saw in training; one line per figure off by more than ``DOMAIN_FACTOR``."""
+    the model saw in training; one line per figure off by more than ``DOMAIN_FACTOR``. ``sample`` is the
+    frame, or its central ``SAMPLE_EDGE`` square for large frames."""
     spec, notes = denoiser.spec, []
     sigma = float(np.mean(estimate_sigma(sample)))
-    if spec.training_sigma:
+    if spec.training_sigma and min(sample.shape[:2]) >= MIN_ESTIMATE_EDGE:
         ratio = sigma / spec.training_sigma
         if not 1 / DOMAIN_FACTOR <= ratio <= DOMAIN_FACTOR:
             notes.append(f"noise level {sigma:.3g} is {ratio:.2g}x the training level {spec.training_sigma:.3g} "
@@ -121,6 +124,10 @@ def domain_warnings(denoiser: Denoiser, sample: np.ndarray) -> list[str]:
         if not 1 / DOMAIN_FACTOR <= ratio <= DOMAIN_FACTOR:
             notes.append(f"effective bit depth {bits} differs from the training data's {spec.training_bit_depth}")
     return notes
+
+
+def _noise_note(denoiser: Denoiser) -> str | None:
+    return "per pixel from the training noise model" if denoiser.noise_model is not None else None
 
 
 def _central_crop(height: int, width: int) -> tuple[int, int, int, int]:
@@ -252,7 +259,8 @@ def _in_memory(denoiser: Denoiser, source: Path, output: Path, record: dict[str,
     frames = read_frames(source)
     count, height, width, channels = frames.shape
     denoiser.check_channels(channels, source)
-    notes = domain_warnings(denoiser, frames[0])
+    y0, y1, x0, x1 = _central_crop(height, width)
+    notes = domain_warnings(denoiser, frames[0, y0:y1, x0:x1])
     if height * width >= 4_000_000:
         needed = frames.nbytes + count * height * width * channels * 4 * 3
         notes.append(f"decoded whole (not a tiled or striped TIFF): needs about {needed / 2**20:.0f} MiB")
@@ -264,7 +272,7 @@ def _in_memory(denoiser: Denoiser, source: Path, output: Path, record: dict[str,
         levels.append(level)
         values = denoiser.run(frame, sigma=level, as_float=True, progress=tiles_bar.update)
         results.append(values if as_float else to_dtype(values, frames.dtype, denoiser.spec))
-    record["noise_sigma_used"] = levels if denoiser.spec.takes_noise_map else None
+    record["noise_sigma_used"] = _noise_note(denoiser) or (levels if denoiser.spec.takes_noise_map else None)
     stack = np.stack(results)
     try:
         write_image(output, stack[0] if count == 1 else stack, text=json.dumps(record), overwrite=overwrite)
@@ -299,8 +307,8 @@ def _stream_tiff(denoiser: Denoiser, source: Path, output: Path, record: dict[st
             for _, kept in denoiser.kept_tiles(plan, read_padded_rows, level, tiles_bar.update):
                 yield kept if as_float else to_dtype(kept, out_dtype, denoiser.spec)
 
-        if not denoiser.spec.takes_noise_map:
-            record["noise_sigma_used"] = None
+        if not denoiser.spec.takes_noise_map or denoiser.noise_sigma == "model":
+            record["noise_sigma_used"] = _noise_note(denoiser)
         elif denoiser.noise_sigma == "estimate":
             # The record is written with the first page, before later frames are read: name the method instead.
             record["noise_sigma_used"] = f"estimated per frame on the central {y1 - y0} x {x1 - x0} pixels"

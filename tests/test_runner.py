@@ -17,6 +17,7 @@ from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.runner import Denoiser, ModelSpec
 
 NATIVE_HIGH = 1000.0  # the graphs map 0..1000 native to 0..1 working
+TRAINING_NOISE = {"kind": "poisson-gaussian", "gain": 0.01, "read": 0.02}  # working units
 
 
 def build_conv_model(
@@ -97,6 +98,8 @@ def build_conv_model(
         }
         if training_sigma is not None:
             document["training_noise"] = {"sigma_native": training_sigma}
+        if noise_map:
+            document["noise"] = dict(TRAINING_NOISE)
         onnx.helper.set_model_props(model, {"grainwright": json.dumps(document)})
     onnx.checker.check_model(model)
     onnx.save(model, str(path))
@@ -148,6 +151,21 @@ def test_noise_map_strength_scales_the_map(tmp_path):
     np.testing.assert_allclose(doubled, direct, atol=1e-4)
     np.testing.assert_allclose(trained, direct, atol=1e-4)
     assert np.max(np.abs(other - direct)) > 1e-3
+
+
+def test_noise_map_from_the_training_noise_model(tmp_path):
+    # Reference: the Poisson-Gaussian variance model gain * x + read^2 (Foi et al. 2008), in working units.
+    path = build_conv_model(tmp_path / "map.onnx", noise_map=True)
+    denoiser = Denoiser(path, threads=1, noise_sigma="model", strength=1.5)
+    windows = np.random.default_rng(4).uniform(-50, NATIVE_HIGH, (2, 1, 6, 7)).astype(np.float32)
+    x = np.clip(windows / NATIVE_HIGH, 0, 1)
+    expected = 1.5 * NATIVE_HIGH * np.sqrt(TRAINING_NOISE["gain"] * x + TRAINING_NOISE["read"] ** 2)
+    np.testing.assert_allclose(denoiser._noise_map(windows, None), expected, rtol=1e-5)
+    image = windows[0].transpose(1, 2, 0)
+    np.testing.assert_allclose(denoiser.run(image, as_float=True), denoiser.run_whole(image), atol=1e-3)
+    with pytest.raises(ConfigError, match="no noise model"):
+        Denoiser(build_conv_model(tmp_path / "plain.onnx", noise_map=True, metadata=True, seed=1),
+                 noise_sigma="model", spec=ModelSpec(receptive_field=9))
 
 
 @pytest.mark.parametrize("members", [2, 4, 8])

@@ -26,11 +26,11 @@ _MODEL_DIR = Path(tempfile.mkdtemp(prefix="grainwright-tiling-"))
 
 
 @functools.cache
-def _graph_denoiser(channels: int, pooled: bool, noise_map: bool) -> Denoiser:
-    name = f"c{channels}-p{int(pooled)}-m{int(noise_map)}.onnx"
+def _graph_denoiser(channels: int, pooled: bool, noise_map: bool, per_pixel: bool = False) -> Denoiser:
+    name = f"c{channels}-p{int(pooled)}-m{int(noise_map)}-{int(per_pixel)}.onnx"
     path = build_conv_model(_MODEL_DIR / name, channels=channels, pooled=pooled, noise_map=noise_map,
                             layers=3, width=4, seed=channels)
-    return Denoiser(path, threads=1, noise_sigma=30.0)
+    return Denoiser(path, threads=1, noise_sigma="model" if per_pixel else 30.0)
 
 
 @given(extra=st.integers(0, 40), size=st.integers(1, 9))
@@ -84,12 +84,13 @@ def test_pad_to_alignment_is_numpy_reflect():
 @given(
     height=st.integers(1, 70), width=st.integers(1, 70), tile=st.integers(1, 48),
     channels=st.sampled_from([1, 2, 3]), pooled=st.booleans(), noise_map=st.booleans(),
-    ensemble=st.sampled_from([1, 1, 2, 8]), seed=st.integers(0, 2**16),
+    per_pixel=st.booleans(), ensemble=st.sampled_from([1, 1, 2, 8]), seed=st.integers(0, 2**16),
 )
-def test_tiled_equals_whole_for_test_graphs(height, width, tile, channels, pooled, noise_map, ensemble, seed):
+def test_tiled_equals_whole_for_test_graphs(height, width, tile, channels, pooled, noise_map, per_pixel, ensemble,
+                                            seed):
     # Strips of one pixel and images smaller than one tile are in range; the reference is the same graph run
     # once on the whole padded image.
-    denoiser = _graph_denoiser(channels, pooled, noise_map)
+    denoiser = _graph_denoiser(channels, pooled, noise_map, per_pixel and noise_map)
     denoiser.tile, denoiser.ensemble, denoiser.batch = tile, ensemble, 1 + seed % 3
     image = np.random.default_rng(seed).uniform(0, NATIVE_HIGH, (height, width, channels)).astype(np.float32)
     tiled = denoiser.run(image, as_float=True)

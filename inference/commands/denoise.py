@@ -8,19 +8,19 @@ import time
 from tqdm import tqdm
 
 from grainwright.inference.errors import ConfigError
-from grainwright.inference.runner import ENSEMBLE_SIZES, Denoiser, ModelSpec
+from grainwright.inference.runner import ENSEMBLE_SIZES, NOISE_SIGMA_MODES, Denoiser, ModelSpec
 from grainwright.inference.runtime_batch import denoise_files
 
 HELP = "denoise images with an exported ONNX model (tiled, bounded memory, resumable; no torch needed)"
 
 
 def _noise_sigma(text: str) -> float | str:
-    if text in ("estimate", "training"):
+    if text in NOISE_SIGMA_MODES:
         return text
     try:
         value = float(text)
     except ValueError:
-        raise argparse.ArgumentTypeError("expected a number (native units), 'estimate' or 'training'") from None
+        raise argparse.ArgumentTypeError(f"expected a number (native units) or one of {NOISE_SIGMA_MODES}") from None
     if not value >= 0:
         raise argparse.ArgumentTypeError("the noise level must be >= 0")
     return value
@@ -46,7 +46,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         "S * (model output - input). Default 1.0")
     parser.add_argument("--noise-sigma", type=_noise_sigma, default="estimate", metavar="LEVEL",
                         help="noise-map models: noise standard deviation in native units, 'estimate' (per image, "
-                        "default) or 'training' (the level in the model's metadata)")
+                        "default), 'training' (the level in the model's metadata) or 'model' (per pixel, from the "
+                        "training noise model, e.g. Poisson-Gaussian)")
     parser.add_argument("--ensemble", type=int, choices=ENSEMBLE_SIZES, default=1,
                         help="average over 1, 2, 4 or 8 flips and 90-degree rotations (costs that many runs)")
     parser.add_argument("--threads", type=int, metavar="N", help="ONNX Runtime threads (default: all cores)")
