@@ -66,8 +66,18 @@ def _hwc(image: np.ndarray) -> np.ndarray:
     return array[:, :, None] if array.ndim == 2 else array
 
 
-def _grid(name: str, kind: str, grid: list[dict[str, Any]] | None) -> list[dict[str, Any]]:
-    return get_baseline(name).grid(kind) if grid is None else list(grid)
+def _grid(
+    name: str, kind: str, grid: list[dict[str, Any]] | None, noise: NoiseLike, include_defaults: bool
+) -> list[dict[str, Any]]:
+    """The grid points to try; with ``include_defaults``, also the defaults (so tuning never loses to them)."""
+    points = get_baseline(name).grid(kind) if grid is None else [dict(point) for point in grid]
+    if include_defaults:
+        defaults = resolve_params(name, _relative_sigma(noise))
+        keys = sorted({key for point in points for key in point})
+        default_point = {key: defaults[key] for key in keys}
+        if default_point not in points:
+            points.append(default_point)
+    return points
 
 
 def _relative_sigma(noise: NoiseLike) -> float:
@@ -83,6 +93,7 @@ def tune_on_ground_truth(
     *,
     peak: float = 1.0,
     grid: list[dict[str, Any]] | None = None,
+    include_defaults: bool = True,
 ) -> Tuning:
     """Grid search for the parameters of baseline ``name`` that maximise PSNR against ``clean``.
 
@@ -93,6 +104,7 @@ def tune_on_ground_truth(
     noise : the noise (a Gaussian sigma, a noise model or its dict; see ``baselines.domains``).
     peak : PSNR peak in the images' units (1.0 for the working range).
     grid : points to try as keyword dicts; default the baseline's "search" grid.
+    include_defaults : also try the sigma-derived defaults (restricted to the grid's keys).
 
     Returns
     -------
@@ -102,7 +114,7 @@ def tune_on_ground_truth(
     if noisy.shape != clean.shape:
         raise InputError(None, f"noisy image {noisy.shape} and clean image {clean.shape} differ in shape")
     trials = []
-    for point in _grid(name, "search", grid):
+    for point in _grid(name, "search", grid, noise, include_defaults):
         trials.append((point, psnr(clean, denoise_in_domain(name, noisy, noise, **point), peak)))
     best_point, best_score = max(trials, key=lambda trial: trial[1])
     params = resolve_params(name, _relative_sigma(noise), best_point)
@@ -169,6 +181,7 @@ def calibrate(
     grid: list[dict[str, Any]] | None = None,
     stride: int = 4,
     passes: int | None = None,
+    include_defaults: bool = True,
 ) -> Tuning:
     """J-invariant calibration of baseline ``name`` on ``noisy`` alone (Batson and Royer 2019).
 
@@ -180,6 +193,7 @@ def calibrate(
     grid : points to try as keyword dicts; default the baseline's "calibration" grid.
     stride : spacing of the interleaved pixel grids (``stride^2`` denoiser runs per point with all passes).
     passes : how many of the grids to score (None: all); 4 of 16 is a usable quick estimate.
+    include_defaults : also try the sigma-derived defaults (restricted to the grid's keys).
 
     Returns
     -------
@@ -187,7 +201,7 @@ def calibrate(
     """
     noisy = _hwc(noisy)
     trials = []
-    for point in _grid(name, "calibration", grid):
+    for point in _grid(name, "calibration", grid, noise, include_defaults):
         loss = j_invariant_loss(
             lambda image, point=point: denoise_in_domain(name, image, noise, **point), noisy,
             stride=stride, passes=passes,

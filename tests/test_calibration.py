@@ -12,7 +12,7 @@ from skimage import data
 from skimage.metrics import peak_signal_noise_ratio
 from skimage.restoration import calibrate_denoiser, denoise_tv_chambolle
 
-from grainwright.inference.baselines.registry import denoise
+from grainwright.inference.baselines.registry import denoise, resolve_params
 from grainwright.inference.calibration import (
     CALIBRATED_LABEL,
     GROUND_TRUTH_LABEL,
@@ -44,7 +44,7 @@ def test_same_best_gaussian_width_as_scikit_image():
         approximate_loss=False,
         extra_output=True,
     )
-    ours = calibrate("gaussian", noisy, SIGMA, grid=[{"width": w} for w in widths])
+    ours = calibrate("gaussian", noisy, SIGMA, grid=[{"width": w} for w in widths], include_defaults=False)
     assert ours.params["width"] == tested[int(np.argmin(losses))]["width"]
     assert ours.label == CALIBRATED_LABEL
     # Same construction, so the losses agree too.
@@ -62,7 +62,7 @@ def test_same_best_tv_weight_as_scikit_image():
         approximate_loss=False,
         extra_output=True,
     )
-    ours = calibrate("tv", noisy, SIGMA, grid=[{"strength": s} for s in strengths])
+    ours = calibrate("tv", noisy, SIGMA, grid=[{"strength": s} for s in strengths], include_defaults=False)
     assert ours.params["strength"] * SIGMA == pytest.approx(tested[int(np.argmin(losses))]["weight"])
 
 
@@ -108,6 +108,8 @@ def test_ground_truth_search_finds_the_psnr_maximum():
     }
     assert tuning.params["strength"] == max(direct, key=direct.get)
     assert tuning.score == pytest.approx(max(direct.values()), abs=1e-3)
+    # The defaults are among the points tried, so tuning never reports less than the defaults give.
+    assert {"strength": resolve_params("tv", SIGMA)["strength"]} in [point for point, _ in tuning.trials]
     assert tuning.to_dict()["label"] == GROUND_TRUTH_LABEL
 
 
