@@ -38,8 +38,9 @@ from grainwright.inference.tiling import (
     tile_margin,
 )
 
-# Window pixels per ONNX Runtime call when the caller does not choose a batch size, measured with
-# `grainwright bench runtime` (README, bench-runtime): larger batches gained nothing and cost memory.
+# Window pixels per ONNX Runtime call when the caller does not choose a batch size: a few default tiles per
+# call, which bounds activation memory (48 channels x 4 B x 400k pixels = 77 MB per layer). On the shared
+# reference machine 1, ~4 and ~16 tiles per call measured alike within the noise (README, bench-runtime).
 DEFAULT_BATCH_PIXELS = 400_000
 
 # Self-ensemble members: (transpose, flip rows, flip columns) applied to (N, C, H, W) arrays. The first 2 are the
@@ -427,7 +428,7 @@ class Denoiser:
 
     def denoise_files(self, inputs: list[str | Path], out_dir: str | Path, **options: Any) -> Iterator[Any]:
         """Generator over files: see :func:`grainwright.inference.runtime_batch.denoise_files`."""
-        from grainwright.inference.runtime_batch import denoise_files
+        from grainwright.inference.runtime_batch import denoise_files  # that module imports this one
 
         return denoise_files(self, inputs, out_dir, **options)
 

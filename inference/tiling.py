@@ -28,8 +28,10 @@ from typing import TypeVar
 
 import numpy as np
 
-# The smallest default kept edge, measured with `grainwright bench runtime` (see README, bench-runtime): below
-# about 256 pixels the per-call overhead of ONNX Runtime shows; above it throughput is flat.
+# The smallest default kept edge (pixels). `grainwright bench runtime` sweeps the tile size (README,
+# bench-runtime): from 128 to 512 pixels the file-to-file throughput stayed within the noise of the shared
+# reference machine, so the default is the smallest edge whose overlap cost stays small for shallow models while
+# keeping a window's activations modest (48 channels x 4 B x 276^2 pixels = 15 MB per layer at margin 10).
 MIN_DEFAULT_TILE = 256
 # Overlap may cost at most this fraction of extra computed pixels at the default tile size.
 MAX_OVERLAP_COST = 0.15

@@ -156,28 +156,28 @@ def run(args: argparse.Namespace) -> int:
         for denoiser in contenders.values():  # warm up kernels and arenas on a small image
             denoiser.run(small)
         timings: dict[str, list[float]] = {}
+        default_tile = fp32.tile
         for _ in range(args.repeat):  # interleaved so that load changes hit every contender alike
             for label, denoiser in contenders.items():
                 timings.setdefault(f"{label} bare", []).append(_timed(_bare_call(denoiser, image)))
                 timings.setdefault(f"{label} file", []).append(
                     _timed(_file_path(denoiser, source, folder / f"out-{label}")))
+            for tile in tiles:
+                fp32.tile = tile
+                timings.setdefault(f"tile {tile}", []).append(_timed(_file_path(fp32, source, folder / "out-tile")))
+            fp32.tile = default_tile
         medians = {key: statistics.median(values) for key, values in timings.items()}
-        figures["throughput"] = {key: rate(value) for key, value in medians.items()}
+        figures["throughput"] = {key: rate(value) for key, value in medians.items() if not key.startswith("tile")}
         for label in contenders:
-            ratio = medians[f"{label} bare"] / medians[f"{label} file"]
-            figures["throughput"][f"{label} file/bare"] = ratio
+            figures["throughput"][f"{label} file/bare"] = medians[f"{label} bare"] / medians[f"{label} file"]
         if quantised:
             figures["throughput"]["int8/fp32 bare speed"] = medians["fp32 bare"] / medians["int8 bare"]
             figures["throughput"]["int8/fp32 file speed"] = medians["fp32 file"] / medians["int8 file"]
-
-        sweep = {}
-        default_tile = fp32.tile
-        for tile in tiles:
-            fp32.tile = tile
-            sweep[tile] = rate(_timed(_file_path(fp32, source, folder / "out-sweep")))
-            sweep[tile]["overlap_cost"] = fp32.plan(args.size, args.size).computed_pixels / args.size**2 - 1
-        fp32.tile = default_tile
-        figures["tile_sweep"] = sweep
+        figures["tile_sweep"] = {
+            tile: {**rate(medians[f"tile {tile}"]), "file/bare": medians["fp32 bare"] / medians[f"tile {tile}"],
+                   "overlap_cost": fp32.plan(args.size, args.size, tile).computed_pixels / args.size**2 - 1}
+            for tile in tiles
+        }
 
         frame = image[:1024, :1024]
         per_frame = {}
@@ -226,7 +226,8 @@ def _print(figures: dict[str, Any]) -> None:
             print(f"  {key:24s} {value:.2f}")
     print("\nfile-to-file path by kept-tile edge:")
     for tile, value in figures["tile_sweep"].items():
-        print(f"  tile {tile:5d}  {value['mp_per_s']:7.3f} MP/s  overlap cost {value['overlap_cost']:.1%}")
+        print(f"  tile {tile:5d}  {value['mp_per_s']:7.3f} MP/s  file/bare {value['file/bare']:.2f}  "
+              f"computed overlap {value['overlap_cost']:.1%}")
     print("\nseconds per 1-MP frame (1024 x 1024, in memory):")
     for key, value in figures["seconds_per_1mp_frame"].items():
         print(f"  {key:18s} {value:.2f} s")
