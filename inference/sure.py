@@ -15,6 +15,7 @@ from collections.abc import Callable
 from dataclasses import asdict, dataclass
 
 import numpy as np
+from scipy import ndimage
 
 Denoise = Callable[[np.ndarray], np.ndarray]
 
@@ -76,6 +77,7 @@ def sure_mse(
     probes: int = 1,
     epsilon: float | None = None,
     output: np.ndarray | None = None,
+    mask: np.ndarray | None = None,
     seed: int = 0,
 ) -> SureEstimate:
     """Estimate a black-box denoiser's mean squared error without the clean image (Monte-Carlo SURE).
@@ -109,6 +111,10 @@ def sure_mse(
         Monte-Carlo SURE practice; Ramani et al. report the estimate flat over a wide range of small values.
     output : ndarray, optional
         ``denoise(noisy)`` when already computed.
+    mask : ndarray of bool, optional
+        Elements to score (broadcastable to ``noisy``), e.g. leaving out pixels near the clipping levels, where
+        the noise is not Gaussian. Stein's identity holds element by element, so the estimate is then the mean
+        squared error over those elements; the probe only perturbs them.
     seed : int
         Seed of the probe draws.
 
@@ -117,9 +123,12 @@ def sure_mse(
     SureEstimate
     """
     noisy = np.asarray(noisy, dtype=np.float64)
-    count = noisy.size
-    variance = _variance(sigma, noisy.shape)
-    mean_variance = float(variance.mean())
+    weight = np.ones(noisy.shape) if mask is None else np.broadcast_to(mask, noisy.shape).astype(np.float64)
+    count = float(weight.sum())
+    if count == 0:
+        raise ValueError("SURE needs at least one scored element")
+    variance = _variance(sigma, noisy.shape) * weight
+    mean_variance = float(variance.sum()) / count
     if epsilon is None:
         epsilon = 2.0 * math.sqrt(mean_variance) * count**-0.3
     if epsilon <= 0:
@@ -128,15 +137,17 @@ def sure_mse(
         output = denoise(noisy)
     output = np.asarray(output, dtype=np.float64)
 
-    rng = np.random.default_rng(seed)
+    # A spawned stream, so the probe never replays a noise field drawn with default_rng(seed) (a probe equal to
+    # the noise would bias the divergence).
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(1,)))
     divergence = 0.0
     for _ in range(probes):
-        probe = rng.standard_normal(noisy.shape)
+        probe = rng.standard_normal(noisy.shape) * weight
         perturbed = np.asarray(denoise(noisy + epsilon * probe), dtype=np.float64)
         divergence += float(np.sum(variance * probe * (perturbed - output))) / epsilon
     divergence /= probes
 
-    mse = float(np.mean((noisy - output) ** 2)) - mean_variance + 2.0 * divergence / count
+    mse = float(np.sum(weight * (noisy - output) ** 2)) / count - mean_variance + 2.0 * divergence / count
     mse_standard_error = math.sqrt(2.0 * float(np.sum(variance**2))) / count
     psnr = psnr_from_mse(mse, peak)
     if mse > 0:
@@ -164,6 +175,7 @@ def sure_mse_stabilized(
     probes: int = 1,
     epsilon: float | None = None,
     output: np.ndarray | None = None,
+    mask: np.ndarray | None = None,
     seed: int = 0,
 ) -> SureEstimate:
     """Monte-Carlo SURE in a variance-stabilised domain, for Poisson-Gaussian data.
@@ -185,7 +197,7 @@ def sure_mse_stabilized(
         The stabilising transform and its algebraic inverse, elementwise.
     peak : float
         Peak of the stabilised signal (``forward(high) - forward(low)``).
-    probes, epsilon, output, seed
+    probes, epsilon, output, mask, seed
         As in :func:`sure_mse`; ``output`` is ``denoise(noisy)`` untransformed.
 
     Returns
@@ -208,5 +220,38 @@ def sure_mse_stabilized(
         probes=probes,
         epsilon=epsilon,
         output=stabilized_output,
+        mask=mask,
         seed=seed,
     )
+
+
+def unclipped_mask(
+    noisy: np.ndarray,
+    noise_std: float | np.ndarray,
+    *,
+    low: float = 0.0,
+    high: float = 1.0,
+    margin: float = 3.0,
+    smoothing: float = 2.0,
+) -> np.ndarray:
+    """Elements far enough from the clipping levels for their noise to be Gaussian.
+
+    Sensor data is clipped at its range: there the noise is neither zero-mean nor of the stated variance and
+    SURE's identity fails (seen here: several dB of error on a sample image with 8% saturated pixels). An
+    element is kept when a smoothed copy of the image (Gaussian of ``smoothing`` pixels, per channel) lies more
+    than ``margin`` noise standard deviations inside ``[low, high]``.
+
+    Parameters
+    ----------
+    noisy : ndarray
+        ``(H, W)`` or ``(H, W, C)``.
+    noise_std : float or ndarray
+        Noise standard deviation: scalar, per channel (last axis) or per element.
+    low, high : float
+        Clipping levels (the working range is ``[0, 1]``).
+    """
+    noisy = np.asarray(noisy, dtype=np.float64)
+    widths = (smoothing, smoothing) + (0.0,) * (noisy.ndim - 2)
+    local = ndimage.gaussian_filter(noisy, widths)
+    spread = margin * np.sqrt(_variance(noise_std, noisy.shape))
+    return (local - spread > low) & (local + spread < high)

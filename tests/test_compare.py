@@ -1,0 +1,194 @@
+"""``grainwright compare`` end to end on small sample-image crops, with and without ground truth.
+
+Open data: crops of scikit-image's camera and coins images with Gaussian noise added here. Outside references:
+SciPy's ``uniform_filter`` for the output of the stand-in ONNX model (a 3x3 box mean written as an ONNX graph),
+``skimage.metrics.peak_signal_noise_ratio`` for its PSNR.
+"""
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+import numpy as np
+import onnx
+import pytest
+from onnx import TensorProto, helper, numpy_helper
+from scipy import ndimage
+from skimage import data
+from skimage.metrics import peak_signal_noise_ratio
+
+from grainwright.inference.cli import main
+from grainwright.inference.compare import CompareOptions, parse_methods, run_comparison
+from grainwright.inference.errors import ConfigError, InputError
+from grainwright.inference.imageio import write_image
+
+QUICK = CompareOptions(quick=True, threads=1)
+FAST_METHODS = "box.onnx,gaussian,median"
+
+
+def box_mean_model(path: Path, channels: int = 1) -> Path:
+    """A 3x3 box mean per channel as an ONNX graph with grainwright metadata (zero padding at the border)."""
+    weight = numpy_helper.from_array(np.full((channels, 1, 3, 3), 1 / 9, np.float32), "weight")
+    node = helper.make_node("Conv", ["image", "weight"], ["denoised"], pads=[1, 1, 1, 1], group=channels)
+    graph = helper.make_graph(
+        [node], "box-mean",
+        [helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", channels, "H", "W"])],
+        [helper.make_tensor_value_info("denoised", TensorProto.FLOAT, ["N", channels, "H", "W"])], [weight],
+    )
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    metadata = {
+        "format": "grainwright-model", "format_version": 1,
+        "architecture": {"name": "box-mean", "receptive_field": 3, "alignment": 1},
+        "channels": channels, "takes_noise_map": False,
+        "normalization": {"dtype": "uint8", "bit_depth": 8, "low": 0.0, "high": 255.0},
+    }
+    helper.set_model_props(model, {"grainwright": json.dumps(metadata)})
+    onnx.save(model, str(path))
+    return path
+
+
+@pytest.fixture(scope="module")
+def dataset(tmp_path_factory) -> Path:
+    """noisy/ and clean/ with two 96x96 8-bit crops (camera, coins), Gaussian noise of 15 grey levels."""
+    root = tmp_path_factory.mktemp("compare")
+    rng = np.random.default_rng(0)
+    crops = {"camera.png": data.camera()[120:216, 200:296], "coins.png": data.coins()[60:156, 80:176]}
+    for name, clean in crops.items():
+        noisy = np.clip(np.rint(clean + 15.0 * rng.standard_normal(clean.shape)), 0, 255).astype(np.uint8)
+        write_image(root / "clean" / name, clean)
+        write_image(root / "noisy" / name, noisy)
+    box_mean_model(root / "box.onnx")
+    box_mean_model(root / "box-rgb.onnx", channels=3)
+    return root
+
+
+def _assert_offline(report: Path) -> None:
+    page = (report / "index.html").read_text(encoding="utf-8")
+    assert not re.search(r"(?i)https?:|//[a-z0-9.-]+\.[a-z]{2,}/", page), "index.html must not reference the network"
+    sources = re.findall(r"""(?:src|href)\s*=\s*['"]([^'"]+)['"]""", page)
+    assert sources, "the report shows images"
+    for source in sources:
+        assert not Path(source).is_absolute()
+        assert (report / source).is_file(), source
+
+
+@pytest.fixture(scope="module")
+def with_truth(dataset, tmp_path_factory):
+    out = tmp_path_factory.mktemp("reports") / "with-truth"
+    methods = ",".join(str(dataset / m) if m.endswith(".onnx") else m for m in FAST_METHODS.split(","))
+    return run_comparison(dataset / "noisy", methods, out, clean_dir=dataset / "clean", options=QUICK)
+
+
+def test_with_ground_truth_ranks_by_psnr_and_labels_tuning(with_truth, dataset):
+    result = with_truth
+    assert [entry["rank"] for entry in result.ranking] == [1, 2, 3]
+    psnrs = [entry["psnr"] for entry in result.ranking]
+    assert psnrs == sorted(psnrs, reverse=True)
+    for entry in result.ranking:
+        expected = "learned" if entry["method"] == "box" else "classical"
+        assert entry["kind"] == expected
+        if expected == "classical":
+            assert entry["parameter_choice"] == "tuned on ground truth"
+        assert entry["seconds_per_megapixel"] > 0
+        assert 0 < entry["ssim"] <= 1 and 0 < entry["ms_ssim"] <= 1
+        assert entry["sure_psnr"] is not None
+    # Every table on the page says how the classical parameters were chosen.
+    page = (result.report_dir / "index.html").read_text(encoding="utf-8")
+    tables = page.split("<table")[1:]
+    assert len(tables) == 3
+    assert all("tuned on ground truth" in table for table in tables)
+    assert "Caution" in page and "not a substitute" in page
+
+
+def test_learned_model_output_matches_scipy_box_mean(with_truth, dataset):
+    # The ONNX path (native values -> model -> working range) against SciPy's uniform filter with zero padding,
+    # scored by scikit-image's PSNR: the report's figure must be that same number.
+    from grainwright.inference.imageio import read_image
+
+    for name in ("camera.png", "coins.png"):
+        noisy = read_image(dataset / "noisy" / name)[:, :, 0].astype(np.float64)
+        clean = read_image(dataset / "clean" / name)[:, :, 0].astype(np.float64)
+        expected_output = np.clip(ndimage.uniform_filter(noisy, 3, mode="constant"), 0, 255)
+        expected = peak_signal_noise_ratio(clean, expected_output, data_range=255)
+        row = next(r for r in with_truth.per_image if r["image"] == name and r["method"] == "box")
+        assert row["psnr"] == pytest.approx(expected, abs=1e-3)
+
+
+def test_report_files_and_offline_page(with_truth):
+    report = with_truth.report_dir
+    _assert_offline(report)
+    lines = (report / "results.csv").read_text(encoding="utf-8").strip().splitlines()
+    assert len(lines) == 1 + 2 * 3  # header, two images x three methods
+    assert "seconds_per_megapixel" in lines[0]
+    document = json.loads((report / "results.json").read_text(encoding="utf-8"))
+    assert document["ranking"][0]["method"] == with_truth.ranking[0]["method"]
+    assert document["regions"], "regions were found automatically"
+    assert any(f.startswith("Removed the most structure") for f in document["findings"])
+    assert "caution" in document
+
+
+def test_without_ground_truth_ranks_by_sure_and_reports_no_reference_figures(dataset, tmp_path):
+    rois = tmp_path / "rois.json"
+    rois.write_text(json.dumps({"coins.png": {"coin-edge": {"feature": [30, 30, 8, 8], "background": [2, 2, 8, 8]}}}))
+    result = run_comparison(dataset / "noisy", ["gaussian,median", str(dataset / "box.onnx")], tmp_path / "out",
+                            rois=rois, options=QUICK)
+    assert not result.ground_truth
+    assert [entry["sure_rank"] for entry in result.ranking] == [1, 2, 3]
+    for entry in result.ranking:
+        assert "psnr" not in entry or entry["psnr"] is None
+        assert entry["j_invariant_loss"] > 0
+        assert 0 <= entry["noise_left"] < 1.2
+        if entry["kind"] == "classical":
+            assert entry["parameter_choice"].startswith("calibrated without ground truth")
+    coins_regions = {d["region"] for d in result.regions if d["image"] == "coins.png"}
+    assert coins_regions == {"coin-edge"}
+    assert any(d["region"].startswith("auto-") for d in result.regions if d["image"] == "camera.png")
+    _assert_offline(result.report_dir)
+
+
+def test_parse_methods_expands_and_suggests(dataset):
+    names = [spec.label for spec in parse_methods("all-classical,gaussian")]
+    assert "bm3d" in names and names.count("gaussian") == 1
+    with pytest.raises(ConfigError, match="did you mean gaussian"):
+        parse_methods("gausian")
+    with pytest.raises(InputError, match="model file not found"):
+        parse_methods(str(dataset / "missing.onnx"))
+
+
+def _cli(args: list[str], capsys) -> tuple[int, str]:
+    code = main(["compare", *args])
+    return code, capsys.readouterr().err.strip()
+
+
+def test_bad_input_gives_one_line_errors(dataset, tmp_path, capsys):
+    noisy, clean = str(dataset / "noisy"), str(dataset / "clean")
+    code, err = _cli(["--noisy", noisy, "--methods", "gausian", "-o", str(tmp_path / "r1")], capsys)
+    assert code == 2 and "did you mean gaussian" in err and len(err.splitlines()) == 1
+
+    code, err = _cli(["--noisy", noisy, "--methods", str(dataset / "box-rgb.onnx"), "-o", str(tmp_path / "r2")],
+                     capsys)
+    assert code == 2 and "box-rgb.onnx" in err and "3 channel" in err and len(err.splitlines()) == 1
+
+    partial = tmp_path / "clean-partial"
+    write_image(partial / "camera.png", np.zeros((96, 96), np.uint8))
+    code, err = _cli(["--noisy", noisy, "--clean", str(partial), "--methods", "mean", "-o", str(tmp_path / "r3")],
+                     capsys)
+    assert code == 2 and "coins.png" in err and "no clean image" in err
+
+    wrong_shape = tmp_path / "clean-shape"
+    write_image(wrong_shape / "camera.png", np.zeros((90, 96), np.uint8))
+    write_image(wrong_shape / "coins.png", np.zeros((96, 96), np.uint8))
+    code, err = _cli(["--noisy", noisy, "--clean", str(wrong_shape), "--methods", "mean", "-o",
+                      str(tmp_path / "r4")], capsys)
+    assert code == 2 and "camera.png" in err and "shape" in err
+
+    existing = tmp_path / "r5"
+    existing.mkdir()
+    (existing / "keep.txt").write_text("user data")
+    code, err = _cli(["--noisy", noisy, "--clean", clean, "--methods", "mean", "-o", str(existing)], capsys)
+    assert code == 2 and "--overwrite" in err
+    assert (existing / "keep.txt").read_text() == "user data"
+    for name in ("r1", "r2", "r3", "r4"):
+        assert not (tmp_path / name).exists(), "nothing half-written"
