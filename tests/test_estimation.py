@@ -50,3 +50,120 @@ def test_per_channel_and_units_follow_the_input():
     noisy = clean + RNG.normal(0, 1, clean.shape) * sigmas
     np.testing.assert_allclose(estimate_sigma(noisy), sigmas, rtol=0.10)
     np.testing.assert_allclose(estimate_sigma(noisy / 255.0), sigmas / 255.0, rtol=0.10)
+
+
+# ------------------------------------------------------------------------------- Poisson-Gaussian fit
+from scipy import ndimage  # noqa: E402
+
+from grainwright.inference.estimation import (  # noqa: E402
+    analyse_noise,
+    correct_fixed_pattern,
+    detect_banding,
+    detect_correlation,
+    detect_impulses,
+    fit_poisson_gaussian,
+)
+from grainwright.inference.noise import noise_from_dict  # noqa: E402
+
+
+def _unit(name: str) -> np.ndarray:
+    return (_gray_astronaut() if name == "astronaut" else data.camera().astype(np.float64)) / 255.0
+
+
+@pytest.mark.parametrize("name", ["astronaut", "camera"])
+@pytest.mark.parametrize("gain,read", [(0.01, 0.02), (0.002, 0.005), (0.0005, 0.01), (0.005, 0.03)])
+def test_poisson_gaussian_fit_recovers_gain_and_read(name, gain, read):
+    # Method after Foi et al. 2008; open data: scikit-image sample images scaled to [0, 1] (raw-like data,
+    # unclipped). Acceptance from the project issue: gain within 15%, read within 15% or 0.002 of the range.
+    clean = _unit(name)[..., None]
+    model = noise_from_dict({"kind": "poisson-gaussian", "gain": gain, "read": read})
+    fit = fit_poisson_gaussian(model.sample(clean, np.random.default_rng(17)))
+    assert fit.gain == pytest.approx(gain, rel=0.15)
+    assert abs(fit.read - read) <= max(0.15 * read, 0.002)
+    assert fit.signal_dependent
+
+
+def test_poisson_gaussian_fit_on_12_bit_integers_with_a_black_level():
+    # A 12-bit sensor: 2 native units per event, read noise 6, black level 64, rounded to integers.
+    # The fit measures the signal from 0, so the intercept is read**2 - gain * black_level.
+    rng = np.random.default_rng(5)
+    clean = _gray_astronaut() / 255.0 * 3900
+    noisy = np.round(2.0 * rng.poisson(clean / 2.0) + 64 + 6.0 * rng.standard_normal(clean.shape))
+    fit = fit_poisson_gaussian(np.clip(noisy, 0, 4095).astype(np.uint16))
+    assert fit.gain == pytest.approx(2.0, rel=0.15)
+    assert fit.intercept == pytest.approx(36.0 - 2.0 * 64, abs=0.15 * 128)
+    assert fit.confident
+
+
+def test_gaussian_noise_is_not_called_signal_dependent():
+    noisy = _gray_astronaut()[..., None] + RNG.normal(0, 10, (512, 512, 1))
+    fit = fit_poisson_gaussian(noisy)
+    assert not fit.signal_dependent
+    assert fit.read == pytest.approx(10.0, rel=0.1)
+
+
+# ------------------------------------------------------------------------------------------------ flags
+def _crop() -> np.ndarray:
+    return data.camera()[128:384, 128:384].astype(np.float64) / 255.0
+
+
+def test_impulse_flag():
+    clean = _crop()
+    noisy = clean + RNG.normal(0, 0.02, clean.shape)
+    assert not detect_impulses(noisy).flagged
+    spiky = noise_from_dict({"kind": "impulse", "fraction": 0.01}).sample(noisy[..., None], RNG)
+    flag = detect_impulses(spiky)
+    assert flag.flagged and 0.005 < flag.fraction < 0.012
+
+
+@pytest.mark.parametrize("name", ["moon", "astronaut"])
+def test_banding_flag_and_correction(name):
+    # Long straight edges along rows or columns look like banding to a median; smooth sample images do not.
+    clean = (data.moon()[:256, :256] if name == "moon" else _gray_astronaut()[100:356, 100:356]) / 255.0
+    noisy = clean + RNG.normal(0, 0.02, clean.shape)
+    assert not detect_banding(noisy).flagged
+    banding = noise_from_dict({"kind": "banding", "row_sigma": 0.01, "column_sigma": 0.01})
+    rows, columns = banding.offsets(*clean.shape, np.random.default_rng(8))
+    banded = noisy + rows[:, None] + columns[None, :]
+    flag = detect_banding(banded)
+    assert flag.flagged and flag.row_ratio > 2.5 and flag.column_ratio > 2.5
+    corrected = correct_fixed_pattern(banded)
+    assert corrected.dtype == np.float32 and corrected.shape == banded.shape
+    # Row-to-row and column-to-column offsets are removed; their slowly varying part cannot be told from
+    # the scene and stays (for independent offsets about a quarter of their variance).
+    left = corrected - noisy
+    pattern = rows[:, None] + columns[None, :]
+    assert np.var(left - left.mean()) < 0.4 * np.var(pattern)
+    assert not detect_banding(corrected).flagged
+
+
+def test_correlation_flag():
+    clean = _crop()
+    white = RNG.normal(0, 0.03, clean.shape)
+    assert not detect_correlation(clean + white).flagged
+    # Averaging horizontal neighbours gives lag-1 correlation 0.5 exactly.
+    paired = (white + np.roll(white, 1, axis=1)) / np.sqrt(2)
+    flag = detect_correlation(clean + paired)
+    assert flag.flagged and flag.horizontal == pytest.approx(0.5, abs=0.1) and abs(flag.vertical) < 0.15
+    blurred = ndimage.gaussian_filter(RNG.normal(0, 0.08, clean.shape), 0.8)
+    assert detect_correlation(clean + blurred).flagged
+
+
+@pytest.mark.parametrize(
+    "noise,kind,transform",
+    [
+        ({"kind": "gaussian", "sigma": 0.04}, "gaussian", None),
+        ({"kind": "poisson-gaussian", "gain": 0.005, "read": 0.01}, "poisson-gaussian", "anscombe"),
+        ({"kind": "speckle-gamma", "looks": 8.0}, "speckle-gamma", "log"),
+    ],
+)
+def test_analyse_noise_names_the_model_and_transform(noise, kind, transform):
+    clean = _gray_astronaut()[..., None] / 255.0
+    noisy = noise_from_dict(noise).sample(clean, np.random.default_rng(12)) * 4095
+    analysis = analyse_noise(noisy, low=0, high=4095)
+    assert analysis.kind == kind and analysis.transform == transform
+    model = analysis.model.to_dict()
+    for key, value in noise.items():
+        if key != "kind":
+            assert model[key] == pytest.approx(value, rel=0.15, abs=0.002)
+    assert analysis.to_dict()["model"]["kind"] == kind
