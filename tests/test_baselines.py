@@ -235,3 +235,11 @@ def test_gaussian_domain_is_the_identity_and_unknown_noise_is_refused():
     np.testing.assert_array_equal(denoise_in_domain("gaussian", image, 0.1), denoise("gaussian", image, 0.1))
     with pytest.raises(ConfigError, match="impulse"):
         gaussian_domain({"kind": "impulse", "fraction": 0.1})
+
+
+@pytest.mark.parametrize("name", NAMES)
+@pytest.mark.parametrize("shape", [(13, 17, 3), (7, 9, 1), (2, 3, 2)])
+def test_odd_shapes_and_channel_counts(name, shape):
+    image = np.random.default_rng(9).random(shape).astype(np.float32)
+    out = denoise(name, image, 0.1)
+    assert out.shape == shape and out.dtype == np.float32 and np.all(np.isfinite(out))
