@@ -1,6 +1,7 @@
 """Read and write images as numpy arrays shaped ``(H, W, C)`` (stacks ``(N, H, W, C)``) in their native dtype.
 
-Formats: PNG (8- and 16-bit grayscale, 8-bit RGB/RGBA, through Pillow), TIFF (8/16-bit integer and 32-bit
+Formats: PNG (8- and 16-bit, 1 to 4 channels; through Pillow, and a small codec of our own for the 16-bit colour
+files Pillow would reduce to 8 bits), TIFF (8/16-bit integer and 32-bit
 float, any channel count, multi-page files as stacks of frames, through tifffile) and ``.npy``.
 
 Every problem with an input raises ``InputError(path, problem)``: missing file, unreadable or truncated file,
@@ -12,7 +13,9 @@ from __future__ import annotations
 import glob
 import json
 import os
+import struct
 import tempfile
+import zlib
 from pathlib import Path
 from typing import Iterable
 
@@ -139,11 +142,11 @@ def _read_png(path: Path) -> np.ndarray:
 
     with open(path, "rb") as handle:
         header = handle.read(33)
-    if header[:8] != b"\x89PNG\r\n\x1a\n":
+    if header[:8] != PNG_SIGNATURE:
         raise InputError(path, "not a PNG file (bad signature)")
     bit_depth, colour_type = header[24], header[25]
-    if bit_depth == 16 and colour_type in (2, 4, 6):
-        raise InputError(path, "16-bit colour PNG is not supported (Pillow reduces it to 8 bits); save it as TIFF")
+    if bit_depth == 16 and colour_type in (2, 4, 6):  # Pillow would reduce these to 8 bits
+        return _png16_decode(path)[0][None]
     with Image.open(path) as image:
         image.load()
         if image.mode == "P":
@@ -251,7 +254,7 @@ def write_image(
     Parameters
     ----------
     path : str or Path
-        ``.png`` (uint8, or uint16 grayscale), ``.tif``/``.tiff`` (any supported dtype and channel count; a stack
+        ``.png`` (uint8 or uint16, 1 to 4 channels), ``.tif``/``.tiff`` (any supported dtype and channel count; a stack
         becomes a multi-page file) or ``.npy``.
     array : numpy.ndarray
         ``(H, W)``, ``(H, W, C)`` or, for TIFF and npy, ``(N, H, W, C)``.
@@ -320,6 +323,9 @@ def _write_png(path: Path, temporary: str, data: np.ndarray, text: str | None) -
     if data.ndim != 3:
         raise InputError(path, "PNG holds a single frame; write a stack as TIFF")
     channels = data.shape[2]
+    if data.dtype == np.uint16 and 2 <= channels <= 4:  # Pillow cannot write 16-bit colour
+        Path(temporary).write_bytes(_png16_encode(data, text))
+        return
     if data.dtype == np.uint16 and channels == 1:
         image = Image.fromarray(data[:, :, 0])
     elif data.dtype == np.uint8 and channels in (1, 2, 3, 4):
@@ -380,3 +386,104 @@ def read_text(path: str | Path) -> str | None:
 
     with tifffile.TiffFile(path) as tiff:
         return tiff.pages[0].description or None
+
+
+# ---------------------------------------------------------------------------------------- 16-bit colour PNG
+# Pillow reduces 16-bit grayscale+alpha, RGB and RGBA PNGs to 8 bits, so these are written and read here, after
+# the PNG specification (W3C, 2nd edition): chunks IHDR, IDAT (a zlib stream of scanlines, each led by a filter
+# type 0-4), IEND and an optional iTXt; samples big-endian; non-interlaced files only. The reader undoes the five
+# scanline filters for all rows at once, one anti-diagonal of pixels at a time (a pixel depends on its left,
+# upper and upper-left neighbours).
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+PNG_COLOUR_TYPES = {1: 0, 2: 4, 3: 2, 4: 6}  # channels -> PNG colour type
+PNG_CHANNELS = {value: key for key, value in PNG_COLOUR_TYPES.items()}
+
+
+def _png_chunk(kind: bytes, data: bytes) -> bytes:
+    return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+
+def _png16_encode(image: np.ndarray, text: str | None = None) -> bytes:
+    """PNG bytes for a uint16 image ``(H, W, C)`` with C in 1..4 (no scanline filtering, zlib level 6)."""
+    height, width, channels = image.shape
+    header = struct.pack(">IIBBBBB", width, height, 16, PNG_COLOUR_TYPES[channels], 0, 0, 0)
+    rows = image.astype(">u2").reshape(height, width * channels).view(np.uint8)
+    scanlines = np.concatenate([np.zeros((height, 1), np.uint8), rows], axis=1)
+    parts = [PNG_SIGNATURE, _png_chunk(b"IHDR", header)]
+    if text is not None:
+        parts.append(_png_chunk(b"iTXt", b"Description\x00\x00\x00\x00\x00" + text.encode("utf-8")))
+    parts += [_png_chunk(b"IDAT", zlib.compress(scanlines.tobytes(), 6)), _png_chunk(b"IEND", b"")]
+    return b"".join(parts)
+
+
+def _png_chunks(path: Path, blob: bytes):
+    position = len(PNG_SIGNATURE)
+    while position + 8 <= len(blob):
+        (length,) = struct.unpack(">I", blob[position : position + 4])
+        kind = blob[position + 4 : position + 8]
+        data = blob[position + 8 : position + 8 + length]
+        if len(data) != length or position + 12 + length > len(blob):
+            raise InputError(path, "truncated PNG (a chunk runs past the end of the file)")
+        yield kind, data
+        position += 12 + length
+        if kind == b"IEND":
+            return
+    raise InputError(path, "truncated PNG (no IEND chunk)")
+
+
+def _png16_decode(path: Path) -> tuple[np.ndarray, str | None]:
+    """Read a non-interlaced 16-bit PNG as uint16 ``(H, W, C)``, with its ``Description`` text if any."""
+    blob = Path(path).read_bytes()
+    if not blob.startswith(PNG_SIGNATURE):
+        raise InputError(path, "not a PNG file (bad signature)")
+    header, compressed, text = None, [], None
+    for kind, data in _png_chunks(path, blob):
+        if kind == b"IHDR":
+            header = struct.unpack(">IIBBBBB", data)
+        elif kind == b"IDAT":
+            compressed.append(data)
+        elif kind == b"iTXt" and data.startswith(b"Description\x00"):
+            fields = data[len(b"Description\x00") :]
+            if fields[0] == 0:  # uncompressed text
+                rest = fields[2:]
+                rest = rest[rest.index(b"\x00") + 1 :]  # language tag
+                text = rest[rest.index(b"\x00") + 1 :].decode("utf-8")  # translated keyword
+    if header is None:
+        raise InputError(path, "PNG without an IHDR header")
+    width, height, depth, colour, _, _, interlace = header
+    if depth != 16 or colour not in PNG_CHANNELS:
+        raise InputError(path, f"not a 16-bit grayscale/colour PNG (bit depth {depth}, colour type {colour})")
+    if interlace:
+        raise InputError(path, "interlaced 16-bit PNG is not supported; save it without interlacing or as TIFF")
+    channels = PNG_CHANNELS[colour]
+    stride = width * channels * 2
+    raw = zlib.decompress(b"".join(compressed))
+    if len(raw) != height * (stride + 1):
+        raise InputError(path, "truncated PNG (image data shorter than the header says)")
+    lines = np.frombuffer(raw, np.uint8).reshape(height, stride + 1)
+    pixels = _png_unfilter(path, lines[:, 0], lines[:, 1:], width, channels * 2)
+    image = pixels.reshape(height, width * channels * 2).view(">u2").astype(np.uint16)
+    return image.reshape(height, width, channels), text
+
+
+def _png_unfilter(path: Path, kinds: np.ndarray, data: np.ndarray, width: int, bpp: int) -> np.ndarray:
+    if np.any(kinds > 4):
+        raise InputError(path, "corrupt PNG (unknown scanline filter)")
+    if not np.any(kinds):
+        return data.copy()
+    height = data.shape[0]
+    raw = data.reshape(height, width, bpp).astype(np.int32)
+    out = np.zeros((height + 1, width + 1, bpp), np.int32)  # one row and column of zeros in front
+    for diagonal in range(height + width - 1):
+        ys = np.arange(max(0, diagonal - width + 1), min(height - 1, diagonal) + 1)
+        xs = diagonal - ys
+        left, up, corner = out[ys + 1, xs], out[ys, xs + 1], out[ys, xs]
+        estimate = left + up - corner
+        to_left, to_up, to_corner = np.abs(estimate - left), np.abs(estimate - up), np.abs(estimate - corner)
+        paeth = np.where((to_left <= to_up) & (to_left <= to_corner), left, np.where(to_up <= to_corner, up, corner))
+        kind = kinds[ys][:, None]
+        predictor = np.select(
+            [kind == 1, kind == 2, kind == 3, kind == 4], [left, up, (left + up) >> 1, paeth], default=0
+        )
+        out[ys + 1, xs + 1] = (raw[ys, xs] + predictor) & 0xFF
+    return out[1:, 1:].astype(np.uint8).reshape(height, width * bpp)
