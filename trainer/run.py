@@ -13,6 +13,8 @@ import os
 import shutil
 import tempfile
 import warnings
+from collections import Counter
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
@@ -28,9 +30,8 @@ from grainwright.trainer.data import LAYOUT_TEXT, Layout, PatchSource, detect_la
 from grainwright.trainer.loop import TrainingSetup, train
 from grainwright.trainer.schemes.registry import check_scheme_fits, choose_scheme, scheme_class
 
-# Relative spread (std / mean) of the per-image MAD estimates below which the noise level counts as estimated
-# confidently for the `auto` choice (common practice, no source).
-CONFIDENT_SPREAD = 0.25
+# Noisy images analysed for the noise model and the flags (evenly spaced over the list), to bound the start-up time.
+MAX_ANALYSED = 12
 
 
 def physical_cores() -> int:
@@ -62,40 +63,42 @@ def _noise_description(config: dict[str, Any], root: Path) -> tuple[Any, Path | 
     return (load_noise(path), path) if path.is_file() else (None, None)
 
 
-def _estimate_noise(images: list[np.ndarray]) -> tuple[np.ndarray, bool, tuple[float, float] | None]:
-    """Per-image, per-channel Gaussian sigma (MAD estimate, units of the images), whether the estimate is
-    confident, and a Poisson-Gaussian ``(gain, read)`` fit when the noise looks signal-dependent."""
-    from grainwright.inference.estimation import estimate_sigma, fit_poisson_gaussian
+@dataclass
+class NoiseFindings:
+    """What ``analyse_noise`` found on (up to ``MAX_ANALYSED``) noisy training images.
 
-    per_image = np.array([estimate_sigma(image) for image in images], dtype=np.float64)
-    spread = per_image.std(axis=0) / np.maximum(per_image.mean(axis=0), 1e-12)
-    confident = bool(np.all(np.median(per_image, axis=0) > 0) and np.all(spread < CONFIDENT_SPREAD))
-    fit = fit_poisson_gaussian(images[int(np.argmax([image.size for image in images]))])
-    poisson = (float(fit.gain), float(fit.read)) if fit.signal_dependent and fit.confident else None
-    return per_image, confident or poisson is not None, poisson
+    ``per_image_sigma``: wavelet-MAD sigma per image and channel, native units; ``model``: the suggested noise
+    model (working units) of the most common kind; ``confident``: most analyses trust their model; ``flags``:
+    the banding/correlation flags raised on most images.
+    """
+
+    per_image_sigma: np.ndarray
+    model: Any
+    kind: str
+    confident: bool
+    flags: list[str]
 
 
-def _fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...], mode: str,
-                   announce: Callable[[str], None]) -> bool:
-    """Apply the row/column fixed-pattern correction to the noisy roles when asked, or when the banding or
-    correlation flag is raised on them (``mode = "auto"``). Returns whether it was applied."""
-    from grainwright.inference.estimation import analyse_noise, correct_fixed_pattern
+def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFindings:
+    from grainwright.inference.estimation import analyse_noise
 
-    noisy_roles = [role for role in roles if role != "clean"]
-    if mode == "never" or not noisy_roles:
-        return False
-    if mode == "auto":
-        report = analyse_noise(images[0][noisy_roles[0]])
-        flags = [name for name in ("banding", "correlated") if report.get("flags", {}).get(name)]
-        if not flags:
-            return False
-        warnings.warn(f"the {' and '.join(flags)} flag is raised: self-supervised schemes assume pixel-independent "
-                      "noise; applying the row/column fixed-pattern correction before training", stacklevel=2)
-    announce("applying the row/column fixed-pattern correction to the noisy images")
+    step = max(1, len(images) // MAX_ANALYSED)
+    analyses = [analyse_noise(image, normalization.low, normalization.high) for image in images[::step][:MAX_ANALYSED]]
+    kind = Counter(analysis.kind for analysis in analyses).most_common(1)[0][0]
+    typical = next(analysis for analysis in analyses if analysis.kind == kind)
+    majority = len(analyses) / 2
+    flags = [name for name in ("banding", "correlation") if sum(getattr(a, name).flagged for a in analyses) > majority]
+    return NoiseFindings(np.array([analysis.sigma for analysis in analyses]), typical.model, kind,
+                         sum(analysis.confident for analysis in analyses) > majority, flags)
+
+
+def _correct_fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> None:
+    from grainwright.inference.estimation import correct_fixed_pattern
+
     for item in images:
-        for role in noisy_roles:
-            item[role] = correct_fixed_pattern(item[role])
-    return True
+        for role in roles:
+            if role != "clean":
+                item[role] = correct_fixed_pattern(item[role])
 
 
 def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> tuple[TrainingSetup, Layout, Any]:
@@ -104,7 +107,6 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     Returns the setup, the layout found and the noise model used (or None). Raises ``GrainwrightError`` on any
     problem with the data or the config; nothing is written.
     """
-    from grainwright.inference.noise import noise_from_dict
     from grainwright.inference.normalization import Normalization
 
     data_cfg = config["data"]
@@ -122,65 +124,62 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     normalization = Normalization.for_array(stacked, data_cfg["bit_depth"] or None)
     del stacked
 
-    # Noise level of the noisy images (native units for the data profile, working units for the schemes).
+    # The noise of the noisy images: level (native units for the summary, working units for the schemes), model,
+    # flags.
     noisy_native = [item[role] for item in images for role in roles if role != "clean"]
-    estimated_sigma, confident, poisson = None, False, None
-    if noisy_native:
-        per_image_sigma, confident, poisson = _estimate_noise(noisy_native)
-        estimated_sigma = (np.median(per_image_sigma, axis=0) / normalization.full_range).astype(np.float32)
-        if poisson is not None:
-            poisson = (poisson[0] / normalization.full_range, poisson[1] / normalization.full_range)
+    findings = _analyse_noise(noisy_native, normalization) if noisy_native else None
+    estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
 
     name = config["scheme"]
     if name == "auto":
-        name, reason = choose_scheme(layout.name, noise is not None, confident)
+        name, reason = choose_scheme(layout.name, noise is not None, estimated)
         announce(f"scheme auto: {reason}")
     check_scheme_fits(name, layout.name)
     if layout.name == "clean-only" and noise is None:
         raise ConfigError(f"found {LAYOUT_TEXT['clean-only']} but no noise description: put a noise.toml in "
                           f"{layout.root} or set noise.file")
     config = dict(config, scheme=name)
+    if noise is None and findings is not None:
+        noise = findings.model
+        announce(f"noise estimated from the images: {noise.describe()} (working units)"
+                 + ("" if findings.confident else "; the estimate is uncertain"))
 
     # Working-range transform and the noise level the schemes see.
     transform = data_cfg["transform"]
-    kind = None if noise is None else noise.to_dict()["kind"]
+    kind = None if noise is None else noise.kind
     if transform == "auto":
-        signal_dependent = kind in ("poisson", "poisson-gaussian") or (noise is None and poisson is not None)
-        transform = "anscombe" if name == "recorrupted" and signal_dependent else "none"
+        transform = "anscombe" if name == "recorrupted" and kind in ("poisson", "poisson-gaussian") else "none"
+    sigma = None
     if transform == "anscombe":
         if layout.name == "clean-only":
             raise ConfigError("data.transform: the Anscombe transform applies to real noisy data; with clean images "
                               "only the noise is synthesised in the linear range (use transform = \"none\")")
-        if kind in ("poisson", "poisson-gaussian"):
-            gain, read = noise.gain, getattr(noise, "read", 0.0)
-        elif poisson is not None:
-            gain, read = poisson
-        else:
-            raise ConfigError("data.transform = \"anscombe\" needs Poisson-Gaussian noise (a noise.toml with kind "
-                              "\"poisson-gaussian\", or images whose noise is fitted as signal-dependent)")
+        if kind not in ("poisson", "poisson-gaussian"):
+            raise ConfigError(f"data.transform = \"anscombe\" needs Poisson-Gaussian noise, but the noise is "
+                              f"'{kind}' (give a noise.toml with kind \"poisson-gaussian\")")
+        gain, read = noise.gain, getattr(noise, "read", 0.0)
         normalization = normalization.with_anscombe(gain, read)
         sigma = np.full(channels, normalization.working_noise_sigma(), dtype=np.float32)
         announce(f"training in the generalized-Anscombe domain (gain {gain:.4g}, read {read:.4g} of the range)")
     elif kind == "gaussian":
         sigma = np.full(channels, noise.sigma, dtype=np.float32)
-    else:
-        sigma = estimated_sigma
-    if name == "recorrupted":
-        if noise is not None and kind not in ("gaussian", "poisson", "poisson-gaussian"):
-            raise ConfigError(f"scheme 'recorrupted' needs Gaussian or Poisson-Gaussian noise, but the noise "
-                              f"description {noise_path} has kind '{kind}'; use neighbor2neighbor")
-        if sigma is None or not np.all(sigma > 0):
-            raise ConfigError("scheme 'recorrupted' needs the noise level: give a noise.toml (noise.file) or data "
-                              "whose noise the estimator can measure")
-        if noise is None:
-            announce(f"recorrupted: noise sigma estimated by the MAD estimator: "
-                     f"{', '.join(f'{s * normalization.full_range:.4g}' for s in sigma)} (native units)")
-    if noise is None and estimated_sigma is not None:
-        noise = noise_from_dict({"kind": "gaussian", "sigma": float(np.mean(estimated_sigma))})
+    elif findings is not None:
+        sigma = (np.median(findings.per_image_sigma, axis=0) / normalization.full_range).astype(np.float32)
+    if name == "recorrupted" and transform != "anscombe" and kind != "gaussian":
+        raise ConfigError(f"scheme 'recorrupted' needs Gaussian or Poisson-Gaussian noise of known level, but the "
+                          f"noise {'description ' + str(noise_path) if noise_path else 'estimated'} is '{kind}'; "
+                          "give a noise.toml, or use neighbor2neighbor")
 
     working = [{role: normalization.to_working(array) for role, array in item.items()} for item in images]
     del images, native, noisy_native
-    fixed_pattern = _fixed_pattern(working, roles, data_cfg["fixed_pattern"], announce)
+    mode, fixed_pattern = data_cfg["fixed_pattern"], False
+    if mode == "always" or (mode == "auto" and findings is not None and findings.flags):
+        if mode == "auto":
+            announce(f"warning: the {' and '.join(findings.flags)} flag is raised on the noisy images; every "
+                     "self-supervised scheme assumes zero-mean noise independent from pixel to pixel, so the "
+                     "row/column fixed-pattern correction is applied before training (see the README's limits)")
+        _correct_fixed_pattern(working, roles)
+        fixed_pattern = True
 
     # Split by image; a single image is split into two regions.
     rng = np.random.default_rng(config["seed"])
@@ -232,9 +231,9 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
             validation.append(scheme.prepare(chunk, fixed))
 
     training_noise = None
-    if estimated_sigma is not None:
-        per_image = per_image_sigma.mean(axis=1)
-        training_noise = {"sigma_native": float(np.mean(estimated_sigma) * normalization.full_range),
+    if findings is not None:
+        per_image = findings.per_image_sigma.mean(axis=1)
+        training_noise = {"sigma_native": float(np.median(per_image)),
                           "sigma_native_range": [float(per_image.min()), float(per_image.max())],
                           "effective_bit_depth": normalization.bit_depth}
     summary = {"layout": layout.name, "scheme": name, "training_images": len(train_images),

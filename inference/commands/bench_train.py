@@ -1,0 +1,34 @@
+"""``grainwright bench train``: each training scheme, time-boxed, against classical filters tuned on ground truth,
+and the loop's throughput against bare forward+backward passes (needs PyTorch)."""
+from __future__ import annotations
+
+import argparse
+
+from grainwright.inference.torch_needed import require_torch
+
+HELP = "training schemes vs classical filters tuned on ground truth; loop vs bare throughput"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--minutes-per-scheme", type=float, default=10.0, metavar="N",
+                        help="time box of each scheme's training (default 10)")
+    parser.add_argument("--schemes", default="supervised,noise2noise,masked,neighbor2neighbor,recorrupted",
+                        metavar="LIST", help="comma-separated schemes for the Gaussian case")
+    parser.add_argument("--cases", default="gaussian,poisson-gaussian,speckle", metavar="LIST",
+                        help="comma-separated noise cases")
+    parser.add_argument("--depth", type=int, default=8, help="layers of the residual CNN (default 8)")
+    parser.add_argument("--width", type=int, default=32, help="feature channels of the residual CNN (default 32)")
+    parser.add_argument("--patch-size", type=int, default=48, metavar="N", help="training patch edge (default 48)")
+    parser.add_argument("--batch-size", type=int, default=16, metavar="N", help="patches per step (default 16)")
+    parser.add_argument("--threads", type=int, default=0, metavar="N", help="torch threads (0 = physical cores)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the noise and of training")
+    parser.add_argument("--json", metavar="FILE", help="also write the results as JSON")
+    parser.add_argument("--work", metavar="DIR", help="folder for the generated data and run folders "
+                        "(default: a temporary folder, removed afterwards)")
+
+
+def run(args: argparse.Namespace) -> int:
+    require_torch("bench train")
+    from grainwright.trainer.bench import run_bench
+
+    return run_bench(args)

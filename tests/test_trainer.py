@@ -1,0 +1,152 @@
+"""Training runs end to end: run folders, seeding, exact resume, bad input, the command line.
+
+Open data: crops of scikit-image's bundled ``camera`` image. Every run is tiny (a few tens of steps, a 4-layer
+model) and uses one thread.
+"""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+import torch
+from skimage import data
+
+from grainwright.inference.cli import main
+from grainwright.inference.errors import ConfigError, InputError
+from grainwright.inference.imageio import write_image
+from grainwright.models.checkpoint import load_checkpoint
+from grainwright.trainer.run import train_command
+
+TINY = ["model.hyper.depth=4", "model.hyper.width=12", "data.patch_size=32", "data.batch_size=8", "threads=1",
+        "validation.every_steps=10", "validation.patches=16", "logging.progress=false", "logging.tensorboard=false"]
+SIGMA = 25.0  # 8-bit units
+
+
+def _crops(count: int = 4, size: int = 96) -> list[np.ndarray]:
+    camera = data.camera()
+    return [camera[64 + 96 * i:64 + 96 * i + size, 100 + 60 * i:100 + 60 * i + size] for i in range(count)]
+
+
+def _noisy(clean: np.ndarray, seed: int) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return np.clip(np.round(clean + rng.normal(0, SIGMA, clean.shape)), 0, 255).astype(np.uint8)
+
+
+def _clean_folder(root):
+    for i, crop in enumerate(_crops()):
+        (root / "clean").mkdir(parents=True, exist_ok=True)
+        write_image(root / "clean" / f"crop{i}.png", crop)
+    (root / "noise.toml").write_text(f'kind = "gaussian"\nsigma_native = {SIGMA}\nrange_native = 255\n')
+    return root
+
+
+def _noisy_folder(root, pairs: bool = False):
+    for i, crop in enumerate(_crops()):
+        if pairs:
+            for folder, seed in (("noisy-a", i), ("noisy-b", 100 + i)):
+                (root / folder).mkdir(parents=True, exist_ok=True)
+                write_image(root / folder / f"crop{i}.png", _noisy(crop, seed))
+        else:
+            (root / "noisy").mkdir(parents=True, exist_ok=True)
+            write_image(root / "noisy" / f"crop{i}.png", _noisy(crop, i))
+    return root
+
+
+def _weights(run) -> dict[str, torch.Tensor]:
+    return load_checkpoint(run.last)["state_dict"]
+
+
+def _quiet(message: str) -> None:
+    pass
+
+
+@pytest.mark.slow
+def test_supervised_run_writes_the_run_folder_and_denoises(tmp_path):
+    folder = _clean_folder(tmp_path / "data")
+    summary, run = train_command(None, str(folder), steps=60, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=TINY + ["logging.tensorboard=true"])
+    assert summary["scheme"] == "supervised" and summary["layout"] == "clean-only"
+    for path in (run.config, run.noise, run.summary, run.last, run.best):
+        assert path.is_file(), path
+    assert list((run.root / "tensorboard").glob("events.out.tfevents.*"))
+    best = load_checkpoint(run.best)
+    assert best["scheme"] == "supervised" and best["architecture"] == "residual"
+    assert best["noise"] == {"kind": "gaussian", "sigma": pytest.approx(SIGMA / 255)}
+    written = json.loads(run.summary.read_text())
+    assert written["steps"] == 60 and written["stopped"] == "budget"
+    # PSNR of the noisy input is 20 log10(255 / 25) = 20.2 dB (definition of PSNR); training must improve on it.
+    input_psnr = 20 * math.log10(255 / SIGMA)
+    assert written["best_validation"]["psnr"] > input_psnr + 2.0
+
+
+@pytest.mark.slow
+def test_same_seed_gives_the_same_weights(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    runs = [train_command(None, str(folder), scheme="neighbor2neighbor", steps=12, out=str(tmp_path / f"run{i}"),
+                          announce=_quiet, assignments=TINY)[1] for i in range(2)]
+    first, second = (_weights(run) for run in runs)
+    assert all(torch.equal(first[key], second[key]) for key in first)
+    other = train_command(None, str(folder), scheme="neighbor2neighbor", steps=12, out=str(tmp_path / "run-seed"),
+                          announce=_quiet, assignments=TINY + ["seed=1"])[1]
+    assert not all(torch.equal(first[key], _weights(other)[key]) for key in first)
+
+
+@pytest.mark.slow
+def test_resume_continues_exactly(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    straight = train_command(None, str(folder), scheme="recorrupted", steps=24, out=str(tmp_path / "straight"),
+                             announce=_quiet, assignments=TINY)[1]
+    summary, halted = train_command(None, str(folder), scheme="recorrupted", steps=24, out=str(tmp_path / "halted"),
+                                    announce=_quiet, assignments=TINY, interrupt_at_step=12)
+    assert summary["stopped"] == "interrupted" and load_checkpoint(halted.last)["step"] == 12
+    summary, resumed = train_command(None, None, resume=str(halted.root), announce=_quiet)
+    assert summary["steps"] == 24
+    expected, got = _weights(straight), _weights(resumed)
+    assert all(torch.equal(expected[key], got[key]) for key in expected)
+
+
+@pytest.mark.slow
+def test_noise2noise_on_pairs_and_masked_without_skip(tmp_path):
+    pairs = _noisy_folder(tmp_path / "pairs", pairs=True)
+    summary, _ = train_command(None, str(pairs), steps=10, out=str(tmp_path / "n2n"), announce=_quiet,
+                               assignments=TINY)
+    assert summary["scheme"] == "noise2noise" and summary["layout"] == "noisy-pairs"
+    single = _noisy_folder(tmp_path / "single")
+    summary, run = train_command(None, str(single), scheme="masked", steps=10, out=str(tmp_path / "masked"),
+                                 announce=_quiet, assignments=TINY)
+    assert load_checkpoint(run.best)["hyper"]["skip"] is False
+    with pytest.raises(ConfigError, match="model.skip = true"):
+        train_command(None, str(single), scheme="masked", steps=10, out=str(tmp_path / "no"), announce=_quiet,
+                      assignments=TINY + ["model.skip=true"])
+    assert not (tmp_path / "no").exists()
+
+
+def test_bad_input_stops_before_anything_is_written(tmp_path):
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(InputError, match="no images found"):
+        train_command(None, str(tmp_path / "empty"), steps=5, out=str(tmp_path / "run"), announce=_quiet)
+    single = _noisy_folder(tmp_path / "single")
+    with pytest.raises(ConfigError, match="holds single noisy images"):
+        train_command(None, str(single), scheme="noise2noise", steps=5, out=str(tmp_path / "run"), announce=_quiet)
+    with pytest.raises(ConfigError, match="data.patch_size"):
+        train_command(None, str(single), scheme="neighbor2neighbor", steps=5, out=str(tmp_path / "run"),
+                      announce=_quiet, assignments=TINY + ["data.patch_size=33"])
+    assert not (tmp_path / "run").exists()
+    assert not [path for path in tmp_path.iterdir() if path.name.startswith(".run")]
+
+
+@pytest.mark.slow
+def test_command_line(tmp_path, capsys):
+    folder = _noisy_folder(tmp_path / "data")
+    args = ["train", "fast-cpu", "--data", str(folder), "--steps", "5", "--out", str(tmp_path / "run")]
+    for assignment in TINY:
+        args += ["--set", assignment]
+    assert main(args) == 0
+    out = capsys.readouterr().out
+    assert "scheme auto: found single noisy images" in out and "trained recorrupted for 5 steps" in out
+    assert main(args) == 2  # the run folder exists now
+    assert "exists and is not empty" in capsys.readouterr().err
+    assert main(["train", "--data", str(folder), "--scheme", "noise2noise", "--out", str(tmp_path / "x")]) == 2
+    assert "schemes that fit" in capsys.readouterr().err
