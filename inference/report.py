@@ -25,6 +25,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
+from grainwright.inference.detail import STRUCTURED_THRESHOLD
 from grainwright.inference.errors import InputError
 
 CAUTION = (
@@ -207,7 +208,8 @@ def _structure_overlay(background: np.ndarray, structure: np.ndarray, added: np.
     low, high = np.percentile(background, [0.5, 99.5])
     gray = np.clip((background - low) / max(high - low, 1e-12), 0, 1) * 0.6
     rgb = np.repeat(gray[:, :, None], 3, axis=2)
-    strength = np.clip(structure / 0.8, 0.0, 1.0)[:, :, None]
+    # Only what stands out from noise (the summary's threshold) is coloured, fully from a correlation of 0.8.
+    strength = np.clip((structure - STRUCTURED_THRESHOLD) / (0.8 - STRUCTURED_THRESHOLD), 0.0, 1.0)[:, :, None]
     rgb = rgb * (1 - strength) + strength * np.array([1.0, 0.1, 0.8])
     if added is not None:
         rgb[added] = [0.1, 1.0, 0.2]
@@ -375,11 +377,11 @@ def _map_section(panels: ImagePanels, image_index: int, image_dir: Path) -> list
         return []
     out = ["<h3>Removed structure (magenta) and added edges (green)</h3>",
            "<p>Magenta: where the content a method removed follows the image (local correlation of the residual "
-           "with a smoothed copy of the noisy image) rather than looking like noise. Green: edges in the output "
+           "with a smoothed copy of the noisy image, above what noise alone gives) rather than looking like noise. Green: edges in the output "
            "that a smoothed copy of the noisy input does not have.</p><div class='strip'>"]
     for method_index, (method, structure) in enumerate(panels.structure_maps.items()):
         overlay = _structure_overlay(panels.background, structure, panels.added_maps.get(method))
         out.append(_figure(image_dir, f"{image_index:03d}-map-m{method_index:02d}-{_slug(method)}.png", overlay,
-                           method, reduce_to=MAP_DISPLAY))
+                           method, enlarge_to=MAP_DISPLAY // 2, reduce_to=MAP_DISPLAY))
     out.append("</div>")
     return out
