@@ -1,0 +1,216 @@
+"""``grainwright export``: one self-contained ONNX file, checked against torch, with its description inside.
+
+Outside references: ``onnx.checker`` (the ONNX specification's validator) for the file; the torch network
+itself for the numbers (ONNX Runtime must reproduce it); scikit-image's sample images as calibration data.
+"""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+import tifffile
+import torch
+from skimage import data
+
+import grainwright.models.export as export_module
+from grainwright.inference.cli import main
+from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.normalization import Normalization
+from grainwright.models.checkpoint import FORMAT_VERSION, RunFolder, new_checkpoint, save_checkpoint
+from grainwright.models.export import export_checkpoint, int8_path_for, reference_output
+
+torch.set_num_threads(1)
+
+TWELVE_BIT = Normalization("uint16", 12, 0.0, 4095.0, 1)
+TINY = {
+    "residual": {"depth": 3, "width": 8},
+    "residual-noisemap": {"depth": 3, "width": 8},
+    "unet-small": {"levels": 2, "width": 4},
+}
+
+
+def _checkpoint(tmp_path, name="residual", normalization=TWELVE_BIT, **hyper):
+    payload = new_checkpoint(name, normalization.channels, normalization, hyper={**TINY[name], **hyper},
+                             scheme="supervised", training_noise={"sigma_native": 40.0})
+    return save_checkpoint(tmp_path / f"{name}.pt", payload), payload
+
+
+@pytest.fixture(scope="module")
+def calibration_dir(tmp_path_factory):
+    """12-bit noisy frames made from scikit-image sample images (open data)."""
+    folder = tmp_path_factory.mktemp("calibration")
+    rng = np.random.default_rng(0)
+    for name in ("camera", "moon", "coins"):
+        clean = getattr(data, name)()[:96, :112].astype(np.float64) * 16.0
+        noisy = np.clip(np.rint(clean + rng.normal(0.0, 40.0, clean.shape)), 0, 4095).astype(np.uint16)
+        tifffile.imwrite(folder / f"{name}.tif", noisy)
+    return folder
+
+
+def _session(path):
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = 1
+    return ort.InferenceSession(str(path), options, providers=["CPUExecutionProvider"])
+
+
+@pytest.mark.parametrize("name", sorted(TINY))
+def test_export_from_random_checkpoint_is_valid_and_matches_torch(tmp_path, name):
+    source, payload = _checkpoint(tmp_path, name)
+    result = export_checkpoint(source, tmp_path / "model.onnx")
+    proto = onnx.load(result.path)
+    onnx.checker.check_model(proto, full_check=True)
+    assert max(entry.version for entry in proto.opset_import if entry.domain in ("", "ai.onnx")) >= 17
+    image_input = next(i for i in proto.graph.input if i.name == "image")
+    dims = image_input.type.tensor_type.shape.dim
+    assert [bool(d.dim_param) for d in dims] == [True, False, True, True]  # dynamic N, H, W; fixed C
+
+    # A different batch size and image shape than the exporter's own checks, in native 12-bit values.
+    model = export_module.model_from_checkpoint(payload)
+    side = 4 * model.alignment
+    rng = np.random.default_rng(5)
+    image = rng.uniform(0, 4095, (2, 1, side, 3 * side)).astype(np.float32)
+    feeds = {"image": image}
+    sigma = None
+    if model.takes_noise_map:
+        sigma = rng.uniform(10, 80, (2, 1, side, 3 * side)).astype(np.float32)
+        feeds["noise_sigma"] = sigma
+    output = _session(result.path).run(["denoised"], feeds)[0]
+    expected = reference_output(model, TWELVE_BIT, image, sigma)
+    assert np.max(np.abs(output - expected)) / 4095.0 <= 1e-4
+    assert [i.name for i in _session(result.path).get_inputs()] == list(feeds)
+
+
+@pytest.mark.parametrize("kind", ["anscombe", "log"])
+def test_variance_stabilising_transform_is_inside_the_graph(tmp_path, kind):
+    normalization = TWELVE_BIT.with_anscombe(0.004, 0.003) if kind == "anscombe" else TWELVE_BIT.with_log()
+    source, payload = _checkpoint(tmp_path, "residual", normalization)
+    result = export_checkpoint(source, tmp_path / "model.onnx")
+    ops = {node.op_type for node in onnx.load(result.path).graph.node}
+    assert ("Sqrt" in ops) if kind == "anscombe" else ({"Log", "Exp"} <= ops)
+    image = np.random.default_rng(1).uniform(0, 4095, (1, 1, 31, 45)).astype(np.float32)
+    output = _session(result.path).run(["denoised"], {"image": image})[0]
+    expected = reference_output(export_module.model_from_checkpoint(payload), normalization, image)
+    assert np.max(np.abs(output - expected)) / 4095.0 <= 1e-4
+    assert result.metadata["normalization"]["transform"]["kind"] == kind
+
+
+def test_batch_norm_is_folded_at_export(tmp_path):
+    source, _ = _checkpoint(tmp_path, "residual", batch_norm=True)
+    result = export_checkpoint(source, tmp_path / "model.onnx")
+    ops = {node.op_type for node in onnx.load(result.path).graph.node}
+    assert "BatchNormalization" not in ops and "Conv" in ops
+    assert result.metadata["parity"]["random"]["max_abs_diff"] <= 1e-4
+
+
+def test_metadata_carries_everything_a_runtime_needs(tmp_path, calibration_dir):
+    source, payload = _checkpoint(tmp_path, "unet-small")
+    result = export_checkpoint(source, tmp_path / "model.onnx", calibration=calibration_dir)
+    stored = {entry.key: entry.value for entry in onnx.load(result.path).metadata_props}
+    metadata = json.loads(stored["grainwright"])
+    assert metadata["format"] == "grainwright-model" and metadata["format_version"] == 1
+    for key in ("architecture", "parameters", "macs_per_pixel", "receptive_field", "alignment", "tile_margin",
+                "tiling_rule", "channels", "normalization", "noise", "training_noise", "scheme",
+                "data_fingerprint", "training_summary", "tool_version", "created", "parity", "opset"):
+        assert key in metadata, key
+    assert metadata["architecture"]["name"] == "unet-small" and metadata["alignment"] == 4
+    assert metadata["tile_margin"] >= (metadata["receptive_field"] - 1) // 2
+    assert metadata["tile_margin"] % metadata["alignment"] == 0
+    assert str(metadata["tile_margin"]) in metadata["tiling_rule"]
+    assert metadata["normalization"] == TWELVE_BIT.to_dict()
+    assert metadata["scheme"] == "supervised" and metadata["training_noise"] == {"sigma_native": 40.0}
+    assert metadata["parity"]["random"]["shape"] == [1, 1, 124, 80]  # 123 x 77 padded to the alignment of 4
+    assert metadata["parity"]["calibration"]["file"] == "camera.tif"
+    assert metadata["parity"]["calibration"]["max_abs_diff"] <= 1e-4
+
+
+def test_run_folder_exports_its_best_checkpoint(tmp_path):
+    run = RunFolder(tmp_path / "run")
+    best = new_checkpoint("residual", 1, TWELVE_BIT, hyper=TINY["residual"], seed=1)
+    save_checkpoint(run.best, best)
+    save_checkpoint(run.last, new_checkpoint("residual", 1, TWELVE_BIT, hyper={"depth": 4, "width": 8}, seed=2))
+    result = export_checkpoint(run.root, tmp_path / "model.onnx")
+    assert result.metadata["source_checkpoint"]["file"] == "best.pt"
+    assert result.metadata["architecture"]["hyper"]["depth"] == 3
+
+
+def test_parity_failure_writes_nothing(tmp_path, monkeypatch):
+    source, _ = _checkpoint(tmp_path)
+    real = export_module.reference_output
+
+    def off_by_a_bit(*args, **kwargs):  # a torch side that disagrees with the graph by 1e-3 of the range
+        return real(*args, **kwargs) + np.float32(4.095)
+
+    monkeypatch.setattr(export_module, "reference_output", off_by_a_bit)
+    output = tmp_path / "out" / "model.onnx"
+    output.parent.mkdir()
+    with pytest.raises(GrainwrightError, match="parity check failed.*nothing was written"):
+        export_checkpoint(source, output)
+    assert list(output.parent.iterdir()) == []
+
+
+def test_bad_inputs_get_clear_errors(tmp_path, calibration_dir):
+    source, payload = _checkpoint(tmp_path)
+    with pytest.raises(InputError, match="no such checkpoint"):
+        export_checkpoint(tmp_path / "missing.pt", tmp_path / "m.onnx")
+    newer = save_checkpoint(tmp_path / "newer.pt", {**payload, "format_version": FORMAT_VERSION + 1})
+    with pytest.raises(InputError, match="newer than this grainwright"):
+        export_checkpoint(newer, tmp_path / "m.onnx")
+    unknown = save_checkpoint(tmp_path / "unknown.pt", {**payload, "architecture": "unet-smal"})
+    with pytest.raises(InputError, match="did you mean 'unet-small'"):
+        export_checkpoint(unknown, tmp_path / "m.onnx")
+    rgb = Normalization("uint16", 12, 0.0, 4095.0, 3)
+    rgb_source, _ = _checkpoint(tmp_path, "residual", rgb)
+    with pytest.raises(InputError, match="camera.tif: has 1 channel.*takes 3"):
+        export_checkpoint(rgb_source, tmp_path / "m.onnx", calibration=calibration_dir)
+    with pytest.raises(ConfigError, match="--int8 needs --calibration"):
+        export_checkpoint(source, tmp_path / "m.onnx", int8=True)
+    (tmp_path / "exists.onnx").write_bytes(b"keep me")
+    with pytest.raises(InputError, match="already exists"):
+        export_checkpoint(source, tmp_path / "exists.onnx")
+    assert (tmp_path / "exists.onnx").read_bytes() == b"keep me"
+    assert not (tmp_path / "m.onnx").exists()
+
+
+def test_int8_keeps_input_normalisation_and_skip_in_float(tmp_path, calibration_dir):
+    source, _ = _checkpoint(tmp_path, "residual")
+    result = export_checkpoint(source, tmp_path / "model.onnx", calibration=calibration_dir, int8=True)
+    assert result.int8_path == int8_path_for(tmp_path / "model.onnx") and result.int8_path.exists()
+    proto = onnx.load(result.int8_path)
+    onnx.checker.check_model(proto, full_check=True)
+    nodes = list(proto.graph.node)
+    assert any(node.op_type == "QuantizeLinear" for node in nodes)
+    consumers = [node for node in nodes if "image" in node.input]
+    assert consumers and all(node.op_type not in ("QuantizeLinear", "DequantizeLinear") for node in consumers)
+    producer = next(node for node in nodes if "denoised" in node.output)
+    assert producer.op_type not in ("QuantizeLinear", "DequantizeLinear")
+    metadata = json.loads({e.key: e.value for e in proto.metadata_props}["grainwright"])
+    assert metadata["precision"] == "int8" and metadata["int8"]["passed"]
+    assert metadata["int8"]["psnr_vs_fp32_db"] >= 40.0 and metadata["int8"]["held_out_patches"] > 0
+    # 12-bit input keeps its levels through the float skip path: outputs are not on a 256-level grid.
+    image = tifffile.imread(calibration_dir / "moon.tif").astype(np.float32)[None, None]
+    output = _session(result.int8_path).run(["denoised"], {"image": image})[0]
+    assert len(np.unique(np.rint(output))) > 256
+
+
+def test_int8_gate_failure_keeps_fp32_and_exits_non_zero(tmp_path, calibration_dir, capsys):
+    source, _ = _checkpoint(tmp_path, "residual")
+    output = tmp_path / "model.onnx"
+    code = main(["export", str(source), "-o", str(output), "--calibration", str(calibration_dir), "--int8",
+                 "--min-int8-psnr", "500", "--threads", "1"])
+    printed = capsys.readouterr().out
+    assert code == 1
+    assert output.exists() and not int8_path_for(output).exists()
+    assert "below the 500 dB threshold" in printed and " dB against the FP32 output" in printed
+
+
+def test_cli_export_then_info(tmp_path, capsys):
+    source, _ = _checkpoint(tmp_path, "residual-noisemap")
+    output = tmp_path / "model.onnx"
+    assert main(["export", str(source), "-o", str(output), "--threads", "1"]) == 0
+    assert main(["info", str(output)]) == 0
+    printed = capsys.readouterr().out
+    assert "residual-noisemap" in printed and "noise_sigma" in printed and "receptive field   7 px" in printed
+    assert main(["export", str(source), "-o", str(output)]) == 2  # exists, no --overwrite
