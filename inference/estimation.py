@@ -8,6 +8,8 @@ import numpy as np
 import pywt
 from scipy import ndimage
 
+# Smallest image side analyse_noise accepts.
+MIN_ANALYSED_SIDE = 8
 # Median of |N(0, 1)|: converts a median absolute deviation to a standard deviation.
 MAD_TO_SIGMA = 0.6744897501960817
 
@@ -646,6 +648,9 @@ def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None
     from grainwright.inference.noise import GammaSpeckle, GaussianNoise, ImpulseNoise, MixtureNoise, PoissonGaussianNoise
 
     image = _as_hwc(image).astype(np.float64)
+    if min(image.shape[:2]) < MIN_ANALYSED_SIDE:
+        raise ValueError(f"an image of {image.shape[0]} x {image.shape[1]} pixels is too small to analyse its noise "
+                         f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
     high = float(image.max()) if high is None else float(high)
     span = high - low if high > low else 1.0
     sigma = estimate_sigma(image)

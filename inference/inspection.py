@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 
 from grainwright.inference.errors import GrainwrightError, InputError
-from grainwright.inference.estimation import NoiseAnalysis, analyse_noise, estimate_sigma
+from grainwright.inference.estimation import MIN_ANALYSED_SIDE, NoiseAnalysis, analyse_noise, estimate_sigma
 from grainwright.inference.imageio import find_images, read_frames
 from grainwright.inference.noise import GammaSpeckle, GaussianNoise, NoiseModel, PoissonGaussianNoise
 from grainwright.inference.normalization import Normalization
@@ -128,6 +128,9 @@ def inspect_file(path: Path, role: str, bit_depth: int | None = None, partner: P
                  nonfinite: str = "error") -> ImageReport:
     """Read one file and analyse its first frame (and, for a partner file or a stack, the pair)."""
     frames = read_frames(path, nonfinite=nonfinite)
+    if min(frames.shape[1:3]) < MIN_ANALYSED_SIDE:
+        raise InputError(path, f"{frames.shape[1]} x {frames.shape[2]} pixels is too small to analyse its noise "
+                               f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
     norm = Normalization.for_array(frames, bit_depth=bit_depth)
     image = _central_crop(frames[0])
     analysis = analyse_noise(image, low=norm.low, high=norm.high)

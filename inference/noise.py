@@ -359,6 +359,9 @@ class MixtureNoise(NoiseModel):
             noisy = component.sample(noisy, rng)
         return noisy
 
+    def describe(self) -> str:
+        return "mixture(" + " then ".join(c.describe() for c in self.components) + ")"
+
     def sigma_map(self, clean):
         maps = [m for m in (c.sigma_map(clean) for c in self.components) if m is not None]
         if not maps:

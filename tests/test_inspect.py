@@ -124,3 +124,9 @@ def test_bad_files_are_reported_and_the_batch_goes_on(tmp_path, capsys):
     assert "broken.png" in err and "nan.npy" in err
     code, _, err = _run(["inspect", str(tmp_path / "missing.tif")], capsys)
     assert code == 1 and "missing.tif: no such file" in err
+
+
+def test_too_small_images_are_refused_by_name(tmp_path, capsys):
+    write_image(tmp_path / "strip.png", np.zeros((1, 40), np.uint8))
+    code, _, err = _run(["inspect", str(tmp_path / "strip.png")], capsys)
+    assert code == 1 and "strip.png: 1 x 40 pixels is too small" in err

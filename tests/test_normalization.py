@@ -94,3 +94,29 @@ def test_empty_range_and_unknown_transform_are_refused():
         Normalization("uint8", 8, 5.0, 5.0, 1)
     with pytest.raises(ConfigError, match="unknown transform"):
         Normalization("uint8", 8, 0.0, 255.0, 1, transform={"kind": "sqrt"})
+
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+from hypothesis.extra.numpy import arrays  # noqa: E402
+
+
+@st.composite
+def _integer_images(draw):
+    dtype = draw(st.sampled_from(["uint8", "uint16", "int8", "int16"]))
+    shape = draw(st.tuples(st.integers(1, 6), st.integers(1, 6), st.integers(1, 4)))
+    image = draw(arrays(np.dtype(dtype), shape))
+    bits = None
+    if dtype == "uint16":
+        needed = max(int(image.max()).bit_length(), 1)
+        bits = draw(st.integers(needed, 16))
+    return image, bits
+
+
+@settings(max_examples=200, deadline=None)
+@given(_integer_images())
+def test_round_trip_is_exact_for_any_integer_image_and_bit_depth(case):
+    image, bits = case
+    norm = Normalization.for_array(image, bit_depth=bits)
+    np.testing.assert_array_equal(norm.from_working(norm.to_working(image)), image)
+    assert Normalization.from_dict(norm.to_dict()) == norm
