@@ -74,8 +74,10 @@ class Normalization:
         """Describe an image or stack (``(..., H, W, C)``) by its dtype and effective bit depth.
 
         Unsigned integers map ``[0, 2**bit_depth - 1]`` to ``[0, 1]`` (``bit_depth`` detected by
-        ``effective_bit_depth`` unless given). Signed integers map the dtype's full range. Float data in
-        ``[0, 1]`` keeps that range; other float data maps its own minimum and maximum.
+        ``effective_bit_depth`` unless given). Signed integers map the dtype's full range. Float data within
+        ``[-0.5, 1.5]`` is taken as unit-range data (noise may overshoot ``[0, 1]``) and keeps ``[0, 1]``;
+        other float data maps its own minimum and maximum (normalise a whole set with one description: pass
+        the stack, or build it once and reuse it).
         """
         array = np.asarray(array)
         channels = int(array.shape[-1]) if array.ndim >= 3 else 1
@@ -91,7 +93,7 @@ class Normalization:
             return cls(dtype.name, dtype.itemsize * 8, float(info.min), float(info.max), channels, order)
         if dtype.kind == "f":
             low, high = float(np.min(array)), float(np.max(array))
-            if low >= 0.0 and high <= 1.0:
+            if low >= -0.5 and high <= 1.5:  # unit-range data, noise overshooting [0, 1] included
                 low, high = 0.0, 1.0
             elif high <= low:
                 high = low + 1.0

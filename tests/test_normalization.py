@@ -38,6 +38,13 @@ def test_user_bit_depth_overrides_detection_and_output_is_clipped_to_it():
     np.testing.assert_array_equal(norm.from_working(np.array([-0.5, 2.0], np.float32)), [0, 4095])
 
 
+def test_noisy_unit_range_float_data_keeps_zero_to_one():
+    noisy = np.array([[[-0.08], [0.5], [1.1]]], dtype=np.float32)
+    norm = Normalization.for_array(noisy)
+    assert (norm.low, norm.high) == (0.0, 1.0)
+    np.testing.assert_allclose(norm.to_working(noisy), noisy)
+
+
 def test_float_data_and_float_output_are_not_clipped():
     data = np.array([[[-3.0], [5.0]]], dtype=np.float32)
     norm = Normalization.for_array(data)
