@@ -179,6 +179,8 @@ def inspect_paths(paths: list[str | Path], recursive: bool = False, bit_depth: i
     if report.images:
         report.summary, report.model = summarise(report.images)
         report.recommendation = recommend(report.layout, report.images, report.summary)
+        if len(paths) == 1 and Path(paths[0]).is_dir():
+            report.recommendation["command"] = report.recommendation["command"].replace("DIR", str(paths[0]))
     return report
 
 
