@@ -224,15 +224,41 @@ def match_images(noisy_dir: str | Path, clean_dir: str | Path | None = None) -> 
     return ImageSet(noisy, matched)
 
 
-def _set_normalization(arrays: list[np.ndarray]) -> Normalization:
-    """One mapping to the working range for the whole set: the largest effective bit depth, or the float range."""
-    first = arrays[0]
-    if first.dtype.kind == "u":
-        bits = max(effective_bit_depth(a) or 1 for a in arrays)
-        return Normalization.for_array(first, bit_depth=bits)
-    if first.dtype.kind == "f":
-        return Normalization.for_array(np.concatenate([a.reshape(-1, a.shape[-1]) for a in arrays])[None])
-    return Normalization.for_array(first)
+def _check_set(images: ImageSet) -> tuple[Normalization, int]:
+    """Check channels, dtypes and pair shapes over the whole set; one normalisation for all of it.
+
+    A first pass reads each image and keeps only its summary (memory stays at one image); the working range is
+    the largest effective bit depth found, or the float range over all images.
+    """
+    first_path = images.noisy[0]
+    reference = None
+    bits, low, high = 1, math.inf, -math.inf
+    pairs = zip(images.noisy, images.clean or [None] * len(images.noisy))
+    for noisy_path, clean_path in pairs:
+        arrays = [(noisy_path, read_image(noisy_path))]
+        if clean_path is not None:
+            arrays.append((clean_path, read_image(clean_path)))
+            if arrays[1][1].shape != arrays[0][1].shape:
+                raise InputError(clean_path, f"shape {arrays[1][1].shape} differs from the noisy {noisy_path.name} "
+                                             f"{arrays[0][1].shape}")
+        for path, array in arrays:
+            if reference is None:
+                reference = array
+            if array.shape[2] != reference.shape[2]:
+                raise InputError(path, f"has {array.shape[2]} channel(s), {first_path.name} has {reference.shape[2]}")
+            if array.dtype != reference.dtype:
+                raise InputError(path, f"is {array.dtype}, {first_path.name} is {reference.dtype}")
+            if array.dtype.kind == "u":
+                bits = max(bits, effective_bit_depth(array) or 1)
+            low, high = min(low, float(array.min())), max(high, float(array.max()))
+    if reference.dtype.kind == "u":
+        normalization = Normalization.for_array(reference, bit_depth=bits)
+    elif reference.dtype.kind == "f":
+        extremes = np.array([low, high], dtype=reference.dtype)[None, :, None].repeat(reference.shape[2], axis=2)
+        normalization = Normalization.for_array(extremes)
+    else:
+        normalization = Normalization.for_array(reference)
+    return normalization, reference.shape[2]
 
 
 # ---------------------------------------------------------------------------------------------- noise
@@ -251,7 +277,9 @@ def estimate_noise(noisy: np.ndarray, choice: str = "auto") -> NoiseEstimate:
         raise ConfigError(f"--noise must be one of {', '.join(NOISE_CHOICES)}, got {choice!r}")
     gray_sigma = float(estimate_sigma(noisy.mean(axis=2))[0])
     if choice != "gaussian":
-        fit = fit_poisson_gaussian(noisy)
+        # The fit's defaults want some 15,000 2x2 blocks; small images get fewer, larger signal levels.
+        blocks = noisy.shape[0] * noisy.shape[1] // 4
+        fit = fit_poisson_gaussian(noisy) if blocks >= 15000 else fit_poisson_gaussian(noisy, levels=8, min_blocks=100)
         usable = fit.gain > 0
         if choice == "poisson-gaussian" and not usable:
             raise ConfigError("--noise poisson-gaussian: the fit found no signal-dependent part in this image")
@@ -406,31 +434,19 @@ def run_comparison(
     if out_dir.exists() and (not out_dir.is_dir() or any(out_dir.iterdir())) and not options.overwrite:
         raise InputError(out_dir, "report folder exists and is not empty (not overwritten without --overwrite)")
 
-    noisy_native = [read_image(path) for path in images.noisy]
-    clean_native = [read_image(path) for path in images.clean] if images.clean else None
-    channels = noisy_native[0].shape[2]
-    for path, array in zip(images.noisy, noisy_native):
-        if array.shape[2] != channels:
-            raise InputError(path, f"has {array.shape[2]} channel(s), {images.noisy[0].name} has {channels}")
-        if array.dtype != noisy_native[0].dtype:
-            raise InputError(path, f"is {array.dtype}, {images.noisy[0].name} is {noisy_native[0].dtype}")
-    if clean_native is not None:
-        for noisy_path, clean_path, noisy, clean in zip(images.noisy, images.clean, noisy_native, clean_native):
-            if clean.shape != noisy.shape:
-                raise InputError(clean_path, f"shape {clean.shape} differs from the noisy {noisy_path.name} {noisy.shape}")
-    normalization = _set_normalization(noisy_native + (clean_native or []))
+    normalization, channels = _check_set(images)
     learned = {spec.label: _LearnedMethod(spec, options.threads) for spec in specs if spec.kind == "learned"}
     for method in learned.values():
         method.check_channels(channels, Path(noisy_dir))
 
-    ground_truth = clean_native is not None
+    ground_truth = images.clean is not None
     rows: list[dict[str, Any]] = []
     details: list[dict[str, Any]] = []
     panels: list[ImagePanels] = []
     noise_texts: list[str] = []
     for index, path in enumerate(images.noisy):
-        noisy = normalization.to_working(noisy_native[index])
-        clean = normalization.to_working(clean_native[index]) if ground_truth else None
+        noisy = normalization.to_working(read_image(path))
+        clean = normalization.to_working(read_image(images.clean[index])) if ground_truth else None
         noise = estimate_noise(noisy, options.noise)
         noise_texts.append(f"{path.name}: {noise.text}")
         say(f"[{index + 1}/{len(images.noisy)}] {path.name}: {noise.text}")

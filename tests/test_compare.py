@@ -192,3 +192,29 @@ def test_bad_input_gives_one_line_errors(dataset, tmp_path, capsys):
     assert (existing / "keep.txt").read_text() == "user data"
     for name in ("r1", "r2", "r3", "r4"):
         assert not (tmp_path / name).exists(), "nothing half-written"
+
+
+def test_poisson_gaussian_data_is_scored_in_the_anscombe_domain(tmp_path):
+    # 12-bit data in uint16 with Poisson-Gaussian noise (variance = gain * signal + read^2, working units), made
+    # with the project's noise registry from scikit-image's coins and camera crops.
+    from grainwright.inference.noise import noise_from_dict
+
+    noise = noise_from_dict({"kind": "poisson-gaussian", "gain": 0.004, "read": 0.01})
+    rng = np.random.default_rng(4)
+    for name, image in {"coins.tif": data.coins()[40:168, 60:188], "camera.tif": data.camera()[60:188, 200:328]}.items():
+        clean = (0.1 + 0.8 * image / 255.0).astype(np.float32)
+        noisy = noise.sample(clean[:, :, None], rng)[:, :, 0]
+        write_image(tmp_path / "clean" / name, np.rint(clean * 4095).astype(np.uint16))
+        write_image(tmp_path / "noisy" / name, np.clip(np.rint(noisy * 4095), 0, 4095).astype(np.uint16))
+    options = CompareOptions(quick=True, threads=1, noise="poisson-gaussian")
+    result = run_comparison(tmp_path / "noisy", "mean,gaussian,nlm", tmp_path / "report", clean_dir=tmp_path / "clean",
+                            options=options)
+    assert {row["sure_domain"] for row in result.per_image} == {"Anscombe domain"}
+    assert "Poisson-Gaussian" in result.settings["noise"]
+    compared = 0
+    for i, a in enumerate(result.ranking):
+        for b in result.ranking[i + 1:]:
+            if abs(a["psnr"] - b["psnr"]) >= 1.0:
+                compared += 1
+                assert (a["psnr"] > b["psnr"]) == (a["sure_psnr"] > b["sure_psnr"]), (a["method"], b["method"])
+    assert compared >= 1
