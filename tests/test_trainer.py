@@ -150,3 +150,80 @@ def test_command_line(tmp_path, capsys):
     assert "exists and is not empty" in capsys.readouterr().err
     assert main(["train", "--data", str(folder), "--scheme", "noise2noise", "--out", str(tmp_path / "x")]) == 2
     assert "schemes that fit" in capsys.readouterr().err
+
+
+def test_learning_rate_follows_warm_up_then_cosine():
+    # Reference: torch.optim.lr_scheduler.CosineAnnealingLR (Loshchilov and Hutter 2017's cosine annealing) over
+    # the steps after the warm-up; the warm-up itself is linear from zero.
+    from grainwright.trainer.config import defaults
+    from grainwright.trainer.loop import learning_rate
+
+    optim = dict(defaults()["optim"], lr=2e-3, warmup_fraction=0.1, final_lr_fraction=0.05)
+    total, warm = 200, 20
+    assert learning_rate(0.0, optim) == 0.0
+    assert learning_rate(10 / total, optim) == pytest.approx(1e-3)
+    parameter = torch.nn.Parameter(torch.zeros(1))
+    optimizer = torch.optim.SGD([parameter], lr=2e-3)
+    reference = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total - warm, eta_min=1e-4)
+    for step in range(warm, total + 1):
+        assert learning_rate(step / total, optim) == pytest.approx(optimizer.param_groups[0]["lr"], rel=1e-6)
+        optimizer.step()
+        reference.step()
+
+
+@pytest.mark.slow
+def test_poisson_gaussian_recorrupted_trains_in_the_anscombe_domain(tmp_path):
+    rng = np.random.default_rng(0)
+    gain, read = 0.01, 0.01  # working units: fractions of the 12-bit range
+    (tmp_path / "data" / "noisy").mkdir(parents=True)
+    for i, crop in enumerate(_crops()):
+        clean = crop.astype(np.float64) / 255.0
+        noisy = gain * rng.poisson(clean / gain) + read * rng.standard_normal(clean.shape)
+        write_image(tmp_path / "data" / "noisy" / f"crop{i}.tif", np.clip(np.round(noisy * 4095), 0, 4095).astype(np.uint16))
+    (tmp_path / "data" / "noise.toml").write_text(f'kind = "poisson-gaussian"\ngain = {gain}\nread = {read}\n')
+    summary, run = train_command(None, str(tmp_path / "data"), steps=10, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=TINY + ["data.bit_depth=12"])
+    assert summary["scheme"] == "recorrupted" and summary["transform"] == "anscombe"
+    transform = load_checkpoint(run.best)["normalization"]["transform"]
+    assert transform["kind"] == "anscombe" and transform["gain"] == pytest.approx(gain)
+
+
+@pytest.mark.slow
+def test_banding_is_flagged_and_corrected(tmp_path):
+    rng = np.random.default_rng(1)
+    lines: list[str] = []
+    (tmp_path / "data" / "noisy").mkdir(parents=True)
+    for i, crop in enumerate(_crops()):
+        rows = rng.normal(0, 12.0, (crop.shape[0], 1))  # strong row banding, 8-bit units
+        noisy = crop + rng.normal(0, 10.0, crop.shape) + rows
+        np.save(tmp_path / "data" / "noisy" / f"crop{i}.npy", noisy.astype(np.float32))
+    summary, _ = train_command(None, str(tmp_path / "data"), scheme="neighbor2neighbor", steps=4,
+                               out=str(tmp_path / "run"), announce=lines.append, assignments=TINY)
+    assert summary["fixed_pattern_corrected"] is True
+    assert any("banding" in line and "fixed-pattern correction" in line for line in lines)
+
+
+@pytest.mark.slow
+def test_sigterm_saves_a_resumable_state(tmp_path):
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    folder = _noisy_folder(tmp_path / "data")
+    run_dir = tmp_path / "run"
+    command = ["train", "--data", str(folder), "--steps", "100000", "--out", str(run_dir),
+               "--set", "checkpoint.every_minutes=100"]
+    for assignment in TINY:
+        command += ["--set", assignment]
+    script = f"import sys\nfrom grainwright.inference.cli import main\nsys.exit(main({command!r}))\n"
+    process = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 60
+    while not (run_dir / "checkpoints" / "last.pt").exists() and time.monotonic() < deadline:
+        time.sleep(0.2)  # last.pt is written just before the first step
+    time.sleep(1.0)
+    process.send_signal(signal.SIGTERM)
+    assert process.wait(timeout=60) == 130
+    written = json.loads((run_dir / "training-summary.json").read_text())
+    assert written["stopped"] == "interrupted"
+    assert load_checkpoint(run_dir / "checkpoints" / "last.pt")["step"] == written["steps"] > 0
