@@ -62,6 +62,7 @@ from grainwright.inference.metrics import psnr, ssim
 from grainwright.inference.normalization import Normalization
 from grainwright.inference.quality import ms_ssim, no_reference_figures
 from grainwright.inference.report import Column, CropSet, ImagePanels, ReportContent, write_report
+from grainwright.inference.runner import Denoiser
 from grainwright.inference.sure import SureEstimate, sure_mse, sure_mse_stabilized, unclipped_mask
 
 LEARNED_LABEL = "learned (ONNX model as exported)"
@@ -268,6 +269,7 @@ class NoiseEstimate:
 
     spec: dict[str, Any]
     gray_sigma: float  # standard deviation of the channel-averaged image's noise (MAD estimate)
+    channel_sigma: float  # mean over channels of each channel's noise standard deviation (MAD estimate)
     text: str
 
 
@@ -276,6 +278,7 @@ def estimate_noise(noisy: np.ndarray, choice: str = "auto") -> NoiseEstimate:
     if choice not in NOISE_CHOICES:
         raise ConfigError(f"--noise must be one of {', '.join(NOISE_CHOICES)}, got {choice!r}")
     gray_sigma = float(estimate_sigma(noisy.mean(axis=2))[0])
+    sigma = np.asarray(estimate_sigma(noisy), dtype=np.float64)
     if choice != "gaussian":
         # The fit's defaults want some 15,000 2x2 blocks; small images get fewer, larger signal levels.
         blocks = noisy.shape[0] * noisy.shape[1] // 4
@@ -286,13 +289,12 @@ def estimate_noise(noisy: np.ndarray, choice: str = "auto") -> NoiseEstimate:
         if usable and (choice == "poisson-gaussian" or (fit.signal_dependent and fit.confident)):
             spec = {"kind": "poisson-gaussian", "gain": float(fit.gain), "read": float(fit.read)}
             text = f"Poisson-Gaussian, gain {fit.gain:.3g}, read noise {fit.read:.3g} (fitted, working units)"
-            return NoiseEstimate(spec, gray_sigma, text)
-    sigma = np.asarray(estimate_sigma(noisy), dtype=np.float64)
+            return NoiseEstimate(spec, gray_sigma, float(sigma.mean()), text)
     if not np.all(sigma > 0):
         raise InputError(None, "the estimated noise level is zero: is this image noisy, or already denoised?")
     spec = {"kind": "gaussian", "sigma": sigma.tolist()}
     text = "Gaussian, sigma " + ", ".join(f"{s:.4g}" for s in sigma) + " (MAD estimate, working units)"
-    return NoiseEstimate(spec, gray_sigma, text)
+    return NoiseEstimate(spec, gray_sigma, float(sigma.mean()), text)
 
 
 def sure_figure(denoise: Denoise, noisy: np.ndarray, output: np.ndarray, noise: NoiseEstimate,
@@ -374,8 +376,6 @@ class _LearnedMethod:
     """An ONNX model seen as a working-range denoiser for one image's normalisation and noise level."""
 
     def __init__(self, spec: MethodSpec, threads: int | None):
-        from grainwright.inference.runner import Denoiser
-
         self.denoiser = Denoiser(spec.path, threads=threads)
         self.path = spec.path
 
@@ -450,7 +450,7 @@ def run_comparison(
         noise = estimate_noise(noisy, options.noise)
         noise_texts.append(f"{path.name}: {noise.text}")
         say(f"[{index + 1}/{len(images.noisy)}] {path.name}: {noise.text}")
-        native_sigma = noise.gray_sigma * normalization.full_range
+        native_sigma = noise.channel_sigma * normalization.full_range  # what the runtime's own estimate gives
         regions = _regions_for(path, noisy, noise, regions_file, rois, options)
         outputs: dict[str, np.ndarray] = {}
         structure_maps: dict[str, np.ndarray] = {}
