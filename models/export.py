@@ -170,8 +170,12 @@ def build_metadata(payload: dict[str, Any], model: Denoiser, normalization: Norm
     figures = model.describe()
     inputs = {"image": "float32 N x C x H x W, native pixel values; H and W multiples of the alignment"}
     if model.takes_noise_map:
-        inputs["noise_sigma"] = ("float32 N x 1 x H x W, noise standard deviation per pixel in native units; "
-                                 "scale it to change the strength")
+        inputs["noise_sigma"] = (
+            "float32 N x 1 x H x W, noise standard deviation per pixel in native units; scale it to change the "
+            "strength. The graph converts it to the working domain by the transform's slope at each pixel, so for "
+            "Poisson-Gaussian noise (Anscombe transform) give sigma(x) = (high - low) * sqrt(gain * (x - low) / "
+            "(high - low) + read**2) with gain and read from normalization.transform"
+        )
     return {
         "format": METADATA_FORMAT,
         "format_version": METADATA_VERSION,
