@@ -27,6 +27,8 @@ their meaning in any unit or transformed domain.
 """
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy.fft import dct
@@ -36,8 +38,10 @@ from grainwright.inference.baselines.base import Baseline, Parameter
 # Opponent colour transform of the paper's colour extension (rows: luminance, two opponent axes); from memory.
 OPPONENT = np.array([[1 / 3, 1 / 3, 1 / 3], [1 / 2, 0.0, -1 / 2], [1 / 4, -1 / 2, 1 / 4]])
 
-# Matrix entries processed per band of reference rows; bounds memory at a few hundred MB.
-_BAND_BUDGET = 3_000_000
+# References per side of a matching tile and reference rows per processing band: about 8 keeps each tile's
+# search area (its references' windows together) small enough that most of the matrix product is used.
+_MATCH_TILE = 8
+_CHUNK_REFS = 2048
 
 
 def dct_matrix(size: int) -> np.ndarray:
@@ -45,6 +49,7 @@ def dct_matrix(size: int) -> np.ndarray:
     return dct(np.eye(size), norm="ortho", axis=0).astype(np.float32)
 
 
+@functools.lru_cache(maxsize=None)
 def haar_matrix(size: int) -> np.ndarray:
     """Orthonormal 1-D Haar transform matrix for a power-of-two ``size`` (rows are the basis vectors)."""
     if size == 1:
@@ -62,68 +67,44 @@ def _reference_positions(extent: int, step: int) -> np.ndarray:
     return positions
 
 
-def _window_sums(values: np.ndarray, size: int, axis: int) -> np.ndarray:
-    """Sums of ``size`` consecutive entries along ``axis`` (length shrinks by ``size - 1``).
-
-    Built by doubling (sums over 1, 2, 4, ... entries), so it costs about log2(size) contiguous passes and,
-    unlike a running cumulative sum, never adds more than ``size`` numbers together, which keeps float32
-    exact enough whatever the image's scale.
-    """
-
-    def part(array: np.ndarray, start: int, stop: int) -> np.ndarray:
-        index = [slice(None)] * array.ndim
-        index[axis] = slice(start, stop)
-        return array[tuple(index)]
-
-    count = values.shape[axis] - size + 1
-    result, offset, power, span, remaining = None, 0, values, 1, size
-    while remaining:
-        if remaining & 1:
-            piece = part(power, offset, offset + count)
-            result = piece if result is None else result + piece
-            offset += span
-        remaining >>= 1
-        if remaining:
-            length = power.shape[axis]
-            power = part(power, 0, length - span) + part(power, span, length)
-            span *= 2
-    return result
-
-
 def _match(guide: np.ndarray, ref_y: np.ndarray, ref_x: np.ndarray, block: int, radius: int) -> np.ndarray:
     """Mean squared difference between each reference block and every block of its search window.
 
     Returns ``(len(ref_y), len(ref_x), (2 radius + 1)^2)`` float32, displacements in row-major order
-    (dy, dx) from -radius to radius; blocks outside the image get +inf. Vectorised over dx and over all
-    references: for each dy the squared difference image is box-summed with cumulative sums, which costs a
-    few passes over the band per displacement instead of one per block pair.
+    (dy, dx) from -radius to radius; blocks outside the image get +inf and the reference itself -1, so it
+    always leads its own group. Vectorised as matrix products: for a tile of references, ``|r - c|^2 =
+    |r|^2 + |c|^2 - 2 r.c`` against every block of the tile's joint search area in one BLAS call, then each
+    reference keeps its own window. ``guide`` should be roughly zero-mean (the caller subtracts the mean) so
+    that float32 loses nothing in the subtraction.
     """
     height, width = guide.shape
     span = 2 * radius + 1
-    padded = np.pad(guide, radius, mode="edge")  # values out there are masked below
-    top = int(ref_y[0])
-    rows = int(ref_y[-1]) - top + block
-    reference = padded[top + radius : top + radius + rows, radius : radius + width]
-    local_y = ref_y - top
-    out = np.empty((len(ref_y), len(ref_x), span, span), dtype=np.float32)
-    squared = np.empty((span, rows, width), dtype=np.float32)
-    for i, dy in enumerate(range(-radius, radius + 1)):
-        shifted = padded[top + radius + dy : top + radius + dy + rows]
-        # (span, rows, width): every horizontal displacement at once.
-        candidates = sliding_window_view(shifted, width, axis=1).transpose(1, 0, 2)
-        np.subtract(reference[None], candidates, out=squared)
-        np.square(squared, out=squared)
-        strips = _window_sums(squared, block, axis=1)[:, local_y]  # (span, n_y, width)
-        boxes = _window_sums(strips, block, axis=2)[:, :, ref_x]  # (span, n_y, n_x)
-        out[:, :, i, :] = boxes.transpose(1, 2, 0) / (block * block)
+    blocks = sliding_window_view(guide, (block, block))  # (H - B + 1, W - B + 1, B, B), a view
     offsets = np.arange(-radius, radius + 1)
-    valid_y = (ref_y[:, None] + offsets[None]) >= 0
-    valid_y &= (ref_y[:, None] + offsets[None]) <= height - block
-    valid_x = (ref_x[:, None] + offsets[None]) >= 0
-    valid_x &= (ref_x[:, None] + offsets[None]) <= width - block
-    valid = valid_y[:, None, :, None] & valid_x[None, :, None, :]
-    out[~valid] = np.inf
-    out[:, :, radius, radius] = -1.0  # the reference block always leads its own group
+    out = np.empty((len(ref_y), len(ref_x), span, span), dtype=np.float32)
+    rows = ref_y[:, None] + offsets[None]  # (n_y, span) candidate rows
+    valid_rows = (rows >= 0) & (rows <= height - block)
+    top, bottom = max(int(ref_y[0]) - radius, 0), min(int(ref_y[-1]) + radius, height - block)
+    references = blocks[ref_y]  # (n_y, W - B + 1, B, B)
+    for start in range(0, len(ref_x), _MATCH_TILE):
+        tile_x = ref_x[start : start + _MATCH_TILE]
+        left, right = max(int(tile_x[0]) - radius, 0), min(int(tile_x[-1]) + radius, width - block)
+        area_w = right - left + 1
+        candidates = blocks[top : bottom + 1, left : right + 1].reshape(-1, block * block)
+        tile = references[:, tile_x].reshape(-1, block * block)
+        squared = (
+            np.einsum("ij,ij->i", tile, tile)[:, None]
+            + np.einsum("ij,ij->i", candidates, candidates)[None, :]
+            - 2.0 * (tile @ candidates.T)
+        )  # (n_y * n_tile, area)
+        cols = tile_x[:, None] + offsets[None]  # (n_tile, span)
+        index = (np.clip(rows - top, 0, bottom - top)[:, None, :, None] * area_w
+                 + np.clip(cols - left, 0, area_w - 1)[None, :, None, :])  # (n_y, n_tile, span, span)
+        picked = np.take_along_axis(squared, index.reshape(len(squared), -1), axis=1)
+        valid = valid_rows[:, None, :, None] & ((cols >= 0) & (cols <= width - block))[None, :, None, :]
+        picked = np.where(valid.reshape(picked.shape), np.maximum(picked, 0.0) / (block * block), np.inf)
+        out[:, start : start + len(tile_x)] = picked.reshape(len(ref_y), len(tile_x), span, span)
+    out[:, :, radius, radius] = -1.0
     return out.reshape(len(ref_y), len(ref_x), span * span)
 
 
@@ -152,6 +133,34 @@ def _inverse(spectra: np.ndarray, dct2: np.ndarray, haar: np.ndarray) -> np.ndar
     return dct2.T @ blocks @ dct2
 
 
+def _filter_groups(
+    groups: np.ndarray,
+    guide_groups: np.ndarray | None,
+    sigmas: np.ndarray,
+    threshold: float,
+    dct2: np.ndarray,
+    haar: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Collaborative filtering of groups ``(n, k, C, B, B)``: the filtered groups and each group's weight (n, C).
+
+    Without ``guide_groups``: hard thresholding at ``threshold * sigma``, weight ``1 / (sigma^2 * kept)``.
+    With them (stage two): Wiener shrinkage by ``G^2 / (G^2 + sigma^2)`` of the guide's spectrum ``G``,
+    weight ``1 / (sigma^2 * |gain|^2)``.
+    """
+    variance = (sigmas.astype(np.float32) ** 2)[None, :]  # (1, C)
+    spectra = _forward(groups, dct2, haar)
+    if guide_groups is None:
+        keep = np.abs(spectra) >= threshold * sigmas.astype(np.float32)[None, None, :, None, None]
+        spectra *= keep
+        weights = 1.0 / (variance * np.maximum(keep.sum(axis=(1, 3, 4)), 1))
+    else:
+        power = _forward(guide_groups, dct2, haar) ** 2
+        gain = power / (power + variance[:, None, :, None, None])
+        spectra *= gain
+        weights = 1.0 / (variance * np.maximum((gain**2).sum(axis=(1, 3, 4)), 1e-12))
+    return _inverse(spectra, dct2, haar), weights
+
+
 def _stage(
     noisy: np.ndarray,
     guide: np.ndarray,
@@ -178,43 +187,35 @@ def _stage(
     within = np.arange(block)
     numerator = np.zeros((channels, height * width))
     denominator = np.zeros((channels, height * width))
-    variance = (sigmas.astype(np.float32) ** 2)[None, :]  # (1, C)
-    per_row = len(ref_x) * max(group_size * block * block * channels, span * span)
-    band_rows = max(1, _BAND_BUDGET // per_row)
-
-    for start in range(0, len(ref_y), band_rows):
-        band_y = ref_y[start : start + band_rows]
-        distances = _match(guide, band_y, ref_x, block, radius).reshape(-1, span * span)
-        nearest, sizes = _select(distances, group_size, match_threshold)
-        origin_y = np.repeat(band_y, len(ref_x))[:, None]
-        origin_x = np.tile(ref_x, len(band_y))[:, None]
-        all_y = origin_y + nearest // span - radius
-        all_x = origin_x + nearest % span - radius
-        for size in np.unique(sizes):
-            chosen = sizes == size
-            ys, xs = all_y[chosen, :size], all_x[chosen, :size]
-            haar = haar_matrix(int(size))
-            spectra = _forward(noisy_blocks[ys, xs], dct2, haar)  # (n, k, C, B, B)
-            if basic_blocks is None:
-                keep = np.abs(spectra) >= threshold * sigmas.astype(np.float32)[None, None, :, None, None]
-                spectra *= keep
-                kept = keep.sum(axis=(1, 3, 4))  # (n, C)
-                weights = 1.0 / (variance * np.maximum(kept, 1))
-            else:
-                guide_spectra = _forward(basic_blocks[ys, xs], dct2, haar)
-                power = guide_spectra**2
-                gain = power / (power + variance[:, None, :, None, None])
-                spectra *= gain
-                weights = 1.0 / (variance * np.maximum((gain**2).sum(axis=(1, 3, 4)), 1e-12))
-            estimates = _inverse(spectra, dct2, haar)  # (n, k, C, B, B)
-            pixels = (ys[:, :, None, None] + within[:, None]) * width + (xs[:, :, None, None] + within[None, :])
-            pixels = pixels.ravel()
-            for c in range(channels):
-                weighted_window = weights[:, c, None, None, None] * window  # (n, 1, B, B)
-                values = (weighted_window * estimates[:, :, c]).ravel()
-                numerator[c] += np.bincount(pixels, weights=values, minlength=height * width)
-                mass = np.broadcast_to(weighted_window, estimates[:, :, c].shape).ravel()
-                denominator[c] += np.bincount(pixels, weights=mass, minlength=height * width)
+    centred = (guide - np.float32(guide.mean())).astype(np.float32)  # distances ignore offsets; float32 does not
+    # References filtered together: bounds the group arrays (refs x group x C x B x B floats) to tens of MB.
+    chunk_x = max(_MATCH_TILE, _CHUNK_REFS // (_MATCH_TILE * _MATCH_TILE) * _MATCH_TILE)
+    for start in range(0, len(ref_y), _MATCH_TILE):
+        band_y = ref_y[start : start + _MATCH_TILE]
+        # Every block of this band lies in these rows; aggregating there keeps each histogram small.
+        row0, row1 = max(int(band_y[0]) - radius, 0), min(int(band_y[-1]) + radius + block, height)
+        band = slice(row0 * width, row1 * width)
+        for first in range(0, len(ref_x), chunk_x):
+            part_x = ref_x[first : first + chunk_x]
+            distances = _match(centred, band_y, part_x, block, radius).reshape(-1, span * span)
+            nearest, sizes = _select(distances, group_size, match_threshold)
+            all_y = np.repeat(band_y, len(part_x))[:, None] + nearest // span - radius
+            all_x = np.tile(part_x, len(band_y))[:, None] + nearest % span - radius
+            for size in np.unique(sizes):
+                chosen = sizes == size
+                ys, xs = all_y[chosen, :size], all_x[chosen, :size]
+                guide_groups = None if basic_blocks is None else basic_blocks[ys, xs]
+                estimates, weights = _filter_groups(
+                    noisy_blocks[ys, xs], guide_groups, sigmas, threshold, dct2, haar_matrix(int(size))
+                )
+                pixels = (ys[:, :, None, None] - row0 + within[:, None]) * width + (xs[:, :, None, None] + within)
+                pixels = pixels.ravel()
+                for c in range(channels):
+                    weighted_window = weights[:, c, None, None, None] * window  # (n, 1, B, B)
+                    values = (weighted_window * estimates[:, :, c]).ravel()
+                    mass = np.broadcast_to(weighted_window, estimates[:, :, c].shape).ravel()
+                    numerator[c, band] += np.bincount(pixels, weights=values, minlength=band.stop - band.start)
+                    denominator[c, band] += np.bincount(pixels, weights=mass, minlength=band.stop - band.start)
     estimate = numerator / denominator
     return estimate.T.reshape(height, width, channels).astype(np.float32)
 
