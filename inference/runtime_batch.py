@@ -110,10 +110,10 @@ def _same_run(record: dict[str, Any], expected: dict[str, Any]) -> bool:
 def domain_warnings(denoiser: Denoiser, sample: np.ndarray) -> list[str]:
     """Compare an input's noise level (MAD estimate, Donoho & Johnstone 1994) and effective bit depth with what
     the model saw in training; one line per figure off by more than ``DOMAIN_FACTOR``. ``sample`` is the
-    frame, or its central ``SAMPLE_EDGE`` square for large frames."""
+    central ``SAMPLE_EDGE`` square (or all) of a file's first frame."""
     spec, notes = denoiser.spec, []
-    sigma = float(np.mean(estimate_sigma(sample)))
     if spec.training_sigma and min(sample.shape[:2]) >= MIN_ESTIMATE_EDGE:
+        sigma = float(np.mean(estimate_sigma(sample)))
         ratio = sigma / spec.training_sigma
         if not 1 / DOMAIN_FACTOR <= ratio <= DOMAIN_FACTOR:
             notes.append(f"noise level {sigma:.3g} is {ratio:.2g}x the training level {spec.training_sigma:.3g} "

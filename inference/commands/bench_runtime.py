@@ -89,6 +89,17 @@ def _file_path(denoiser: Denoiser, source: Path, out_dir: Path) -> Callable[[], 
     return run
 
 
+# Linux keeps a process's peak RSS across exec, and a child forked from this (large) process would start from
+# our own peak. So a small fresh launcher spawns the measured command and reports its peak (KiB, from wait4).
+_LAUNCHER = """
+import os, sys
+pid = os.posix_spawn(sys.argv[1], sys.argv[1:], os.environ)
+_, status, usage = os.wait4(pid, 0)
+print(usage.ru_maxrss)
+sys.exit(os.waitstatus_to_exitcode(status))
+"""
+
+
 def _generated_tiles(height: int, width: int, tile: int, high: float) -> Iterator[np.ndarray]:
     rng = np.random.default_rng(0)
     for top in range(0, height, tile):
@@ -107,17 +118,13 @@ def _peak_rss(model: Path, megapixels: int, threads: int, folder: Path) -> dict[
     command = [sys.executable, "-m", "grainwright.inference", "denoise", str(model), str(source), "-o",
                str(folder / "out"), "--threads", str(threads), "-q", "--overwrite"]
     start = time.perf_counter()
-    process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
-    _, status, usage = os.wait4(process.pid, 0)
+    launched = subprocess.run([sys.executable, "-c", _LAUNCHER, *command], capture_output=True, text=True)
     seconds = time.perf_counter() - start
-    stderr = process.stderr.read().decode(errors="replace")
-    process.stdout.close()
-    process.stderr.close()
-    if os.waitstatus_to_exitcode(status) != 0:
-        raise ConfigError(f"denoise on the generated {megapixels}-MP TIFF failed: {stderr.strip()[-500:]}")
+    if launched.returncode != 0:
+        raise ConfigError(f"denoise on the generated {megapixels}-MP TIFF failed: {launched.stderr.strip()[-500:]}")
     source.unlink()
     (folder / "out" / source.name).unlink()
-    return {"megapixels": edge * edge / 1e6, "edge": edge, "peak_rss_mib": usage.ru_maxrss / 1024,
+    return {"megapixels": edge * edge / 1e6, "edge": edge, "peak_rss_mib": int(launched.stdout.split()[-1]) / 1024,
             "seconds": seconds, "command": " ".join(command[1:])}
 
 
@@ -166,6 +173,7 @@ def run(args: argparse.Namespace) -> int:
                 fp32.tile = tile
                 timings.setdefault(f"tile {tile}", []).append(_timed(_file_path(fp32, source, folder / "out-tile")))
             fp32.tile = default_tile
+        figures["raw_seconds"] = timings
         medians = {key: statistics.median(values) for key, values in timings.items()}
         figures["throughput"] = {key: rate(value) for key, value in medians.items() if not key.startswith("tile")}
         for label in contenders:
