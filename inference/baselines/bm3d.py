@@ -125,16 +125,20 @@ def _select(distances: np.ndarray, group_size: int, threshold: float) -> tuple[n
 
 
 def _forward(groups: np.ndarray, dct2: np.ndarray, haar: np.ndarray) -> np.ndarray:
-    """3-D transform of groups ``(n, k, C, B, B)``: 2-D DCT per block, then 1-D Haar along the group."""
-    spectra = dct2 @ groups @ dct2.T
-    n, k = spectra.shape[:2]
-    return (haar @ spectra.reshape(n, k, -1)).reshape(spectra.shape)
+    """3-D transform of groups ``(n, k, C, B, B)``: 2-D DCT per block, then 1-D Haar along the group.
+
+    ``dct2`` is the separable 2-D DCT as one ``(B^2, B^2)`` matrix acting on row-major blocks,
+    ``kron(D, D)``, so all blocks go through a single matrix product.
+    """
+    n, k = groups.shape[:2]
+    spectra = (groups.reshape(-1, dct2.shape[0]) @ dct2.T).reshape(n, k, -1)
+    return (haar @ spectra).reshape(groups.shape)
 
 
 def _inverse(spectra: np.ndarray, dct2: np.ndarray, haar: np.ndarray) -> np.ndarray:
     n, k = spectra.shape[:2]
-    blocks = (haar.T @ spectra.reshape(n, k, -1)).reshape(spectra.shape)
-    return dct2.T @ blocks @ dct2
+    blocks = haar.T @ spectra.reshape(n, k, -1)
+    return (blocks.reshape(-1, dct2.shape[0]) @ dct2).reshape(spectra.shape)
 
 
 def _filter_groups(
@@ -186,7 +190,7 @@ def _stage(
     span = 2 * radius + 1
     noisy_blocks = sliding_window_view(noisy, (block, block), axis=(0, 1))  # (Y, X, C, B, B)
     basic_blocks = None if basic is None else sliding_window_view(basic, (block, block), axis=(0, 1))
-    dct2 = dct_matrix(block)
+    dct2 = np.kron(dct_matrix(block), dct_matrix(block))
     window = np.outer(np.kaiser(block, kaiser_beta), np.kaiser(block, kaiser_beta)).astype(np.float32)
     within = np.arange(block)
     numerator = np.zeros((channels, height * width))
