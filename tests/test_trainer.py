@@ -20,7 +20,8 @@ from grainwright.models.checkpoint import load_checkpoint
 from grainwright.trainer.run import train_command
 
 TINY = ["model.hyper.depth=4", "model.hyper.width=12", "data.patch_size=32", "data.batch_size=8", "threads=1",
-        "validation.every_steps=10", "validation.patches=16", "logging.progress=false", "logging.tensorboard=false"]
+        "validation.every_steps=10", "validation.patches=16", "logging.progress=false", "logging.tensorboard=false",
+        "model.channels_last=false"]
 SIGMA = 25.0  # 8-bit units
 
 
@@ -96,10 +97,11 @@ def test_same_seed_gives_the_same_weights(tmp_path):
 @pytest.mark.slow
 def test_resume_continues_exactly(tmp_path):
     folder = _noisy_folder(tmp_path / "data")
+    settings = TINY + ["model.channels_last=true"]
     straight = train_command(None, str(folder), scheme="recorrupted", steps=24, out=str(tmp_path / "straight"),
-                             announce=_quiet, assignments=TINY)[1]
+                             announce=_quiet, assignments=settings)[1]
     summary, halted = train_command(None, str(folder), scheme="recorrupted", steps=24, out=str(tmp_path / "halted"),
-                                    announce=_quiet, assignments=TINY, interrupt_at_step=12)
+                                    announce=_quiet, assignments=settings, interrupt_at_step=12)
     assert summary["stopped"] == "interrupted" and load_checkpoint(halted.last)["step"] == 12
     summary, resumed = train_command(None, None, resume=str(halted.root), announce=_quiet)
     assert summary["steps"] == 24

@@ -143,7 +143,8 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
     setup, _, noise = prepare(config, announce=lambda text: None)
     initial = copy.deepcopy(setup.model)
     rng = np.random.default_rng(args.seed)
-    batch = to_tensors(setup.scheme.prepare(setup.train.sample(rng, args.batch_size, args.patch_size), rng))
+    batch = to_tensors(setup.scheme.prepare(setup.train.sample(rng, args.batch_size, args.patch_size), rng),
+                       setup.channels_last)
     loop_rates, bare_rates = [], []
     for round_index in range(rounds):
         setup.model = copy.deepcopy(initial)
@@ -153,6 +154,8 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         loop_rates.append(steps * args.batch_size / (time.perf_counter() - started))
 
         model = copy.deepcopy(initial)
+        if setup.channels_last:
+            model.to(memory_format=torch.channels_last)  # the same layout as the loop's
         optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)
         started = time.perf_counter()
         for _ in range(steps):
@@ -162,7 +165,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         bare_rates.append(steps * args.batch_size / (time.perf_counter() - started))
     loop, bare = statistics.median(loop_rates), statistics.median(bare_rates)
     return {"loop_patches_per_second": loop_rates, "bare_patches_per_second": bare_rates,
-            "ratio": loop / bare, "threads": threads, "steps": steps}
+            "ratio": loop / bare, "threads": threads, "steps": steps, "channels_last": setup.channels_last}
 
 
 def run_bench(args: argparse.Namespace) -> int:

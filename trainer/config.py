@@ -46,6 +46,8 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
         "skip": Key("bool-or-auto", "auto",
                     "Input-to-output skip; `auto` = off for `masked` (required there), on otherwise."),
         "hyper": Key("table", {}, "Architecture hyper-parameters (e.g. `depth`, `width`), checked by the model."),
+        "channels_last": Key("bool-or-auto", "auto", "Channels-last tensor layout; `auto` = whichever runs faster "
+                             "in a short measurement at the start (the choice is recorded in the run's config)."),
     },
     "data": {
         "folder": Key("str", "", "Data folder (set by `--data`; recorded so that `--resume` finds it)."),
