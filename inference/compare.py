@@ -66,6 +66,9 @@ from grainwright.inference.runner import Denoiser
 from grainwright.inference.sure import SureEstimate, sure_mse, sure_mse_stabilized, unclipped_mask
 
 LEARNED_LABEL = "learned (ONNX model as exported)"
+# Regions whose noisy feature-minus-background contrast is under this many standard errors are too faint for
+# their contrast retention (a ratio with that contrast below) to mean much (common practice, no source).
+CLEAR_CONTRAST = 3.0
 NOISE_CHOICES = ("auto", "gaussian", "poisson-gaussian")
 Denoise = Callable[[np.ndarray], np.ndarray]
 
@@ -629,10 +632,14 @@ def _rank(rows: list[dict[str, Any]], specs: list[MethodSpec], ground_truth: boo
     return [{"rank": e.pop("rank"), **e} for e in ordered]
 
 
+def _clear_of_noise(detail: dict[str, Any]) -> bool:
+    """A region whose noisy contrast is at least ``CLEAR_CONTRAST`` standard errors: its retention means something."""
+    return math.isfinite(detail["contrast_retention"]) and detail["noisy_contrast_in_standard_errors"] >= CLEAR_CONTRAST
+
+
 def _add_retention(ranking: list[dict[str, Any]], details: list[dict[str, Any]]) -> None:
     for entry in ranking:
-        values = [d["contrast_retention"] for d in details if d["method"] == entry["method"]
-                  and math.isfinite(d["contrast_retention"])]
+        values = [d["contrast_retention"] for d in details if d["method"] == entry["method"] and _clear_of_noise(d)]
         entry["contrast_retention_mean"] = float(np.mean(values)) if values else None
         entry["contrast_retention_min"] = float(np.min(values)) if values else None
 
@@ -675,7 +682,11 @@ def _findings(ranking: list[dict[str, Any]], rows: list[dict[str, Any]], details
     added = [e["method"] for e in ranking if e["added_structure_images"]]
     findings.append("Added edges absent from the smoothed input: " + (", ".join(added) if added else "none flagged")
                     + ".")
-    finite = [d for d in details if math.isfinite(d["contrast_retention"])]
+    finite = [d for d in details if _clear_of_noise(d)]
+    if len(finite) < len(details):
+        faint = len({(d["image"], d["region"]) for d in details if not _clear_of_noise(d)})
+        findings.append(f"{faint} region(s) have a noisy contrast under {CLEAR_CONTRAST:g} standard errors: their "
+                        "contrast retention is listed but left out of the summaries.")
     if finite:
         worst = min(finite, key=lambda d: d["contrast_retention"])
         findings.append(f"Lowest contrast retention: {worst['method']} at {worst['region']} in {worst['image']} "
@@ -710,8 +721,8 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
         Column("rank", "rank", 0), Column("method", "method", None), Column("kind", "kind", None),
         Column("parameter_choice", "parameter choice", None), *quality, *no_reference,
         Column("sure_rank", "rank by SURE", 0), Column("j_invariant_rank", "rank by J-invariant loss", 0),
-        Column("contrast_retention_mean", "contrast retention (mean)"),
-        Column("contrast_retention_min", "contrast retention (lowest)"),
+        Column("contrast_retention_mean", "contrast retention (mean, clear regions)"),
+        Column("contrast_retention_min", "contrast retention (lowest, clear regions)"),
         Column("added_structure_images", "images with added edges", 0),
         Column("seconds_per_megapixel", "seconds per megapixel", 3),
     ]
@@ -742,6 +753,8 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
         f"J-invariant loss: on a centre crop of {options.tuning_crop} pixels"
         + (", 4 of the 16 pixel grids." if options.quick else ", all 16 pixel grids.")
         + " Lower is better; it equals the true error plus the noise variance on average.",
+        f"Contrast retention summaries use the regions whose noisy contrast is at least {CLEAR_CONTRAST:g} of its "
+        "standard errors (region table, last column); fainter regions are listed but not summarised.",
         "Noise left: MAD noise estimate of the output over that of the input. Residual autocorrelation and "
         "residual-output correlation: near 0 when what was removed looks like noise.",
         "Seconds per megapixel: one run on the whole image on this machine (classical filters single-threaded, "
