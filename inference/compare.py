@@ -554,7 +554,7 @@ def _evaluate(spec: MethodSpec, learned: dict[str, _LearnedMethod], noisy: np.nd
         jinv_loss = j_invariant_loss(denoise, tuning_noisy, passes=options.j_invariant_passes)
     row["j_invariant_loss"] = jinv_loss
     row.update(no_reference_figures(noisy, output))
-    structure = removed_structure(noisy, output)
+    structure = removed_structure(noisy, output, noise.gray_sigma)
     added = added_structure(noisy, output, noise.gray_sigma)
     row["structured_fraction"] = structure["structured_fraction"]
     row["added_structure"] = added["flag"]

@@ -32,6 +32,9 @@ Box = tuple[int, int, int, int]
 CORRELATION_WINDOW = 3.0
 # A pixel counts as structured when its local correlation exceeds four of those spreads.
 STRUCTURED_THRESHOLD = 4.0 / math.sqrt(4.0 * math.pi * CORRELATION_WINDOW**2)
+# Removed content smaller than this fraction of the noise's standard deviation does not count as removed
+# structure, however well it correlates (common practice, no source).
+MIN_REMOVED = 0.25
 
 
 @dataclass(frozen=True)
@@ -309,23 +312,36 @@ def structured_residual_map(noisy: np.ndarray, output: np.ndarray, *, guide_widt
     return np.clip(correlation, -1.0, 1.0).astype(np.float32)
 
 
-def removed_structure(noisy: np.ndarray, output: np.ndarray) -> dict:
+def removed_structure(noisy: np.ndarray, output: np.ndarray, sigma: float) -> dict:
     """Summary of :func:`structured_residual_map` for one method on one image.
 
     The removed noise of a real denoiser is not exactly the noise (it is the noise minus what the method left),
     which shifts the whole map by a method-dependent amount, negative for smoothing filters. The map's median
-    over the image stands for that shift and is taken off, so the summary counts what stands out locally.
+    over the image stands for that shift and is taken off, so the summary counts what stands out locally. The
+    correlation does not see how much was removed, so a pixel counts only where the residual's local standard
+    deviation reaches ``MIN_REMOVED`` times the noise's: a method that changes almost nothing removes nothing.
+
+    Parameters
+    ----------
+    noisy, output : ndarray
+        ``(H, W)`` or ``(H, W, C)``, same units.
+    sigma : float
+        Noise standard deviation of the channel-averaged image.
 
     Returns
     -------
     dict
         ``map``: the correlation map minus its median; ``structured_fraction``: share of pixels above
-        ``STRUCTURED_THRESHOLD`` (four white-noise spreads of the local correlation). The method with the
-        largest ``structured_fraction`` removed the most structure.
+        ``STRUCTURED_THRESHOLD`` (four white-noise spreads of the local correlation) with enough removed. The
+        method with the largest ``structured_fraction`` removed the most structure.
     """
     correlation = structured_residual_map(noisy, output)
     excess = correlation - np.float32(np.median(correlation))
-    return {"map": excess, "structured_fraction": float(np.mean(excess > STRUCTURED_THRESHOLD))}
+    residual = _gray(noisy) - _gray(output)
+    local_mean = ndimage.gaussian_filter(residual, CORRELATION_WINDOW)
+    local_var = ndimage.gaussian_filter(residual * residual, CORRELATION_WINDOW) - local_mean**2
+    enough = local_var >= (MIN_REMOVED * sigma) ** 2
+    return {"map": excess, "structured_fraction": float(np.mean((excess > STRUCTURED_THRESHOLD) & enough))}
 
 
 def added_structure(

@@ -76,9 +76,9 @@ def test_the_clean_image_keeps_contrast_within_noise(scene):
 
 def test_structured_residual_map_lights_up_at_the_line_for_the_blur_only(scene):
     clean, noisy = scene
-    blurred = removed_structure(noisy, ndimage.gaussian_filter(noisy, 3.0))
-    oracle = removed_structure(noisy, clean)  # removes exactly the noise
-    identity = removed_structure(noisy, noisy)
+    blurred = removed_structure(noisy, ndimage.gaussian_filter(noisy, 3.0), SIGMA)
+    oracle = removed_structure(noisy, clean, SIGMA)  # removes exactly the noise
+    identity = removed_structure(noisy, noisy, SIGMA)
     line_zone = (slice(45, 85), slice(62, 66))
     flat_zone = (slice(0, 30), slice(90, 128))
     assert blurred["map"][line_zone].mean() > STRUCTURED_THRESHOLD
@@ -90,9 +90,15 @@ def test_structured_residual_map_lights_up_at_the_line_for_the_blur_only(scene):
 
 def test_removed_structure_ranks_blur_widths_on_a_natural_image():
     clean = util.img_as_float(data.camera())[100:228, 100:228]
-    noisy = clean + 20 / 255 * np.random.default_rng(1).standard_normal(clean.shape)
-    fractions = [removed_structure(noisy, ndimage.gaussian_filter(noisy, s))["structured_fraction"] for s in (1, 3)]
+    sigma = 20 / 255
+    noisy = clean + sigma * np.random.default_rng(1).standard_normal(clean.shape)
+    fractions = [removed_structure(noisy, ndimage.gaussian_filter(noisy, s), sigma)["structured_fraction"]
+                 for s in (1, 3)]
     assert fractions[1] > fractions[0]
+    # A method that takes off a twentieth of the heavy blur's residual follows the image just as well, but
+    # removes next to nothing: it does not count.
+    slight = noisy - 0.05 * (noisy - ndimage.gaussian_filter(noisy, 3))
+    assert removed_structure(noisy, slight, sigma)["structured_fraction"] == 0.0
     assert structured_residual_map(noisy, noisy).shape == clean.shape
 
 
