@@ -181,7 +181,7 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
         A loaded ``checkpoints/last.pt`` payload: weights, optimiser, schedule, random-generator states and step
         are restored and training continues exactly.
     interrupt_at_step : int, optional
-        Stop at this step as if interrupted (saving ``last.pt``); used by tests and time-boxed benchmarks.
+        Stop at this step as if interrupted (saving ``last.pt``); used by tests.
     """
     config = setup.config
     model, scheme, optim = setup.model, setup.scheme, config["optim"]

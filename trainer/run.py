@@ -114,7 +114,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     noise, noise_path = _noise_description(config, layout.root)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        images, sources = read_layout(layout, data_cfg["patch_size"])
+        images, _ = read_layout(layout, data_cfg["patch_size"])
     for warning in caught:
         announce(f"warning: {warning.message}")
     roles = layout.roles
@@ -297,7 +297,8 @@ def summary_line(summary: dict[str, Any], run: RunFolder) -> str:
         figure = "no validation"
     return (f"trained {summary['scheme']} for {summary['steps']} steps in {summary['minutes']:.1f} min "
             f"({summary['patches_per_second']:.0f} patches/s, {summary['gflops_per_second']:.1f} GFLOP/s); {figure}; "
-            f"stopped: {summary['stopped']}; run folder {run.root}")
+            f"stopped: {summary['stopped']}; run folder {run.root}"
+            + (f" (continue with: grainwright train --resume {run.root})" if summary["stopped"] == "interrupted" else ""))
 
 
 def train_command(config_path: str | None, data: str | None, *, scheme: str | None = None,
