@@ -109,6 +109,10 @@ def test_clear_errors():
         denoise("tv", bad, 0.1)
     with pytest.raises(InputError, match="float"):
         denoise("tv", (image * 255).astype(np.uint8), 0.1)
+    with pytest.raises(ConfigError, match="soft or hard"):
+        denoise("wavelet", image, 0.1, mode="medium")
+    with pytest.raises(ConfigError, match="opponent or per-channel"):
+        denoise("bm3d", image, 0.1, colour="lab")
 
 
 def test_resolve_params_overlays_defaults():

@@ -38,6 +38,7 @@ from numpy.lib.stride_tricks import sliding_window_view
 from scipy.fft import dct
 
 from grainwright.inference.baselines.base import Baseline, Parameter
+from grainwright.inference.errors import ConfigError
 
 # Opponent colour transform of the paper's colour extension (rows: luminance, two opponent axes); from memory.
 OPPONENT = np.array([[1 / 3, 1 / 3, 1 / 3], [1 / 2, 0.0, -1 / 2], [1 / 4, -1 / 2, 1 / 4]])
@@ -283,7 +284,7 @@ def bm3d(
         "per-channel" filters each channel on its own. Other channel counts are always per channel.
     """
     if colour not in ("opponent", "per-channel"):
-        raise ValueError(f"colour must be 'opponent' or 'per-channel', not {colour!r}")
+        raise ConfigError(f"bm3d: colour must be opponent or per-channel, not {colour!r}")
     params = dict(
         threshold=threshold, search_radius=int(search_radius), step=int(step), group_hard=int(group_hard),
         group_wiener=int(group_wiener), match_hard=match_hard, match_wiener=match_wiener, block=int(block),

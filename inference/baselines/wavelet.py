@@ -10,6 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from grainwright.inference.baselines.base import Baseline, Parameter
+from grainwright.inference.errors import ConfigError
 
 RULES = {"bayes": "BayesShrink", "visu": "VisuShrink"}
 
@@ -36,7 +37,9 @@ def wavelet_shrinkage(
         detail (VisuShrink's universal threshold is known to over-smooth images).
     """
     if rule not in RULES:
-        raise ValueError(f"rule must be one of {sorted(RULES)}, not {rule!r}")
+        raise ConfigError(f"wavelet: rule must be one of {', '.join(sorted(RULES))}, not {rule!r}")
+    if mode not in ("soft", "hard"):
+        raise ConfigError(f"wavelet: mode must be soft or hard, not {mode!r}")
     # Imported on use: skimage.restoration imports scipy.stats, which is slow to load and fails under
     # tests/test_package.py's torch block (SciPy's array-API check reads sys.modules['torch']).
     from skimage.restoration import denoise_wavelet
@@ -50,8 +53,7 @@ def wavelet_shrinkage(
         channel_axis=-1,
         rescale_sigma=False,
     )
-    # Odd sizes come back padded by the transform in some PyWavelets versions; crop to the input.
-    return out[: image.shape[0], : image.shape[1]].reshape(image.shape).astype(np.float32)
+    return out.reshape(image.shape).astype(np.float32)
 
 
 BASELINES = (
