@@ -730,7 +730,8 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
         Column("image", "image", None), Column("method", "method", None), Column("kind", "kind", None),
         Column("parameter_choice", "parameter choice", None), Column("parameters", "parameters", None), *quality,
         *no_reference, Column("sure_standard_error", "SURE standard error (dB)", 2),
-        Column("sure_domain", "SURE domain", None), Column("added_structure", "added edges", None),
+        Column("sure_domain", "SURE domain", None), Column("sure_pixels_scored", "share of pixels SURE scored", 2),
+        Column("added_structure", "added edges", None),
         Column("added_edge_pixels", "added edge pixels", 0), Column("seconds_per_megapixel", "seconds per megapixel", 3),
     ]
     detail_columns = [

@@ -218,3 +218,14 @@ def test_poisson_gaussian_data_is_scored_in_the_anscombe_domain(tmp_path):
                 compared += 1
                 assert (a["psnr"] > b["psnr"]) == (a["sure_psnr"] > b["sure_psnr"]), (a["method"], b["method"])
     assert compared >= 1
+
+
+def test_cli_prints_the_ranking_and_writes_the_report(dataset, tmp_path, capsys):
+    out = tmp_path / "report"
+    code = main(["compare", "--noisy", str(dataset / "noisy"), "--methods", "mean,gaussian", "-o", str(out),
+                 "--quick", "--threads", "1"])
+    printed = capsys.readouterr().out
+    assert code == 0
+    assert "SURE estimated PSNR" in printed and "calibrated without ground truth" in printed
+    assert f"report: {out / 'index.html'}" in printed
+    assert (out / "results.csv").is_file() and (out / "results.json").is_file()

@@ -51,7 +51,8 @@ def run(args: argparse.Namespace) -> int:
     key, label = ("psnr", "PSNR") if result.ground_truth else ("sure_psnr", "SURE estimated PSNR")
     print(f"{'rank':>4}  {'method':<24} {label:>20}  {'s/MP':>8}  parameter choice")
     for entry in result.ranking:
-        print(f"{entry['rank']:>4}  {entry['method']:<24} {entry[key]:>17.2f} dB  "
+        quality = "unusable" if entry[key] is None else f"{entry[key]:.2f} dB"
+        print(f"{entry['rank']:>4}  {entry['method']:<24} {quality:>20}  "
               f"{entry['seconds_per_megapixel']:>8.3f}  {entry['parameter_choice']}")
     for finding in result.findings:
         print(f"- {finding}")
