@@ -36,7 +36,9 @@ PATCH_EDGE = 128
 CALIBRATION_PATCHES = 32
 HELD_OUT_PATCHES = 16
 SPEED_EDGE = 512
-QUANTIZED_OPS = ["Conv", "ConvTranspose", "Relu"]
+# Convolutions, with the ReLUs folded into them and the data movement between them (pooling, pixel shuffle,
+# concatenation), so that the U-Net's feature maps stay 8-bit from one convolution to the next.
+QUANTIZED_OPS = ["Conv", "Relu", "MaxPool", "DepthToSpace", "Concat"]
 
 
 class _Patches(CalibrationDataReader):
@@ -74,7 +76,7 @@ def split_frames(images: list[CalibrationImage]) -> tuple[list[np.ndarray], list
 
 
 def _body_convolutions(proto: onnx.ModelProto) -> list[str]:
-    return [node.name for node in proto.graph.node if node.op_type in ("Conv", "ConvTranspose")]
+    return [node.name for node in proto.graph.node if node.op_type == "Conv"]
 
 
 def quantize_model(

@@ -1,8 +1,10 @@
 """``unet-small``: a 2- or 3-level U-Net with residual output, for a large receptive field at low cost.
 
 Each level has two 3x3 conv + ReLU; the encoder halves the resolution with 2x2 max pooling and doubles the
-features, the decoder doubles it back with a 2x2 stride-2 transposed convolution and concatenates the encoder's
-features of the same level. A final 1x1 convolution maps back to ``C`` channels; with ``skip=True`` the output is
+features, the decoder doubles it back with a 2x2 stride-2 up-convolution and concatenates the encoder's features
+of the same level. The up-convolution is written as a 1x1 convolution to four times the features followed by a
+pixel shuffle (the same linear map as a 2x2 stride-2 transposed convolution), because ONNX Runtime runs that
+pair in INT8 while it leaves transposed convolutions in float. A final 1x1 convolution maps back to ``C`` channels; with ``skip=True`` the output is
 ``input - prediction``. Height and width must be multiples of ``2**levels`` (the ``alignment``): the network
 does not pad inside, the runtime pads the image.
 
@@ -61,7 +63,7 @@ class UNetSmallDenoiser(Denoiser):
         self.ups = nn.ModuleList()
         self.decoders = nn.ModuleList()
         for level in reversed(range(self.hyper["levels"])):
-            self.ups.append(nn.ConvTranspose2d(widths[level + 1], widths[level], 2, stride=2))
+            self.ups.append(nn.Sequential(nn.Conv2d(widths[level + 1], 4 * widths[level], 1), nn.PixelShuffle(2)))
             self.decoders.append(_double_conv(2 * widths[level], widths[level]))
         self.head = nn.Conv2d(widths[0], channels, 1)
         self._widths = widths
@@ -91,7 +93,7 @@ class UNetSmallDenoiser(Denoiser):
             total += 9 * (previous * widths[level] + widths[level] ** 2) / 4**level
             previous = widths[level]
         total += 9 * (widths[-2] * widths[-1] + widths[-1] ** 2) / 4**levels
-        for level in range(levels):  # decoder: each output pixel of a 2x2 stride-2 transposed conv sees one tap
+        for level in range(levels):  # decoder: the 1x1 up-convolution costs w_in * 4 w_out per pixel of level + 1
             total += (widths[level + 1] * widths[level] + 9 * (2 * widths[level] * widths[level] + widths[level] ** 2)) / 4**level
         total += widths[0] * self.channels
         return total
@@ -111,6 +113,6 @@ class UNetSmallDenoiser(Denoiser):
         if level == self.hyper["levels"]:
             return low - 2, high + 2  # two 3x3 convolutions
         low, high = low - 2, high + 2  # decoder convolutions
-        deep_low, deep_high = self._input_interval(level + 1, low // 2, high // 2)  # transposed conv, then deeper
+        deep_low, deep_high = self._input_interval(level + 1, low // 2, high // 2)  # pixel shuffle, then deeper
         low, high = min(low, 2 * deep_low), max(high, 2 * deep_high + 1)  # max pooling reads 2x2 cells
         return low - 2, high + 2  # encoder convolutions
