@@ -1,0 +1,374 @@
+"""The recorded quality search: which model and training regime a fixed CPU budget buys, without ground truth.
+
+Every trial trains on noisy images only (scikit-image sample images, ``TRAIN_IMAGES`` of
+:mod:`grainwright.trainer.bench`) with ``grainwright train``, is exported to ONNX and run through the torch-free
+runtime on held-out images (``TEST_IMAGES``, centre crops of ``TEST_EDGE`` pixels) with a flip/rotation
+self-ensemble of 1, 2, 4 and 8 members. The opponent is, per held-out image, the best of TV, NLM, wavelet
+shrinkage and our BM3D (``grainwright.inference.baselines``), each tuned on that image's ground truth.
+
+Budget. "10 minutes on 2 cores" is 1200 CPU-seconds. The machine this ran on was shared, so wall-clock minutes
+would reward whoever ran at a quiet moment; each trial instead gets a number of optimiser steps worth
+``cpu_seconds`` of CPU time, from a short probe of bare forward+backward+Adam steps of that model (CPU time
+counts only this process's threads). Contention still inflates CPU time per step a little (shared caches), which
+errs towards fewer steps. The CPU time the run really used is recorded beside every figure.
+
+Search order (``--stages``, run in the order given). Stage ``architecture`` compares models at a fixed patch
+regime; stage ``regime`` varies patch size, batch size and learning rate around the best architecture (by mean
+PSNR without ensemble; the best of each stage and case is then also scored with 2, 4 and 8 members); stage
+``noise`` runs the Poisson-Gaussian (Anscombe domain versus a noise-map model) and speckle cases with the best
+Gaussian configuration so far; stage ``long`` retrains that configuration with a larger budget.
+Results are written after every trial, so a stopped search resumes where it left off.
+"""
+from __future__ import annotations
+
+import argparse
+import copy
+import json
+import os
+import shutil
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from grainwright.inference.errors import ConfigError
+
+SEARCH_BASELINES = ("tv", "nlm", "wavelet", "bm3d")
+# BM3D costs a minute per run on the shared machine: its full ground-truth grid for the Gaussian case, the
+# published hard threshold 2.7 sigma (Dabov et al. 2007) and the defaults for the others.
+SHORT_GRIDS = {"bm3d": [{"threshold": 2.7}]}
+TEST_EDGE = 256
+BUDGET_CPU_SECONDS = 1200.0  # 10 minutes on 2 cores
+ENSEMBLES = (1, 2, 4, 8)  # self-ensemble sizes, members in the runtime's order (runner.ENSEMBLE_TRANSFORMS)
+PROBE_STEPS = 4  # timed steps of the CPU-time probe
+
+# Trials as plain data: architecture and hyper-parameters, patch regime, and any other config keys (``--set``).
+BASE = {"case": "gaussian", "scheme": "recorrupted", "model": "residual", "hyper": {"depth": 10, "width": 48},
+        "patch_size": 48, "batch_size": 16, "set": {}}
+ARCHITECTURES: dict[str, dict[str, Any]] = {
+    "residual 10x48": {},
+    "residual 8x32": {"hyper": {"depth": 8, "width": 32}},
+    "residual 17x32": {"hyper": {"depth": 17, "width": 32}},
+    "residual 6x64": {"hyper": {"depth": 6, "width": 64}},
+    "unet-small 2 levels x24": {"model": "unet-small", "hyper": {"levels": 2, "width": 24}},
+    "unet-small 3 levels x24": {"model": "unet-small", "hyper": {"levels": 3, "width": 24}},
+}
+REGIMES: dict[str, dict[str, Any]] = {
+    "patch 64, batch 8": {"patch_size": 64, "batch_size": 8},
+    "patch 32, batch 32": {"patch_size": 32, "batch_size": 32},
+    "lr 2e-3": {"set": {"optim.lr": 2e-3}},
+}
+
+
+def trial(name: str, **changes: Any) -> dict[str, Any]:
+    """A trial: ``BASE`` with ``changes`` (``hyper`` and ``set`` replace, other keys override)."""
+    spec = copy.deepcopy(BASE)
+    spec.update(copy.deepcopy(changes))
+    spec["name"] = name
+    return spec
+
+
+def architecture_trials() -> list[dict[str, Any]]:
+    return [trial(name, **changes) for name, changes in ARCHITECTURES.items()]
+
+
+def regime_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
+    base = {key: best[key] for key in ("model", "hyper", "patch_size", "batch_size", "set")}
+    return [trial(f"{best['name']}, {name}", **{**base, **changes}) for name, changes in REGIMES.items()]
+
+
+def noise_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
+    """Poisson-Gaussian: Anscombe domain against a noise-map model; speckle: neighbor2neighbor."""
+    residual = best["hyper"] if best["model"] == "residual" else BASE["hyper"]
+    regime = {"patch_size": best["patch_size"], "batch_size": best["batch_size"], "set": dict(best["set"])}
+    return [
+        trial("Poisson-Gaussian: recorrupted, Anscombe domain", case="poisson-gaussian", model="residual",
+              hyper=residual, **regime),
+        trial("Poisson-Gaussian: neighbor2neighbor, Anscombe domain", case="poisson-gaussian",
+              scheme="neighbor2neighbor", model="residual", hyper=residual, **regime),
+        trial("Poisson-Gaussian: neighbor2neighbor, noise-map model, linear domain", case="poisson-gaussian",
+              scheme="neighbor2neighbor", model="residual-noisemap", hyper=residual,
+              **{**regime, "set": {**regime["set"], "data.transform": "none"}}),
+        trial("speckle: neighbor2neighbor, linear domain", case="speckle", scheme="neighbor2neighbor",
+              model="residual", hyper=residual, **regime),
+    ]
+
+
+# -- pieces ---------------------------------------------------------------------------------------------------
+
+
+def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> float:
+    """CPU seconds of one bare forward+backward+Adam step of the trial's model on random patches (median of
+    ``PROBE_STEPS`` after one warm-up step)."""
+    import torch
+
+    from grainwright.models.registry import build_model, hyper_defaults
+    from grainwright.trainer.schemes.registry import scheme_class
+
+    torch.set_num_threads(threads)
+    hyper = {**hyper_defaults(spec["model"]), **spec["hyper"]}
+    model = build_model(spec["model"], 1, **hyper)
+    passes = scheme_class(spec["scheme"]).forward_passes_per_pixel / 3.0  # relative to forward + backward
+    size = spec["patch_size"]
+    batch = torch.rand(spec["batch_size"], 1, size, size)
+    level = torch.full((spec["batch_size"], 1, size, size), 0.1)
+    optimizer = torch.optim.Adam(model.parameters(), lr=1e-4)
+    times = []
+    for index in range(PROBE_STEPS + 1):
+        start = time.process_time()
+        optimizer.zero_grad(set_to_none=True)
+        output = model(batch, level) if model.takes_noise_map else model(batch)
+        torch.mean((output - batch) ** 2).backward()
+        optimizer.step()
+        if index:
+            times.append(time.process_time() - start)
+    return float(np.median(times)) * passes
+
+
+def held_out(made: dict[str, Any]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Centre crops (``TEST_EDGE`` pixels) of the held-out clean and noisy images, ``(H, W, 1)`` float32."""
+    out = {}
+    for name, clean in made["clean"].items():
+        top, left = (clean.shape[0] - TEST_EDGE) // 2, (clean.shape[1] - TEST_EDGE) // 2
+        crop = (slice(top, top + TEST_EDGE), slice(left, left + TEST_EDGE))
+        out[name] = (clean[crop][..., None].copy(), made["noisy"][name][crop][..., None].copy())
+    return out
+
+
+def opponent(case: str, images: dict[str, tuple[np.ndarray, np.ndarray]]) -> dict[str, dict[str, Any]]:
+    """PSNR (dB, peak 1) of each classical baseline tuned on each image's ground truth, and its parameters."""
+    from grainwright.inference.calibration import tune_on_ground_truth
+    from grainwright.trainer.bench import CASES
+
+    noise = CASES[case]["noise"]
+    table: dict[str, dict[str, Any]] = {}
+    for method in SEARCH_BASELINES:
+        started = time.process_time()
+        table[method] = {"psnr": {}, "params": {}}
+        for name, (clean, noisy) in images.items():
+            grid = SHORT_GRIDS.get(method) if case != "gaussian" else None
+            tuning = tune_on_ground_truth(method, noisy, clean, noise, peak=1.0, grid=grid)
+            table[method]["psnr"][name] = float(tuning.score)
+            table[method]["params"][name] = tuning.params
+        table[method]["cpu_seconds"] = time.process_time() - started
+        print(f"   {method} tuned on ground truth: {np.mean(list(table[method]['psnr'].values())):.2f} dB",
+              flush=True)
+    table["best per image"] = {"psnr": {name: max(table[m]["psnr"][name] for m in SEARCH_BASELINES)
+                                        for name in images}}
+    return table
+
+
+def _member(image: np.ndarray, member: tuple[bool, bool, bool], inverse: bool = False) -> np.ndarray:
+    """Apply (or undo) one self-ensemble member (transpose, flip rows, flip columns) to an ``(H, W, C)`` image,
+    in the runtime's order: flips then transpose, undone as transpose then flips."""
+    transpose, flip_rows, flip_cols = member
+    if inverse and transpose:
+        image = image.transpose(1, 0, 2)
+    if flip_rows:
+        image = image[::-1]
+    if flip_cols:
+        image = image[:, ::-1]
+    if not inverse and transpose:
+        image = image.transpose(1, 0, 2)
+    return np.ascontiguousarray(image)
+
+
+def runtime_denoiser(onnx_path: Path, threads: int) -> Any:
+    """The runtime's denoiser for an exported model; noise-map models get the per-pixel map of their training
+    noise model."""
+    from grainwright.inference.modelinfo import read_model_metadata
+    from grainwright.inference.runner import Denoiser
+
+    takes_map = bool(read_model_metadata(onnx_path).get("takes_noise_map"))
+    return Denoiser(onnx_path, threads=threads, noise_sigma="model" if takes_map else "estimate")
+
+
+def evaluate(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
+             ensembles: tuple[int, ...] = ENSEMBLES) -> dict[str, Any]:
+    """PSNR (dB, peak 1) of a runtime ``Denoiser`` (ensemble 1) with each self-ensemble size in ``ensembles``:
+    one pass per member, partial averages, the members in the runtime's order; and the seconds each size costs."""
+    from grainwright.inference.metrics import psnr
+    from grainwright.inference.runner import ENSEMBLE_TRANSFORMS
+
+    scores: dict[int, dict[str, float]] = {size: {} for size in ensembles}
+    seconds = {size: 0.0 for size in ensembles}
+    for name, (clean, noisy) in images.items():
+        total, elapsed = None, 0.0
+        for count, member in enumerate(ENSEMBLE_TRANSFORMS[: max(ensembles)], start=1):
+            started = time.perf_counter()
+            output = _member(denoiser.run(_member(noisy, member), as_float=True), member, inverse=True)
+            elapsed += time.perf_counter() - started
+            total = output if total is None else total + output
+            if count in ensembles:
+                scores[count][name] = float(psnr(clean, total / count, peak=1.0))
+                seconds[count] += elapsed
+    return {"psnr": {str(size): row for size, row in scores.items()},
+            "mean": {str(size): float(np.mean(list(row.values()))) for size, row in scores.items()},
+            "seconds": {str(size): value for size, value in seconds.items()}}
+
+
+def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, Any], cpu_seconds: float,
+              threads: int, seed: int) -> dict[str, Any]:
+    """Train one trial for ``cpu_seconds`` worth of steps, export it, evaluate it; returns its record."""
+    from grainwright.models.export import export_checkpoint
+    from grainwright.trainer.run import train_command
+
+    per_step = cpu_seconds_per_step(spec, threads)
+    steps = max(20, int(cpu_seconds / per_step))
+    settings = [f"model.name=\"{spec['model']}\"", f"data.patch_size={spec['patch_size']}",
+                f"data.batch_size={spec['batch_size']}", f"threads={threads}", f"seed={seed}",
+                f"validation.every_steps={max(10, steps // 8)}", "validation.patches=32", "validation.patience=0",
+                "logging.progress=false", "logging.tensorboard=false", "checkpoint.every_minutes=5"]
+    settings += [f"model.hyper.{key}={json.dumps(value)}" for key, value in spec["hyper"].items()]
+    settings += [f"{key}={json.dumps(value)}" for key, value in spec["set"].items()]
+    slug = "".join(c if c.isalnum() else "-" for c in spec["name"]).strip("-")
+    out = work / "runs" / slug
+    shutil.rmtree(out, ignore_errors=True)
+    started, wall = time.process_time(), time.perf_counter()
+    summary, _ = train_command(None, str(folder), scheme=spec["scheme"], steps=steps, out=str(out),
+                               assignments=settings, announce=lambda text: print(f"    {text}", flush=True))
+    used, wall = time.process_time() - started, time.perf_counter() - wall
+    onnx_path = out / "model.onnx"
+    export_checkpoint(out, onnx_path, overwrite=True, threads=threads)
+    scores = evaluate(runtime_denoiser(onnx_path, threads), images, ensembles=(1,))
+    return {"spec": spec, "onnx": str(onnx_path), "steps": steps, "probe_cpu_seconds_per_step": per_step,
+            "train_cpu_seconds": used,
+            "train_wall_seconds": wall, "macs_per_pixel": summary["macs_per_pixel"],
+            "parameters": summary["parameters"], "transform": summary.get("transform"), **scores}
+
+
+# -- the search -----------------------------------------------------------------------------------------------
+
+
+def _save(path: Path, results: dict[str, Any]) -> None:
+    temporary = path.with_name(f".{path.name}.tmp")
+    temporary.write_text(json.dumps(results, indent=1, default=float) + "\n", encoding="utf-8")
+    os.replace(temporary, path)
+
+
+def _best(results: dict[str, Any], names: list[str]) -> str:
+    """The name of the trial with the highest mean PSNR without ensemble among ``names``."""
+    done = [name for name in names if name in results["trials"]]
+    return max(done, key=lambda name: results["trials"][name]["mean"]["1"])
+
+
+def run_search(args: argparse.Namespace) -> int:
+    """Run (or resume) the search; results go to ``args.json`` after every trial.
+
+    Every trial is scored without ensemble; the best of each stage and case is then also scored with 2, 4 and
+    8 ensemble members (the partial averages of one set of 8 passes).
+    """
+    from grainwright.trainer.bench import make_folders
+
+    work = Path(args.work)
+    work.mkdir(parents=True, exist_ok=True)
+    path = Path(args.json)
+    results: dict[str, Any] = json.loads(path.read_text()) if path.is_file() else {}
+    results.setdefault("trials", {})
+    results.setdefault("opponents", {})
+    results["settings"] = {"cpu_seconds": args.cpu_seconds, "long_cpu_seconds": args.long_cpu_seconds,
+                           "threads": args.threads, "seed": args.seed, "test_edge": TEST_EDGE,
+                           "budget_cpu_seconds": BUDGET_CPU_SECONDS}
+    stages = [stage.strip() for stage in args.stages.split(",") if stage.strip()]
+    cases: dict[str, Any] = {}
+
+    def case_data(case: str) -> tuple[Path, dict[str, Any]]:
+        if case not in cases:
+            made = make_folders(work, case, args.seed)
+            cases[case] = (made["root"] / "noisy-only", held_out(made))
+            if case not in results["opponents"]:
+                print(f"== opponents, {case}", flush=True)
+                results["opponents"][case] = opponent(case, cases[case][1])
+                _save(path, results)
+        return cases[case]
+
+    def run_stage(specs: list[dict[str, Any]], stage: str, cpu_seconds: float, suffix: str = "") -> list[str]:
+        names = [spec["name"] + suffix for spec in specs]
+        for spec, key in zip(specs, names):
+            if key in results["trials"]:
+                continue
+            print(f"-- [{stage}] {key}", flush=True)
+            folder, images = case_data(spec["case"])
+            record = run_trial(spec, folder, work, images, cpu_seconds, args.threads, args.seed)
+            record["stage"] = stage
+            results["trials"][key] = record
+            _save(path, results)
+            print(f"   {key}: {record['mean']['1']:.2f} dB; {record['steps']} steps, "
+                  f"{record['train_cpu_seconds']:.0f} CPU-s", flush=True)
+        for case in sorted({spec["case"] for spec in specs}):
+            best = _best(results, [key for spec, key in zip(specs, names) if spec["case"] == case])
+            record = results["trials"][best]
+            if "8" not in record["mean"]:
+                record.update(evaluate(runtime_denoiser(Path(record["onnx"]), args.threads), case_data(case)[1]))
+                _save(path, results)
+                print(f"   ensembles of {best}: " + ", ".join(f"x{size} {record['mean'][str(size)]:.2f}"
+                                                          for size in ENSEMBLES) + " dB", flush=True)
+        return names
+
+    def winner() -> dict[str, Any]:
+        gaussian = [key for key, record in results["trials"].items()
+                    if record["spec"]["case"] == "gaussian" and record["stage"] != "long"]
+        return results["trials"][_best(results, gaussian)]["spec"]
+
+    for stage in stages:  # in the order given, each building on what is done so far
+        if stage == "architecture":
+            run_stage(architecture_trials(), stage, args.cpu_seconds)
+        elif stage == "regime":
+            architecture = _best(results, [spec["name"] for spec in architecture_trials()])
+            run_stage(regime_trials(results["trials"][architecture]["spec"]), stage, args.cpu_seconds)
+        elif stage == "noise":
+            run_stage(noise_trials(winner()), stage, args.cpu_seconds)
+        elif stage == "long":
+            run_stage([winner()], stage, args.long_cpu_seconds, suffix=f", {args.long_cpu_seconds:.0f} CPU-s")
+        else:
+            raise ConfigError(f"--stages: unknown stage '{stage}' (architecture, regime, noise, long)")
+    results["winner"] = winner()
+    _save(path, results)
+    print(render_markdown(results))
+    return 0
+
+
+def render_markdown(results: dict[str, Any]) -> str:
+    """Every trial and its PSNR (dB, mean over the held-out images) with each ensemble size, and the opponents."""
+    lines = []
+    for case, table in results["opponents"].items():
+        best = np.mean(list(table["best per image"]["psnr"].values()))
+        parts = ", ".join(f"{m} {np.mean(list(table[m]['psnr'].values())):.2f}" for m in SEARCH_BASELINES)
+        lines.append(f"- {case}: per-image best {best:.2f} dB ({parts}; each tuned on ground truth)")
+    lines += ["", "| Stage | Trial | Case | MACs/px | Steps | Train CPU-s | x1 | x2 | x4 | x8 "
+              "| vs best classical (largest x) |",
+              "|---|---|---|---|---|---|---|---|---|---|---|"]
+    for name, record in results["trials"].items():
+        case = record["spec"]["case"]
+        opponent_mean = np.mean(list(results["opponents"][case]["best per image"]["psnr"].values()))
+        means = record["mean"]
+        cells = [f"{means[str(size)]:.2f}" if str(size) in means else "" for size in ENSEMBLES]
+        top = means[str(max(int(size) for size in means))]
+        lines.append(f"| {record['stage']} | {name} | {case} | {record['macs_per_pixel']:.0f} | {record['steps']} | "
+                     f"{record['train_cpu_seconds']:.0f} | " + " | ".join(cells) + f" | {top - opponent_mean:+.2f} |")
+    return "\n".join(lines) + "\n"
+
+
+def add_search_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--work", default="sweep-work", metavar="DIR", help="generated data and run folders")
+    parser.add_argument("--json", default="sweep.json", metavar="FILE",
+                        help="results file (read first: finished trials are skipped)")
+    parser.add_argument("--stages", default="architecture,regime,noise,long", metavar="LIST",
+                        help="comma-separated stages to run")
+    parser.add_argument("--cpu-seconds", type=float, default=120.0, metavar="S",
+                        help="CPU-seconds of training per trial (default 120; the full budget is 1200)")
+    parser.add_argument("--long-cpu-seconds", type=float, default=600.0, metavar="S",
+                        help="CPU-seconds for the winner's longer run (default 600)")
+    parser.add_argument("--threads", type=int, default=2, metavar="N", help="torch and ONNX Runtime threads")
+    parser.add_argument("--seed", type=int, default=0)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description="recorded quality search")
+    add_search_arguments(parser)
+    return run_search(parser.parse_args())
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
