@@ -145,10 +145,20 @@ def parity_difference(session: ort.InferenceSession, model: Denoiser, normalizat
 
 def typical_sigma_native(payload: dict[str, Any], normalization: Normalization) -> float:
     """Noise level for parity runs and calibration of noise-map models: the training level, else 2% of range."""
-    training = payload.get("training_noise") or {}
+    training = training_noise(payload, normalization) or {}
     if training.get("sigma_native"):
         return float(training["sigma_native"])
     return 0.02 * normalization.full_range
+
+
+def training_noise(payload: dict[str, Any], normalization: Normalization) -> dict[str, Any] | None:
+    """The noise level seen in training, native units: the trainer's record, else from a Gaussian noise model."""
+    if payload.get("training_noise"):
+        return dict(payload["training_noise"])
+    noise = payload.get("noise") or {}
+    if noise.get("kind") == "gaussian" and noise.get("sigma") is not None:
+        return {"sigma_native": float(noise["sigma"]) * normalization.full_range, "source": "noise model"}
+    return None
 
 
 def tiling_rule(receptive_field: int, alignment: int, margin: int) -> str:
@@ -193,7 +203,7 @@ def build_metadata(payload: dict[str, Any], model: Denoiser, normalization: Norm
         "outputs": {"denoised": "float32 N x C x H x W, native values, not clipped or rounded"},
         "normalization": normalization.to_dict(),
         "noise": payload.get("noise"),
-        "training_noise": payload.get("training_noise"),
+        "training_noise": training_noise(payload, normalization),
         "scheme": payload.get("scheme"),
         "data_fingerprint": payload.get("data_fingerprint"),
         "training_summary": payload.get("training_summary"),

@@ -214,3 +214,11 @@ def test_cli_export_then_info(tmp_path, capsys):
     printed = capsys.readouterr().out
     assert "residual-noisemap" in printed and "noise_sigma" in printed and "receptive field   7 px" in printed
     assert main(["export", str(source), "-o", str(output)]) == 2  # exists, no --overwrite
+
+
+def test_training_noise_level_falls_back_to_a_gaussian_noise_model(tmp_path):
+    payload = new_checkpoint("residual", 1, TWELVE_BIT, hyper=TINY["residual"], noise={"kind": "gaussian", "sigma": 0.01})
+    source = save_checkpoint(tmp_path / "gaussian.pt", payload)
+    metadata = export_checkpoint(source, tmp_path / "model.onnx").metadata
+    assert metadata["training_noise"]["sigma_native"] == pytest.approx(40.95)
+    assert metadata["noise"] == {"kind": "gaussian", "sigma": 0.01}
