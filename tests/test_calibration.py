@@ -130,3 +130,12 @@ def test_calibration_runs_through_the_anscombe_domain():
     tuning = calibrate("gaussian", noisy, noise, passes=4)
     assert tuning.params["width"] in (0.5, 1.0, 1.5, 2.0)
     assert all(np.isfinite(score) for _, score in tuning.trials)
+
+
+def test_bm3d_calibrates_on_a_small_crop():
+    # The costliest baseline through the whole J-invariant path: grid of thresholds plus the defaults.
+    _, noisy = _pair(40, seed=6)
+    tuning = calibrate("bm3d", noisy, SIGMA, passes=2)
+    assert tuning.params["threshold"] in (2.2, 2.7, 3.2)
+    assert len(tuning.trials) == 3  # the default, 2.7, is already in the grid
+    assert tuning.score == min(score for _, score in tuning.trials)
