@@ -69,6 +69,8 @@ LEARNED_LABEL = "learned (ONNX model as exported)"
 # Regions whose noisy feature-minus-background contrast is under this many standard errors are too faint for
 # their contrast retention (a ratio with that contrast below) to mean much (common practice, no source).
 CLEAR_CONTRAST = 3.0
+# Smallest image side: SSIM's 11-pixel window with room to slide, and the 4-pixel J-invariant grid.
+MIN_SIDE = 16
 NOISE_CHOICES = ("auto", "gaussian", "poisson-gaussian")
 Denoise = Callable[[np.ndarray], np.ndarray]
 
@@ -246,6 +248,9 @@ def _check_set(images: ImageSet) -> tuple[Normalization, int]:
                 raise InputError(clean_path, f"shape {arrays[1][1].shape} differs from the noisy {noisy_path.name} "
                                              f"{arrays[0][1].shape}")
         for path, array in arrays:
+            if min(array.shape[:2]) < MIN_SIDE:
+                raise InputError(path, f"is {array.shape[1]}x{array.shape[0]} pixels; comparing needs at least "
+                                       f"{MIN_SIDE} on each side")
             if reference is None:
                 reference = array
             if array.shape[2] != reference.shape[2]:
@@ -276,8 +281,11 @@ class NoiseEstimate:
     text: str
 
 
-def estimate_noise(noisy: np.ndarray, choice: str = "auto") -> NoiseEstimate:
-    """Estimate the noise of a working-range ``(H, W, C)`` image (see :class:`CompareOptions` ``noise``)."""
+def estimate_noise(noisy: np.ndarray, choice: str = "auto", path: str | Path | None = None) -> NoiseEstimate:
+    """Estimate the noise of a working-range ``(H, W, C)`` image (see :class:`CompareOptions` ``noise``).
+
+    ``path`` names the image in error messages.
+    """
     if choice not in NOISE_CHOICES:
         raise ConfigError(f"--noise must be one of {', '.join(NOISE_CHOICES)}, got {choice!r}")
     gray_sigma = float(estimate_sigma(noisy.mean(axis=2))[0])
@@ -288,13 +296,13 @@ def estimate_noise(noisy: np.ndarray, choice: str = "auto") -> NoiseEstimate:
         fit = fit_poisson_gaussian(noisy) if blocks >= 15000 else fit_poisson_gaussian(noisy, levels=8, min_blocks=100)
         usable = fit.gain > 0
         if choice == "poisson-gaussian" and not usable:
-            raise ConfigError("--noise poisson-gaussian: the fit found no signal-dependent part in this image")
+            raise InputError(path, "--noise poisson-gaussian: the fit found no signal-dependent part in this image")
         if usable and (choice == "poisson-gaussian" or (fit.signal_dependent and fit.confident)):
             spec = {"kind": "poisson-gaussian", "gain": float(fit.gain), "read": float(fit.read)}
             text = f"Poisson-Gaussian, gain {fit.gain:.3g}, read noise {fit.read:.3g} (fitted, working units)"
             return NoiseEstimate(spec, gray_sigma, float(sigma.mean()), text)
     if not np.all(sigma > 0):
-        raise InputError(None, "the estimated noise level is zero: is this image noisy, or already denoised?")
+        raise InputError(path, "the estimated noise level is zero: is this image noisy, or already denoised?")
     spec = {"kind": "gaussian", "sigma": sigma.tolist()}
     text = "Gaussian, sigma " + ", ".join(f"{s:.4g}" for s in sigma) + " (MAD estimate, working units)"
     return NoiseEstimate(spec, gray_sigma, float(sigma.mean()), text)
@@ -450,7 +458,7 @@ def run_comparison(
     for index, path in enumerate(images.noisy):
         noisy = normalization.to_working(read_image(path))
         clean = normalization.to_working(read_image(images.clean[index])) if ground_truth else None
-        noise = estimate_noise(noisy, options.noise)
+        noise = estimate_noise(noisy, options.noise, path)
         noise_texts.append(f"{path.name}: {noise.text}")
         say(f"[{index + 1}/{len(images.noisy)}] {path.name}: {noise.text}")
         native_sigma = noise.channel_sigma * normalization.full_range  # what the runtime's own estimate gives
@@ -753,7 +761,8 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
         "with the PSNR column.",
         f"J-invariant loss: on a centre crop of {options.tuning_crop} pixels"
         + (", 4 of the 16 pixel grids." if options.quick else ", all 16 pixel grids.")
-        + " Lower is better; it equals the true error plus the noise variance on average.",
+        + " Lower is better; it is the error of the method made J-invariant (no pixel sees its own noisy value) "
+        "plus the noise variance, on average.",
         f"Contrast retention summaries use the regions whose noisy contrast is at least {CLEAR_CONTRAST:g} of its "
         "standard errors (region table, last column); fainter regions are listed but not summarised.",
         "Noise left: MAD noise estimate of the output over that of the input. Residual autocorrelation and "

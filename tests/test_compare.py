@@ -184,13 +184,18 @@ def test_bad_input_gives_one_line_errors(dataset, tmp_path, capsys):
                       str(tmp_path / "r4")], capsys)
     assert code == 2 and "camera.png" in err and "shape" in err
 
+    tiny = tmp_path / "tiny"
+    write_image(tiny / "speck.png", np.zeros((8, 40), np.uint8))
+    code, err = _cli(["--noisy", str(tiny), "--methods", "mean", "-o", str(tmp_path / "r6")], capsys)
+    assert code == 2 and "speck.png" in err and "at least 16" in err
+
     existing = tmp_path / "r5"
     existing.mkdir()
     (existing / "keep.txt").write_text("user data")
     code, err = _cli(["--noisy", noisy, "--clean", clean, "--methods", "mean", "-o", str(existing)], capsys)
     assert code == 2 and "--overwrite" in err
     assert (existing / "keep.txt").read_text() == "user data"
-    for name in ("r1", "r2", "r3", "r4"):
+    for name in ("r1", "r2", "r3", "r4", "r6"):
         assert not (tmp_path / name).exists(), "nothing half-written"
 
 
