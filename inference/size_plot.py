@@ -1,0 +1,126 @@
+"""Quality versus time per frame of the model sizes tried, with the chosen size marked (inline SVG, torch-free).
+
+>>> svg = size_plot_svg([("residual 8x32", 120.0, 30.1), ("residual 10x48", 310.0, 30.4)], chosen="residual 8x32",
+...                     target_ms=200.0)
+>>> svg.startswith("<svg") and "chosen" in svg
+True
+
+The points usually come from the recorded quality search (``grainwright bench sizes --sweep``, its JSON) with the
+time per frame predicted for a machine profile (:func:`points_from_sweep`); the compare report can embed the SVG.
+"""
+from __future__ import annotations
+
+import html
+import math
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+from grainwright.inference.machine_profile import seconds_per_gmac_for
+from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
+
+
+def size_plot_svg(points: list[tuple[str, float, float]], chosen: str | None = None, target_ms: float | None = None,
+                  quality_label: str = "PSNR (dB)", width: int = 600, height: int = 340) -> str:
+    """An SVG scatter of ``(label, milliseconds per frame, quality)``: time on a log axis, the ``chosen`` label
+    ringed and named, the ``target_ms`` drawn as a dashed vertical line. Non-finite or non-positive times are
+    left out."""
+    points = [(n, t, q) for n, t, q in points if t > 0 and math.isfinite(t) and math.isfinite(q)]
+    left, right, top, bottom = 64, 170, 16, 44
+    plot_w, plot_h = width - left - right, height - top - bottom
+    parts = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" role="img" '
+             'aria-label="quality versus time per frame of the model sizes tried">',
+             f'<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="#fafafa" stroke="#888"/>']
+    if points:
+        times = [t for _, t, _ in points] + ([target_ms] if target_ms and target_ms > 0 else [])
+        t_lo, t_hi = math.floor(math.log10(min(times))), math.ceil(math.log10(max(times)))
+        t_hi += t_hi == t_lo
+        qualities = [q for _, _, q in points]
+        pad = max(0.25, 0.1 * (max(qualities) - min(qualities)))
+        q_lo, q_hi = min(qualities) - pad, max(qualities) + pad
+
+        def x_of(ms: float) -> float:
+            return left + (math.log10(ms) - t_lo) / (t_hi - t_lo) * plot_w
+
+        def y_of(quality: float) -> float:
+            return top + (1 - (quality - q_lo) / (q_hi - q_lo)) * plot_h
+
+        for decade in range(t_lo, t_hi + 1):
+            x = x_of(10.0**decade)
+            parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + plot_h}" stroke="#ddd"/>')
+            parts.append(f'<text x="{x:.1f}" y="{top + plot_h + 16}" font-size="11" text-anchor="middle">'
+                         f'{10.0**decade:g}</text>')
+        for k in range(5):
+            quality = q_lo + (q_hi - q_lo) * k / 4
+            y = y_of(quality)
+            parts.append(f'<line x1="{left}" y1="{y:.1f}" x2="{left + plot_w}" y2="{y:.1f}" stroke="#eee"/>')
+            parts.append(f'<text x="{left - 6}" y="{y + 4:.1f}" font-size="11" text-anchor="end">{quality:.2f}</text>')
+        if target_ms and target_ms > 0:
+            x = x_of(target_ms)
+            parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + plot_h}" stroke="#b35c00" '
+                         'stroke-dasharray="5,4"/>')
+            parts.append(f'<text x="{x + 4:.1f}" y="{top + 12}" font-size="11" fill="#b35c00">target '
+                         f'{target_ms:g} ms</text>')
+        for name, ms, quality in points:
+            x, y = x_of(ms), y_of(quality)
+            parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="4" fill="#1f6fb2"/>')
+            label = html.escape(name)
+            if name == chosen:
+                parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="9" fill="none" stroke="#b35c00" '
+                             'stroke-width="2"/>')
+                label += " (chosen)"
+            parts.append(f'<text x="{x + 11:.1f}" y="{y + 4:.1f}" font-size="11">{label}</text>')
+    parts.append(f'<text x="{left + plot_w / 2:.1f}" y="{height - 8}" font-size="12" text-anchor="middle">'
+                 'milliseconds per frame (log scale; faster to the left)</text>')
+    parts.append(f'<text x="14" y="{top + plot_h / 2:.1f}" font-size="12" text-anchor="middle" '
+                 f'transform="rotate(-90 14 {top + plot_h / 2:.1f})">{html.escape(quality_label)}</text>')
+    parts.append("</svg>")
+    return "".join(parts)
+
+
+def predicted_ms(macs_per_pixel: float, width: int, receptive_field: int, alignment: int,
+                 profile: dict[str, Any], frame: tuple[int, int], ensemble: int = 1) -> float:
+    """Milliseconds per ``frame = (width, height)`` frame on ``profile``'s machine: the network on the pixels
+    the runtime's default tiles compute, plus the runtime's own per-frame and per-megapixel cost (the model of
+    ``grainwright.trainer.sizing``, torch-free)."""
+    columns, rows = frame
+    margin = tile_margin(receptive_field, alignment)
+    plan = plan_tiles(rows, columns, tile=default_tile(margin, alignment), margin=margin, alignment=alignment)
+    network = macs_per_pixel * plan.computed_pixels / 1e9 * seconds_per_gmac_for(profile, width) * ensemble
+    overhead = profile.get("runtime_overhead", {})
+    runtime = overhead.get("seconds_per_frame", 0.0) + overhead.get("seconds_per_megapixel", 0.0) * rows * columns / 1e6
+    return 1000.0 * (network + runtime)
+
+
+def points_from_sweep(results: dict[str, Any], profile: dict[str, Any], frame: tuple[int, int],
+                      case: str = "gaussian") -> list[tuple[str, float, float]]:
+    """``(trial, predicted ms per frame, mean PSNR without ensemble)`` for each trial of ``case`` in a search's
+    JSON results, with the receptive field and alignment read from each trial's exported model when present."""
+    from grainwright.inference.modelinfo import read_model_metadata
+
+    points = []
+    for name, record in results["trials"].items():
+        if record["spec"]["case"] != case:
+            continue
+        hyper = record["spec"]["hyper"]
+        receptive, alignment = 2 * hyper.get("depth", 10) + 1, 1
+        if record.get("onnx") and Path(record["onnx"]).is_file():
+            metadata = read_model_metadata(record["onnx"])
+            architecture = metadata.get("architecture") if isinstance(metadata.get("architecture"), dict) else {}
+            receptive = int(metadata.get("receptive_field", architecture.get("receptive_field", receptive)))
+            alignment = int(metadata.get("alignment", architecture.get("alignment", alignment)))
+        ms = predicted_ms(record["macs_per_pixel"], hyper.get("width", 32), receptive, alignment, profile, frame)
+        points.append((name, ms, record["mean"]["1"]))
+    return points
+
+
+def write_size_plot(path: str | Path, svg: str) -> Path:
+    """Write the SVG atomically (temporary name in the same folder, then rename)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    with os.fdopen(handle, "w", encoding="utf-8") as stream:
+        stream.write(svg)
+    os.replace(temporary, path)
+    return path
