@@ -8,7 +8,11 @@ from grainwright.inference.errors import GrainwrightError
 
 def require_torch(command: str) -> None:
     """Raise a clear error when ``command`` needs PyTorch and it is not installed."""
-    if importlib.util.find_spec("torch") is None:
+    try:
+        installed = importlib.util.find_spec("torch") is not None
+    except ImportError:  # a finder that refuses torch outright
+        installed = False
+    if not installed:
         raise GrainwrightError(
             f"'grainwright {command}' needs PyTorch, which is not installed here "
             "(the runtime-only install has no torch). Install the training extra: "

@@ -13,7 +13,7 @@ from grainwright.inference.cli import main
 from grainwright.inference.imageio import write_image
 from grainwright.inference.noise import load_noise, noise_from_dict
 
-BLOCK_TORCH = "import sys; sys.modules['torch'] = None\n"
+from no_torch import BLOCK_TORCH
 
 
 def _astronaut_gray_with_sigma_10(seed: int = 0) -> np.ndarray:

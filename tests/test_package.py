@@ -8,7 +8,7 @@ import sys
 
 import grainwright.inference
 
-BLOCK_TORCH = "import sys; sys.modules['torch'] = None\n"
+from no_torch import BLOCK_TORCH
 
 
 def _inference_modules() -> list[str]:
@@ -56,9 +56,6 @@ def test_help_lists_every_command_without_torch():
 
 def test_torch_command_without_torch_gives_clear_message(tmp_path):
     script = BLOCK_TORCH + (
-        "import importlib.util\n"
-        "real = importlib.util.find_spec\n"
-        "importlib.util.find_spec = lambda name, *a: None if name == 'torch' else real(name, *a)\n"
         "from grainwright.inference.cli import main\n"
         f"sys.exit(main(['train', '--data', {str(tmp_path)!r}]))\n"
     )
