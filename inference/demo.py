@@ -72,6 +72,9 @@ class DemoSettings:
         Height and width of the large held-out frame denoised tile by tile, pixels.
     threads : int
         Threads for training and ONNX Runtime; 0 = all cores.
+    config : str
+        Training config: a shipped preset name or a TOML file. The default, ``fast-cpu``, is the small, quick
+        preset; its scheme is ``auto``.
     train_settings : list of str
         Extra training settings as ``key=value`` (the trainer's ``--set``), e.g. a smaller model for a smoke test.
     tile : int
@@ -88,6 +91,7 @@ class DemoSettings:
     frame_size: int = 256
     large_size: tuple[int, int] = (1024, 2048)
     threads: int = 0
+    config: str = "fast-cpu"
     train_settings: list[str] = field(default_factory=list)
     tile: int = 0
     progress: bool = True
@@ -268,7 +272,7 @@ def train_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -
     assignments = [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"',
                    f"logging.progress={'true' if settings.progress else 'false'}", *settings.train_settings]
     budget = {"steps": settings.steps} if settings.steps > 0 else {"minutes": settings.minutes}
-    training, run = train_command(None, str(out / CORRECTED_DIR / "train"), assignments=assignments,
+    training, run = train_command(settings.config, str(out / CORRECTED_DIR / "train"), assignments=assignments,
                                   out=str(out / RUN_DIR), announce=lambda line: echo(f"  {line}"), **budget)
     keep = ("scheme", "steps", "minutes", "best_step", "best_validation", "stopped", "patches_per_second",
             "parameters", "transform", "layout")
