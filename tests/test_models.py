@@ -46,7 +46,8 @@ def test_default_sizes_are_small_cpu_networks(name):
     model = build_model(name, 1)
     assert model.hyper == hyper_defaults(name)
     assert 10_000 < model.parameter_count() < 2_000_000
-    assert model.macs_per_pixel() < 250_000  # common practice for CPU denoisers, no source: ~1 MP/s per 100 GFLOP/s
+    # CPU-sized (rule of thumb, no source): at the ~170 GFLOP/s the models issue measured, 250k MACs/px is ~0.3 MP/s.
+    assert model.macs_per_pixel() < 250_000
 
 
 @pytest.mark.parametrize("name", sorted(MODELS))
