@@ -75,7 +75,8 @@ def export_graph(model: Denoiser, normalization: Normalization, opset: int = OPS
     """Trace ``model`` (eval mode, batch norm folded) with its normalisation into an ONNX model."""
     graph = ExportGraph(model.for_export().eval(), WorkingRange(normalization)).eval()
     side = 2 * model.alignment
-    example = [torch.rand(1, model.channels, side, side) * normalization.full_range + normalization.low]
+    # Tracing records operations, not values: a constant mid-range example leaves the caller's random state alone.
+    example = [torch.full((1, model.channels, side, side), normalization.low + 0.5 * normalization.full_range)]
     names, axes = ["image"], {"image": {0: "N", 2: "H", 3: "W"}, "denoised": {0: "N", 2: "H", 3: "W"}}
     if model.takes_noise_map:
         example.append(torch.full((1, 1, side, side), 0.01 * normalization.full_range))
