@@ -1,11 +1,11 @@
 """A machine profile: how fast this CPU runs 3x3 convolution stacks through ONNX Runtime, for sizing a model.
 
 The profile holds seconds per GMAC (10^9 multiply-accumulates) for FP32 and INT8 at ``threads`` threads,
-measured on reference stacks of 3x3 convolutions (the ``residual`` architecture's shape: conv+ReLU layers of
-``width`` channels on one image channel) at several widths, because small widths use the vector units less
-well. It also holds the runtime's own cost beyond the network (file reading and writing, the domain check,
-padding, tiling, stitching, conversion), per frame and per megapixel, measured by running the FP32 reference
-through the file-to-file ``denoise`` path on two frame sizes.
+measured through the runtime's tiled, batched path (in memory) on reference stacks of 3x3 convolutions (the
+``residual`` architecture's shape: conv+ReLU layers of ``width`` channels on one image channel) at several
+widths, because small widths use the vector units less well. It also holds the runtime's own cost beyond the
+network (file reading and writing, the domain check, conversion), per frame and per megapixel, measured by
+running the FP32 reference through the file-to-file ``denoise`` path on two frame sizes.
 ``grainwright.trainer.sizing`` turns it into a predicted time per frame.
 
 The plant machine has ONNX Runtime but no torch and maybe no ``onnx`` package, so the reference graphs are
@@ -179,17 +179,6 @@ def reference_stack(depth: int, width: int, precision: str = "fp32", seed: int =
                        [value_info("denoised", FLOAT, shape)], f"reference-{depth}x{width}-{precision}")
 
 
-def session(model: bytes | str | Path, threads: int) -> ort.InferenceSession:
-    """An ONNX Runtime CPU session with ``threads`` intra-op threads, as the runtime builds it."""
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = int(threads)
-    options.inter_op_num_threads = 1
-    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-    source = model if isinstance(model, bytes) else str(model)
-    return ort.InferenceSession(source, options, providers=["CPUExecutionProvider"])
-
-
 # -- measuring --------------------------------------------------------------------------------------------------
 
 
@@ -205,11 +194,18 @@ def _median_seconds(action: Any, repeats: int) -> float:
 
 def seconds_per_gmac(depth: int, width: int, precision: str, threads: int, edge: int = REFERENCE_EDGE,
                      repeats: int = 3) -> float:
-    """Measured seconds per 10^9 MACs of the reference stack on one ``edge`` x ``edge`` image."""
-    runner = session(reference_stack(depth, width, precision), threads)
-    image = np.random.default_rng(0).random((1, 1, edge, edge), dtype=np.float32)
-    seconds = _median_seconds(lambda: runner.run(["denoised"], {"image": image}), repeats)
-    return seconds / (reference_macs_per_pixel(depth, width) * edge * edge / 1e9)
+    """Measured seconds per 10^9 MACs of the reference stack run by the runtime (default tiles, batched session
+    calls, in memory) on one ``edge`` x ``edge`` image, counting the MACs of every pixel the tiles compute."""
+    from grainwright.inference.runner import Denoiser, ModelSpec
+
+    with tempfile.TemporaryDirectory(prefix="grainwright-profile-") as temp:
+        path = Path(temp) / "reference.onnx"
+        path.write_bytes(reference_stack(depth, width, precision))
+        denoiser = Denoiser(path, threads=threads, spec=ModelSpec(receptive_field=2 * depth + 1))
+        image = np.random.default_rng(0).random((edge, edge, 1), dtype=np.float32)
+        seconds = _median_seconds(lambda: denoiser.run(image, as_float=True), repeats)
+        computed = denoiser.plan(edge, edge).computed_pixels
+    return seconds / (reference_macs_per_pixel(depth, width) * computed / 1e9)
 
 
 def runtime_overhead(threads: int, fp32: dict[str, float], edges: tuple[int, int] = (512, 1024), width: int = 32,

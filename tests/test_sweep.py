@@ -16,7 +16,8 @@ from grainwright.trainer import sweep
 def test_trials_are_base_plus_changes():
     trials = sweep.architecture_trials()
     assert [t["name"] for t in trials] == list(sweep.ARCHITECTURES)
-    assert trials[0]["hyper"] == sweep.BASE["hyper"] and trials[0]["scheme"] == "recorrupted"
+    reference = next(t for t in trials if t["name"] == "residual 10x48")
+    assert reference["hyper"] == sweep.BASE["hyper"] and reference["scheme"] == "recorrupted"
     unet = next(t for t in trials if t["model"] == "unet-small")
     assert set(unet["hyper"]) == {"levels", "width"} and unet["patch_size"] == sweep.BASE["patch_size"]
     regimes = sweep.regime_trials(unet)

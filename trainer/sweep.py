@@ -47,12 +47,11 @@ PROBE_STEPS = 4  # timed steps of the CPU-time probe
 BASE = {"case": "gaussian", "scheme": "recorrupted", "model": "residual", "hyper": {"depth": 10, "width": 48},
         "patch_size": 48, "batch_size": 16, "set": {}}
 ARCHITECTURES: dict[str, dict[str, Any]] = {
-    "residual 10x48": {},
     "residual 8x32": {"hyper": {"depth": 8, "width": 32}},
-    "residual 17x32": {"hyper": {"depth": 17, "width": 32}},
-    "residual 6x64": {"hyper": {"depth": 6, "width": 64}},
+    "residual 10x48": {},
+    "residual 6x24": {"hyper": {"depth": 6, "width": 24}},
     "unet-small 2 levels x24": {"model": "unet-small", "hyper": {"levels": 2, "width": 24}},
-    "unet-small 3 levels x24": {"model": "unet-small", "hyper": {"levels": 3, "width": 24}},
+    "unet-small 3 levels x16": {"model": "unet-small", "hyper": {"levels": 3, "width": 16}},
 }
 REGIMES: dict[str, dict[str, Any]] = {
     "patch 64, batch 8": {"patch_size": 64, "batch_size": 8},
@@ -85,8 +84,6 @@ def noise_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
     return [
         trial("Poisson-Gaussian: recorrupted, Anscombe domain", case="poisson-gaussian", model="residual",
               hyper=residual, **regime),
-        trial("Poisson-Gaussian: neighbor2neighbor, Anscombe domain", case="poisson-gaussian",
-              scheme="neighbor2neighbor", model="residual", hyper=residual, **regime),
         trial("Poisson-Gaussian: neighbor2neighbor, noise-map model, linear domain", case="poisson-gaussian",
               scheme="neighbor2neighbor", model="residual-noisemap", hyper=residual,
               **{**regime, "set": {**regime["set"], "data.transform": "none"}}),
