@@ -157,7 +157,7 @@ def write_tiled_tiff(
     *,
     shape: tuple[int, int, int],
     dtype: np.dtype,
-    tile: int,
+    tile: tuple[int, int],
     description: str | None = None,
     compression: str | None = None,
     count: int = 1,
@@ -168,12 +168,12 @@ def write_tiled_tiff(
     Parameters
     ----------
     frames : iterable of iterators
-        One iterator per frame, yielding ``(tile, tile, C)`` arrays (edge tiles may be smaller) in row-major
-        tile order.
+        One iterator per frame, yielding ``(tile height, tile width, C)`` arrays (edge tiles may be smaller) in
+        row-major tile order.
     shape : (H, W, C)
         Frame shape in pixels and channels.
-    tile : int
-        Tile edge in pixels, a multiple of 16 (TIFF 6.0, section 15).
+    tile : (int, int)
+        Tile height and width in pixels, multiples of 16 (TIFF 6.0, section 15).
     description : str, optional
         Written to the first page's ImageDescription.
     count : int
@@ -194,7 +194,7 @@ def write_tiled_tiff(
                     _full_tiles(tiles, tile, channels, dtype),
                     shape=(height, width, channels) if channels > 1 else (height, width),
                     dtype=dtype,
-                    tile=(tile, tile),
+                    tile=tuple(tile),
                     compression=compression,
                     description=description if index == 0 else None,
                     metadata=None,
@@ -207,10 +207,11 @@ def write_tiled_tiff(
     return path
 
 
-def _full_tiles(tiles: Iterator[np.ndarray], tile: int, channels: int, dtype: np.dtype) -> Iterator[np.ndarray]:
+def _full_tiles(tiles: Iterator[np.ndarray], tile: tuple[int, int], channels: int,
+                dtype: np.dtype) -> Iterator[np.ndarray]:
     for block in tiles:
-        if block.shape[:2] != (tile, tile):
-            padded = np.zeros((tile, tile, channels), dtype)
+        if block.shape[:2] != tuple(tile):
+            padded = np.zeros((*tile, channels), dtype)
             padded[: block.shape[0], : block.shape[1]] = block
             block = padded
         yield np.ascontiguousarray(block if channels > 1 else block[:, :, 0], dtype=dtype)

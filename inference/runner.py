@@ -184,8 +184,9 @@ class Denoiser:
     threads : int, optional
         ONNX Runtime intra-op threads (default: all cores).
     tile : int, optional
-        Edge in pixels of each tile's kept region; the margin is added around it. Default: measured, and large
-        enough that the overlap costs at most 15 % extra computation. Larger than the image means one tile.
+        Largest edge in pixels of each tile's kept region; the margin is added around it. Tiles are evened out
+        per image so that the last one is not mostly wasted. Larger than the image means one tile. Default:
+        measured, and large enough that the overlap costs at most 15 % extra computation.
     batch : int, optional
         Tiles per ONNX Runtime call (default: about ``DEFAULT_BATCH_PIXELS`` window pixels per call).
     strength : float
@@ -295,10 +296,11 @@ class Denoiser:
             "ensemble": self.ensemble,
         }
 
-    def plan(self, height: int, width: int, tile: int | None = None) -> TilePlan:
-        """The tile plan for an image of ``height`` x ``width`` pixels."""
-        return plan_tiles(height, width, tile=tile or self.tile, margin=self.spec.margin,
-                          alignment=self.spec.alignment)
+    def plan(self, height: int, width: int, step: int | None = None) -> TilePlan:
+        """The tile plan for an image of ``height`` x ``width`` pixels; kept edges on the grid of ``step``
+        (default: the model's alignment)."""
+        return plan_tiles(height, width, tile=self.tile, margin=self.spec.margin, alignment=self.spec.alignment,
+                          step=step)
 
     def batch_size(self, plan: TilePlan) -> int:
         if self.batch:

@@ -40,7 +40,7 @@ from grainwright.inference.imageio import (
 )
 from grainwright.inference.large_tiff import WRITABLE_COMPRESSION, TiffRowReader, can_stream, write_tiled_tiff
 from grainwright.inference.runner import Denoiser, file_sha256, to_dtype
-from grainwright.inference.tiling import TIFF_TILE_MULTIPLE, reflect_indices, round_up
+from grainwright.inference.tiling import TIFF_TILE_MULTIPLE, reflect_indices
 
 RECORD_TOOL = "grainwright denoise"
 # Warn when an input's noise level or full-scale range differs from the training data by more than this factor.
@@ -288,9 +288,8 @@ def _stream_tiff(denoiser: Denoiser, source: Path, output: Path, record: dict[st
         denoiser.check_channels(channels, source)
         y0, y1, x0, x1 = _central_crop(height, width)
         notes = domain_warnings(denoiser, reader.read_rows(0, y0, y1)[:, x0:x1])
-        # The kept square is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
-        tile = round_up(denoiser.tile, math.lcm(TIFF_TILE_MULTIPLE, denoiser.spec.alignment))
-        plan = denoiser.plan(height, width, tile=tile)
+        # The kept rectangle is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
+        plan = denoiser.plan(height, width, step=math.lcm(TIFF_TILE_MULTIPLE, denoiser.spec.alignment))
         rows = reflect_indices(plan.padded_height, height)
         cols = reflect_indices(plan.padded_width, width)
         out_dtype = np.dtype(np.float32) if as_float else reader.dtype

@@ -5,12 +5,12 @@ The rule, also written into every exported model's metadata so that a program in
 1. Pad the image at the bottom and right to the model's *alignment* (a multiple of ``alignment`` pixels in each
    direction) by reflection (``numpy.pad(mode="reflect")``, repeated for images smaller than the padding). A
    whole-image run pads the same way, so both see the same pixels.
-2. Cut the padded image into kept (valid) squares of ``tile`` pixels whose origins lie on the alignment grid.
-3. Run each kept square with ``margin`` extra pixels around it, where ``margin`` is at least the receptive-field
+2. Cut the padded image into kept (valid) rectangles of ``tile`` pixels whose origins lie on the alignment grid.
+3. Run each kept rectangle with ``margin`` extra pixels around it, where ``margin`` is at least the receptive-field
    radius and a multiple of the alignment. A window is never extended beyond the padded image: at an image
    border the network's own zero padding then happens at the same place as in a whole-image run. Near the
    borders the window is shifted inwards so that every window has the same shape, which lets tiles be batched.
-4. Keep only the kept square of each output. Every kept pixel is then either at least ``margin`` pixels from the
+4. Keep only the kept rectangle of each output. Every kept pixel is then either at least ``margin`` pixels from the
    window edge or on the same image border as in the whole-image run, so its value equals the whole-image value
    up to floating-point rounding. Crop the padding away at the end.
 
@@ -28,11 +28,10 @@ from typing import TypeVar
 
 import numpy as np
 
-# The smallest default kept edge (pixels). `grainwright bench runtime` sweeps the tile size (README,
-# bench-runtime): from 128 to 512 pixels the file-to-file throughput stayed within the noise of the shared
-# reference machine, so the default is the smallest edge whose overlap cost stays small for shallow models while
-# keeping a window's activations modest (48 channels x 4 B x 276^2 pixels = 15 MB per layer at margin 10).
-MIN_DEFAULT_TILE = 256
+# The smallest default kept edge (pixels), measured with `grainwright bench runtime` (README, bench-runtime):
+# 512 was the fastest of 128, 256 and 512 for the default `residual` model in every interleaved repetition, and a
+# window's activations stay modest (48 channels x 4 B x 532^2 pixels = 54 MB per layer at margin 10).
+MIN_DEFAULT_TILE = 512
 # Overlap may cost at most this fraction of extra computed pixels at the default tile size.
 MAX_OVERLAP_COST = 0.15
 # TIFF tiles must be multiples of 16 pixels (TIFF 6.0, section 15); keeping the kept edge on that grid lets the
@@ -65,6 +64,13 @@ def default_tile(margin: int, alignment: int = 1, multiple: int = TIFF_TILE_MULT
     return round_up(max(MIN_DEFAULT_TILE, math.ceil(needed)), step)
 
 
+def balanced_tile(padded: int, largest: int, step: int = 1) -> int:
+    """Kept edge for one axis of ``padded`` pixels: as many tiles as ``largest`` needs, evened out on the grid of
+    ``step`` so that the last tile is not mostly wasted (every window has the full shape, see ``plan_tiles``)."""
+    count = -(-int(padded) // round_up(largest, step))
+    return round_up(-(-int(padded) // count), step)
+
+
 def reflect_indices(count: int, size: int) -> np.ndarray:
     """Source indices of positions ``0 .. count-1`` of a signal of ``size`` samples extended by reflection.
 
@@ -92,7 +98,7 @@ class Tile:
     """One window of the padded image and the part of its output that is kept.
 
     ``window`` is ``(y0, y1, x0, x1)`` in padded-image pixels; ``keep`` is ``(y0, y1, x0, x1)`` in the same
-    coordinates, already cropped to the original image. ``row`` and ``col`` number the kept squares.
+    coordinates, already cropped to the original image. ``row`` and ``col`` number the kept rectangles.
     """
 
     row: int
@@ -101,7 +107,7 @@ class Tile:
     keep: tuple[int, int, int, int]
 
     def keep_in_window(self) -> tuple[slice, slice]:
-        """Slices of the kept square inside the window's output."""
+        """Slices of the kept rectangle inside the window's output."""
         y0, y1, x0, x1 = self.keep
         return slice(y0 - self.window[0], y1 - self.window[0]), slice(x0 - self.window[2], x1 - self.window[2])
 
@@ -124,7 +130,7 @@ class TilePlan:
     width: int
     padded_height: int
     padded_width: int
-    tile: int
+    tile: tuple[int, int]
     margin: int
     alignment: int
     tiles: tuple[Tile, ...]
@@ -145,7 +151,9 @@ class TilePlan:
         return height * width * len(self.tiles)
 
 
-def plan_tiles(height: int, width: int, *, tile: int, margin: int, alignment: int = 1) -> TilePlan:
+def plan_tiles(
+    height: int, width: int, *, tile: int, margin: int, alignment: int = 1, step: int | None = None
+) -> TilePlan:
     """Plan the tiles of an ``height`` x ``width`` image.
 
     Parameters
@@ -153,23 +161,29 @@ def plan_tiles(height: int, width: int, *, tile: int, margin: int, alignment: in
     height, width : int
         Image size in pixels (before padding).
     tile : int
-        Edge of each kept square in pixels; rounded up to the alignment. Larger than the image means one tile.
+        Largest edge of the kept rectangles in pixels. Along each axis the plan uses as many tiles as this edge
+        needs and evens their edges out (``balanced_tile``), so the last tile is not mostly wasted. Larger than
+        the image means one tile.
     margin : int
         Overlap in pixels on each side; must be a multiple of ``alignment`` and at least the receptive-field
         radius of the model.
     alignment : int
         The model's input height and width must be multiples of this.
+    step : int, optional
+        Kept edges are multiples of this (default: ``alignment``; it must be a multiple of it), e.g. 16 so that
+        kept rectangles can be written as TIFF tiles.
     """
     if height < 1 or width < 1:
         raise ValueError(f"image must be at least 1 x 1 pixels, got {height} x {width}")
     if alignment < 1 or margin < 0 or margin % alignment:
         raise ValueError(f"margin {margin} must be a non-negative multiple of the alignment {alignment}")
-    if tile < 1:
-        raise ValueError(f"tile must be at least 1 pixel, got {tile}")
-    tile = round_up(tile, alignment)
+    step = step or alignment
+    if tile < 1 or step % alignment:
+        raise ValueError(f"tile ({tile}) must be at least 1 pixel, step ({step}) a multiple of {alignment}")
     padded_height, padded_width = round_up(height, alignment), round_up(width, alignment)
-    row_spans = _axis_windows(height, padded_height, tile, margin)
-    col_spans = _axis_windows(width, padded_width, tile, margin)
+    tile = (balanced_tile(padded_height, tile, step), balanced_tile(padded_width, tile, step))
+    row_spans = _axis_windows(height, padded_height, tile[0], margin)
+    col_spans = _axis_windows(width, padded_width, tile[1], margin)
     tiles = tuple(
         Tile(row=r, col=c, window=(wy0, wy1, wx0, wx1), keep=(ky0, ky1, kx0, kx1))
         for r, (wy0, wy1, ky0, ky1) in enumerate(row_spans)

@@ -78,13 +78,13 @@ def test_tiled_writer_round_trips_and_leaves_no_temporary(tmp_path):
                 yield frame[y : y + 32, x : x + 32]
 
     out = write_tiled_tiff(tmp_path / "out.tif", (tiles(f) for f in frames), shape=(70, 45, 3), dtype=np.uint16,
-                           tile=32, description='{"note": 1}', compression="zlib", count=2)
+                           tile=(32, 32), description='{"note": 1}', compression="zlib", count=2)
     np.testing.assert_array_equal(tifffile.imread(out), frames)
     with tifffile.TiffFile(out) as tiff:
         assert tiff.pages[0].is_tiled and tiff.pages[0].description == '{"note": 1}'
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out.tif"]
     with pytest.raises(InputError, match="already exists"):
-        write_tiled_tiff(out, [], shape=(70, 45, 3), dtype=np.uint16, tile=32)
+        write_tiled_tiff(out, [], shape=(70, 45, 3), dtype=np.uint16, tile=(32, 32))
 
 
 def test_interrupted_write_leaves_nothing(tmp_path):
@@ -93,7 +93,7 @@ def test_interrupted_write_leaves_nothing(tmp_path):
         raise RuntimeError("killed")
 
     with pytest.raises(RuntimeError):
-        write_tiled_tiff(tmp_path / "out.tif", [failing()], shape=(40, 40, 1), dtype=np.uint16, tile=16)
+        write_tiled_tiff(tmp_path / "out.tif", [failing()], shape=(40, 40, 1), dtype=np.uint16, tile=(16, 16))
     assert list(tmp_path.iterdir()) == []
 
 

@@ -43,11 +43,17 @@ def test_reflect_indices_match_numpy_reflect_padding(extra, size):
 
 @given(
     height=st.integers(1, 90), width=st.integers(1, 90), tile=st.integers(1, 40),
-    radius=st.integers(0, 6), alignment=st.sampled_from([1, 2, 4, 8]),
+    radius=st.integers(0, 6), alignment=st.sampled_from([1, 2, 4, 8]), step_factor=st.sampled_from([1, 2]),
 )
-def test_plan_covers_every_pixel_once_with_aligned_equal_windows(height, width, tile, radius, alignment):
+def test_plan_covers_every_pixel_once_with_aligned_equal_windows(height, width, tile, radius, alignment,
+                                                                 step_factor):
     margin = tile_margin(2 * radius + 1, alignment)
-    plan = plan_tiles(height, width, tile=tile, margin=margin, alignment=alignment)
+    step = alignment * step_factor
+    plan = plan_tiles(height, width, tile=tile, margin=margin, alignment=alignment, step=step)
+    # Evening out keeps the tile count that the requested edge needs, and never exceeds that edge (on the grid).
+    for size, kept in zip((plan.padded_height, plan.padded_width), plan.tile):
+        assert kept % step == 0 and kept <= -(-tile // step) * step
+        assert -(-size // kept) == -(-size // (-(-tile // step) * step))
     covered = np.zeros((height, width), int)
     shapes = set()
     for t in plan.tiles:
@@ -72,6 +78,13 @@ def test_default_tile_keeps_overlap_cost_within_budget(receptive_field):
     tile = default_tile(margin, 4)
     assert overlap_cost(tile, margin) <= MAX_OVERLAP_COST
     assert tile % 16 == 0 and tile % 4 == 0
+
+
+def test_evened_out_tiles_waste_less_than_fixed_ones():
+    # A 2048-pixel image at a 288-pixel largest edge: 8 tiles of 256 kept pixels, not 7 of 288 and a sliver.
+    plan = plan_tiles(2048, 2048, tile=288, margin=10)
+    assert plan.tile == (256, 256) and plan.rows == 8
+    assert plan.computed_pixels < 2048**2 * (1 + overlap_cost(256, 10)) + 1
 
 
 def test_pad_to_alignment_is_numpy_reflect():
