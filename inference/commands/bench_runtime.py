@@ -8,7 +8,8 @@
 - peak resident memory (as the OS reports it, from ``wait4``) of ``denoise`` in a fresh process on generated
   16-bit tiled TIFFs of two sizes (default 16 and 256 megapixels), deleted afterwards.
 
-Optionally writes a machine profile (``--profile``): seconds per GMAC for FP32 and INT8 at the chosen threads.
+Optionally also measures and writes the machine profile of :mod:`grainwright.inference.machine_profile`
+(``--profile``): seconds per GMAC for FP32 and INT8 at the chosen threads, for sizing a model to a cycle time.
 Timings on a shared machine are noisy; the ratios come from runs interleaved in one process.
 """
 from __future__ import annotations
@@ -31,6 +32,7 @@ import numpy as np
 from grainwright.inference.errors import ConfigError
 from grainwright.inference.imageio import write_image
 from grainwright.inference.large_tiff import write_tiled_tiff
+from grainwright.inference.machine_profile import measure_profile, save_profile
 from grainwright.inference.runner import Denoiser
 from grainwright.inference.runtime_batch import denoise_files
 from grainwright.inference.tiling import pad_to_alignment
@@ -51,7 +53,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="sizes of the generated TIFFs for the peak-memory runs (megapixels, commas; "
                         "'none' to skip)")
     parser.add_argument("--rss-model", metavar="PATH", help="model for the peak-memory runs (default: MODEL)")
-    parser.add_argument("--profile", metavar="PATH", help="write the machine profile JSON here")
+    parser.add_argument("--profile", metavar="PATH",
+                        help="also measure this machine's sizing profile (reference conv stacks) and write it here")
     parser.add_argument("--json", metavar="PATH", help="write all figures as JSON here")
 
 
@@ -214,24 +217,11 @@ def run(args: argparse.Namespace) -> int:
     _print(figures)
     if args.json:
         Path(args.json).write_text(json.dumps(figures, indent=1))
-    if args.profile:
-        Path(args.profile).write_text(json.dumps(_profile(figures, spec.macs_per_pixel), indent=1))
+    if args.profile:  # the sizing profile of grainwright.inference.machine_profile, on its reference stacks
+        print(f"\nmachine profile ({args.threads} threads) for 'grainwright train --fit-to':")
+        save_profile(measure_profile(threads=args.threads), args.profile)
         print(f"machine profile written to {args.profile}")
     return 0
-
-
-def _profile(figures: dict[str, Any], macs_per_pixel: float | None) -> dict[str, Any]:
-    """Seconds per GMAC of the bare call, and the file path's overhead, for sizing a model to a cycle time."""
-    throughput = figures["throughput"]
-    profile: dict[str, Any] = {"machine": figures["machine"], "cpus": figures["cpus"], "threads": figures["threads"],
-                               "reference_model": {"architecture": figures["architecture"],
-                                                   "macs_per_pixel": macs_per_pixel}}
-    for label in ("fp32", "int8"):
-        if f"{label} bare" in throughput and macs_per_pixel:
-            gmacs = macs_per_pixel * figures["megapixels"] * 1e6 / 1e9
-            profile[f"{label}_seconds_per_gmac"] = throughput[f"{label} bare"]["seconds"] / gmacs
-            profile[f"{label}_file_path_overhead"] = 1 / throughput[f"{label} file/bare"] - 1
-    return profile
 
 
 def _print(figures: dict[str, Any]) -> None:
