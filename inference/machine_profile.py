@@ -38,7 +38,7 @@ from grainwright.inference.errors import InputError
 PROFILE_FORMAT = "grainwright-machine-profile"
 PROFILE_VERSION = 1
 REFERENCE_DEPTH = 8
-REFERENCE_WIDTHS = (16, 32, 48, 64)
+REFERENCE_WIDTHS = (16, 24, 32, 48, 64)  # the widths of the size ladder
 REFERENCE_EDGE = 512
 PRECISIONS = ("fp32", "int8")
 
@@ -264,20 +264,20 @@ def runtime_overhead(threads: int, fp32: dict[str, float], edges: tuple[int, int
 
 def measure_profile(threads: int = 2, widths: tuple[int, ...] = REFERENCE_WIDTHS, edge: int = REFERENCE_EDGE,
                     repeats: int = 3, overhead_edges: tuple[int, int] = (512, 1024),
-                    log: Any = print) -> dict[str, Any]:
+                    precisions: tuple[str, ...] = PRECISIONS, log: Any = print) -> dict[str, Any]:
     """Measure this machine's profile (see the module docstring): reference stacks on ``edge`` x ``edge``
     images, the runtime's own cost on frames of ``overhead_edges``. Precisions alternate per width so that load
-    changes on a shared machine hit both alike."""
+    changes on a shared machine hit both alike; ``precisions`` must include ``"fp32"``."""
     profile: dict[str, Any] = {
         "format": PROFILE_FORMAT, "version": PROFILE_VERSION, "machine": platform.platform(),
         "processor": platform.processor() or platform.machine(), "cpus": os.cpu_count(), "threads": int(threads),
         "measured_at": datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds"),
         "onnxruntime": ort.__version__,
         "reference": {"depth": REFERENCE_DEPTH, "widths": list(widths), "edge": edge, "repeats": repeats},
-        "seconds_per_gmac": {precision: {} for precision in PRECISIONS},
+        "seconds_per_gmac": {precision: {} for precision in precisions},
     }
     for width in widths:
-        for precision in PRECISIONS:
+        for precision in precisions:
             value = seconds_per_gmac(REFERENCE_DEPTH, width, precision, threads, edge, repeats)
             profile["seconds_per_gmac"][precision][str(width)] = value
             log(f"  {precision} width {width:3d}: {value:.4f} s/GMAC ({1 / value:.1f} GMAC/s)")

@@ -163,11 +163,18 @@ def default_targets(profile: dict[str, Any], frame: tuple[int, int], rungs: list
     return [round((times[i] * times[i + 1]) ** 0.5) for i in CHECK_RUNGS if i + 1 < len(times)]
 
 
-def check_prediction(profile: dict[str, Any], frame: tuple[int, int], targets_ms: list[float], *, threads: int,
-                     repeats: int = 3, log: Callable[[str], None] = print) -> list[dict[str, Any]]:
+def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads: int, repeats: int = 3,
+                     profile: dict[str, Any] | None = None, log: Callable[[str], None] = print) -> list[dict[str, Any]]:
     """For each target: pick the rung, export it (random weights: only the time matters) with a 16-bit
     normalisation, and time the file-to-file ``denoise`` path on a generated 16-bit TIFF frame of ``frame``
-    pixels (median of ``repeats``, the targets interleaved). Returns one row per target."""
+    pixels.
+
+    Without a ``profile``, each of the ``repeats`` rounds first measures a fresh FP32 profile of this machine and
+    then times every target, so that the prediction and the measurement it is compared with see the same load
+    on a shared machine; the rungs are picked with the first round's profile. The figures are the medians over
+    the rounds, and the error is the median of the rounds' ``predicted / measured - 1``. Returns one row per
+    target.
+    """
     import tempfile
     from pathlib import Path
 
@@ -176,24 +183,29 @@ def check_prediction(profile: dict[str, Any], frame: tuple[int, int], targets_ms
     import torch
 
     from grainwright.inference.imageio import write_image
+    from grainwright.inference.machine_profile import measure_profile
     from grainwright.inference.normalization import Normalization
     from grainwright.inference.runner import Denoiser, ModelSpec
     from grainwright.inference.runtime_batch import denoise_files
     from grainwright.models.export import export_graph
     from grainwright.models.registry import build_model
 
+    def round_profile() -> dict[str, Any]:
+        if profile is not None:
+            return profile
+        return measure_profile(threads=threads, repeats=1, precisions=("fp32",), log=lambda text: None)
+
     width, height = frame
     rng = np.random.default_rng(0)
     image = np.clip(rng.normal(20000, 800, (height, width, 1)), 0, 65535).astype(np.uint16)
     normalization = Normalization.for_array(image, 16)
-    rows = []
+    first = round_profile()
+    rows, runs = [], []
     with tempfile.TemporaryDirectory(prefix="grainwright-sizes-") as temp:
         folder = Path(temp)
         source = write_image(folder / "in" / "frame.tif", image)
-        runs = []
         for target in targets_ms:
-            chosen, _ = pick(profile, target, frame)
-            item = chosen.rung
+            item = pick(first, target, frame)[0].rung
             torch.manual_seed(0)
             model = build_model(item.architecture, 1, **item.hyper)
             path = folder / f"{item.label.replace(' ', '-')}.onnx"
@@ -202,18 +214,22 @@ def check_prediction(profile: dict[str, Any], frame: tuple[int, int], targets_ms
                                                                       alignment=item.alignment))
             denoiser.run(image[:64, :64])  # warm-up
             rows.append({"target_ms": target, "rung": item.label, "macs_per_pixel": item.macs_per_pixel,
-                         "predicted_ms": chosen.milliseconds, "times": []})
-            runs.append(denoiser)
-        for _ in range(repeats):
-            for row, denoiser in zip(rows, runs):
+                         "predicted": [], "measured": []})
+            runs.append((item, denoiser))
+        for round_index in range(repeats):
+            current = first if round_index == 0 else round_profile()
+            for row, (item, denoiser) in zip(rows, runs):
                 start = time.perf_counter()
                 [result] = denoise_files(denoiser, [source], folder / "out", overwrite=True)
-                row["times"].append(time.perf_counter() - start)
+                row["measured"].append(1000.0 * (time.perf_counter() - start))
+                row["predicted"].append(predict(item, current, frame).milliseconds)
                 if result.status != "done":
                     raise ConfigError(f"benchmark denoise failed: {result.message}")
     for row in rows:
-        row["measured_ms"] = 1000.0 * float(np.median(row["times"]))
-        row["error"] = row["predicted_ms"] / row["measured_ms"] - 1.0
+        row["predicted_ms"] = float(np.median(row["predicted"]))
+        row["measured_ms"] = float(np.median(row["measured"]))
+        row["error"] = float(np.median([p / m - 1.0 for p, m in zip(row["predicted"], row["measured"])]))
         log(f"  target {row['target_ms']:8.0f} ms: {row['rung']:16s} predicted {row['predicted_ms']:8.0f} ms, "
-            f"measured {row['measured_ms']:8.0f} ms ({row['error']:+.1%})")
+            f"measured {row['measured_ms']:8.0f} ms (median error {row['error']:+.1%}; rounds "
+            + ", ".join(f"{p / m - 1:+.0%}" for p, m in zip(row["predicted"], row["measured"])) + ")")
     return rows

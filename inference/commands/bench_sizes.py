@@ -56,11 +56,7 @@ def run(args: argparse.Namespace) -> int:
     from grainwright.trainer.sizing import check_prediction, default_targets, ladder, parse_frame
 
     frame = parse_frame(args.frame)
-    if args.profile:
-        profile = load_profile(args.profile)
-    else:
-        print(f"measuring this machine's profile ({args.threads} threads):", flush=True)
-        profile = measure_profile(threads=args.threads)
+    profile = load_profile(args.profile) if args.profile else None
     rungs = ladder()
     if args.targets_ms:
         try:
@@ -68,13 +64,15 @@ def run(args: argparse.Namespace) -> int:
         except ValueError:
             raise ConfigError(f"--targets-ms: expected numbers separated by commas, got {args.targets_ms!r}") from None
     else:
-        targets = default_targets(profile, frame, rungs)
-    print(f"predicted vs measured denoise time per {frame[0]}x{frame[1]} 16-bit frame, {args.threads} threads, "
-          f"median of {args.repeat} interleaved runs:", flush=True)
-    rows = check_prediction(profile, frame, targets, threads=args.threads, repeats=args.repeat)
+        print(f"measuring this machine's profile ({args.threads} threads) for the default targets:", flush=True)
+        targets = default_targets(profile or measure_profile(threads=args.threads), frame, rungs)
+    source = args.profile or "a fresh FP32 profile of this machine measured in each round"
+    print(f"predicted ({source}) vs measured denoise time per {frame[0]}x{frame[1]} 16-bit frame, "
+          f"{args.threads} threads, {args.repeat} interleaved rounds:", flush=True)
+    rows = check_prediction(frame, targets, threads=args.threads, repeats=args.repeat, profile=profile)
     within = all(abs(row["error"]) <= 0.2 for row in rows)
     print(f"all predictions within 20% of the measured time: {'yes' if within else 'no'}")
     if args.json:
-        save_profile({"profile": profile, "frame": list(frame), "rows": rows, "within_20_percent": within},
-                     Path(args.json))
+        save_profile({"profile": args.profile, "frame": list(frame), "threads": args.threads, "rows": rows,
+                      "within_20_percent": within}, Path(args.json))
     return 0
