@@ -31,7 +31,7 @@ from grainwright.inference import scenario
 from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.torch_needed import require_torch
 
-DEFAULT_MINUTES = 3.0
+DEFAULT_MINUTES = 4.0
 DEFAULT_OUT = "grainwright-demo"
 MARKER_FILE = "demo.json"
 MARKER_KIND = "grainwright-demo"
@@ -397,7 +397,8 @@ def headline(summary: dict, out: Path) -> list[str]:
         f"  contrast retention on the cracks: {ratio(compare['crack_contrast_retention_learned'])} "
         f"(best classical by SURE, {compare['best_classical_by_sure']}: "
         f"{ratio(compare['crack_contrast_retention_best_classical'])}; 1.00 = contrast kept; "
-        f"{compare['crack_regions_scored']} cracks clear of the noise), pores "
+        f"over the {compare['crack_regions_scored']} crack(s) whose noisy contrast is at least "
+        f"{MIN_REGION_SIGNIFICANCE:g} standard errors), pores "
         f"{ratio(compare['pore_contrast_retention_learned'])}",
         f"  seconds per megapixel: {large['seconds_per_megapixel']:.2f} on the large "
         f"{large['shape'][1]}x{large['shape'][0]} frame, tiled "
