@@ -164,3 +164,22 @@ def test_recorrupted_pair_has_independent_noise():
     assert added_out.std() == pytest.approx(sigma / alpha, rel=0.02)
     total_in, total_out = (batch["input"] - clean).ravel(), (batch["target"] - clean).ravel()
     assert abs(np.corrcoef(total_in, total_out)[0, 1]) < 0.01
+
+
+def test_neighbor2neighbor_validation_ranks_a_denoiser_above_the_identity():
+    # The full loss at gamma = 2 scores the identity (regulariser 0, reconstruction 2 sigma^2) below a perfect
+    # denoiser (sigma^2 + gamma sigma^2); the reconstruction term alone ranks them the right way round.
+    sigma = 0.1
+    noisy = 0.5 + sigma * np.random.default_rng(10).standard_normal((16, 1, 32, 32)).astype(np.float32)
+    scheme = Neighbor2Neighbor(defaults())
+    tensors = {k: torch.from_numpy(v) for k, v in scheme.prepare({"noisy": noisy}, np.random.default_rng(11)).items()}
+
+    class Perfect(torch.nn.Module):
+        takes_noise_map = False
+
+        def forward(self, image):
+            return torch.full_like(image, 0.5)
+
+    assert float(scheme.loss(Identity(), tensors, 1.0)) < float(scheme.loss(Perfect(), tensors, 1.0))
+    assert float(scheme.validation_loss(Perfect(), tensors)) == pytest.approx(sigma ** 2, rel=0.1)
+    assert float(scheme.validation_loss(Identity(), tensors)) == pytest.approx(2 * sigma ** 2, rel=0.1)

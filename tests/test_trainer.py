@@ -85,8 +85,10 @@ def test_supervised_run_writes_the_run_folder_and_denoises(tmp_path):
 @pytest.mark.slow
 def test_same_seed_gives_the_same_weights(tmp_path):
     folder = _noisy_folder(tmp_path / "data")
-    runs = [train_command(None, str(folder), scheme="neighbor2neighbor", steps=12, out=str(tmp_path / f"run{i}"),
-                          announce=_quiet, assignments=TINY)[1] for i in range(2)]
+    outcomes = [train_command(None, str(folder), scheme="neighbor2neighbor", steps=12, out=str(tmp_path / f"run{i}"),
+                              announce=_quiet, assignments=TINY) for i in range(2)]
+    runs = [run for _, run in outcomes]
+    assert [entry["step"] for entry in outcomes[0][0]["validation_history"]] == [10, 12]  # the final state too
     first, second = (_weights(run) for run in runs)
     assert all(torch.equal(first[key], second[key]) for key in first)
     other = train_command(None, str(folder), scheme="neighbor2neighbor", steps=12, out=str(tmp_path / "run-seed"),

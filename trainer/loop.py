@@ -107,7 +107,7 @@ def evaluate(setup: TrainingSetup) -> dict[str, float]:
     with torch.no_grad():
         for batch in setup.validation:
             tensors = to_tensors(batch, setup.channels_last)
-            scores["loss"].append(float(scheme.loss(model, tensors, 1.0)))
+            scores["loss"].append(float(scheme.validation_loss(model, tensors)))
             if not setup.ground_truth:
                 continue
             level = scheme.noise_level(batch)
@@ -236,6 +236,22 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
                dynamic_ncols=True, file=sys.stderr)
     every_val, patience = config["validation"]["every_steps"], config["validation"]["patience"]
     save_every = config["checkpoint"]["every_minutes"] * 60.0
+    def validate() -> None:
+        """Score the model, log it, keep it as ``best.pt`` when it improves, count stale validations."""
+        validation_started = time.monotonic()
+        score = evaluate(setup)
+        state["history"].append({"step": state["step"], **score})
+        if writer is not None:
+            for key, value in score.items():
+                writer.add_scalar(f"validation/{key}", value, state["step"])
+            _write_images(writer, setup, state["step"])
+        if _better(score, state["best"], setup.ground_truth, config["validation"]["min_delta"]):
+            state["best"], state["best_step"], state["stale"] = score, state["step"], 0
+            save_checkpoint(run.best, payload(with_resume=False))
+        else:
+            state["stale"] += 1
+        state["elapsed"] += time.monotonic() - validation_started
+
     if resume is None:
         save_checkpoint(run.last, payload(with_resume=True))  # resumable from the very start
     last_save = time.monotonic()
@@ -274,19 +290,7 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
                 writer.add_scalar("speed/gflops_per_second", flops_per_step / max(seconds, 1e-9) / 1e9, state["step"])
 
             if setup.validation and state["step"] % every_val == 0:
-                validation_started = time.monotonic()
-                score = evaluate(setup)
-                state["history"].append({"step": state["step"], **score})
-                if writer is not None:
-                    for key, value in score.items():
-                        writer.add_scalar(f"validation/{key}", value, state["step"])
-                    _write_images(writer, setup, state["step"])
-                if _better(score, state["best"], setup.ground_truth, config["validation"]["min_delta"]):
-                    state["best"], state["best_step"], state["stale"] = score, state["step"], 0
-                    save_checkpoint(run.best, payload(with_resume=False))
-                else:
-                    state["stale"] += 1
-                state["elapsed"] += time.monotonic() - validation_started
+                validate()
                 if patience and state["stale"] >= patience:
                     stopped = "plateau"
                     break
@@ -297,6 +301,9 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
                 save_checkpoint(run.last, payload(with_resume=True))
                 last_save = time.monotonic()
     bar.close()
+    validated = bool(state["history"]) and state["history"][-1]["step"] == state["step"]
+    if setup.validation and stopped == "budget" and not validated:
+        validate()  # the final state competes for best.pt too
     if not setup.validation or state["best"] is None:
         save_checkpoint(run.best, payload(with_resume=False))  # nothing to compare: the latest state is the best
     save_checkpoint(run.last, payload(with_resume=True))

@@ -337,6 +337,9 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         setup, layout, noise = prepare(config, announce)
         if state is not None:
             announce(f"resuming {run.root} at step {state['step']}")
+            if state.get("data_fingerprint") != setup.data_fingerprint:
+                announce("warning: the training files differ from the run's (names or sizes changed); the run "
+                         "continues, but not exactly as it would have")
         else:
             stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
             target = Path(out) if out else Path("runs") / f"{stamp}-{setup.config['scheme']}"

@@ -51,6 +51,11 @@ class Scheme:
         """The training loss of ``model`` on a prepared batch; ``progress`` runs from 0 to 1 over the budget."""
         raise NotImplementedError
 
+    def validation_loss(self, model: torch.nn.Module, batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        """The figure compared between checkpoints when there is no ground truth: by default the training loss
+        at the end of the schedule. A scheme whose loss is not comparable between models overrides it."""
+        return self.loss(model, batch, 1.0)
+
     def noise_level(self, batch: dict[str, np.ndarray]) -> np.ndarray | None:
         """The per-pixel noise level of ``batch['noisy']`` for noise-map models, ``(N, 1, H, W)``, or None."""
         if self.sigma is None:

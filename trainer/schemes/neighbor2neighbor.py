@@ -53,6 +53,14 @@ class Neighbor2Neighbor(Scheme):
             batch["level"] = level
         return batch
 
+    def validation_loss(self, model: torch.nn.Module, batch: dict[str, torch.Tensor]) -> torch.Tensor:
+        """The reconstruction term only. The regulariser compares the network with itself (its target uses the
+        same network without gradient), so it is zero for the identity and would favour it between checkpoints;
+        the reconstruction term, a Noise2Noise loss, ranks denoisers correctly."""
+        first = subsample(batch["noisy"], batch["first"])
+        output = apply_model(model, first, batch.get("level"))
+        return torch.mean((output - subsample(batch["noisy"], batch["second"])) ** 2)
+
     def loss(self, model: torch.nn.Module, batch: dict[str, torch.Tensor], progress: float) -> torch.Tensor:
         noisy, level = batch["noisy"], batch.get("level")
         with torch.no_grad():
