@@ -198,6 +198,7 @@ def write_tiled_tiff(
                     compression=compression,
                     description=description if index == 0 else None,
                     metadata=None,
+                    maxworkers=1,  # one tile at a time: parallel compression would buffer hundreds of MB
                     **layout,
                 )
         os.replace(temporary, path)

@@ -292,14 +292,19 @@ def _stream_tiff(denoiser: Denoiser, source: Path, output: Path, record: dict[st
         plan = denoiser.plan(height, width, step=math.lcm(TIFF_TILE_MULTIPLE, denoiser.spec.alignment))
         rows = reflect_indices(plan.padded_height, height)
         cols = reflect_indices(plan.padded_width, width)
+        identity_cols = plan.padded_width == width
         out_dtype = np.dtype(np.float32) if as_float else reader.dtype
         tiles_bar.reset(total=len(plan.tiles) * reader.frames)
 
         def frame_tiles(frame: int) -> Iterator[np.ndarray]:
             def read_padded_rows(top: int, bottom: int) -> np.ndarray:
+                # Copies only where the padding reflects rows or columns: a band of a wide image is large.
                 wanted = rows[top:bottom]
                 first, last = int(wanted.min()), int(wanted.max()) + 1
-                return reader.read_rows(frame, first, last)[wanted - first][:, cols]
+                band = reader.read_rows(frame, first, last)
+                if not np.array_equal(wanted, np.arange(first, last)):
+                    band = band[wanted - first]
+                return band if identity_cols else band[:, cols]
 
             crop = reader.read_rows(frame, y0, y1)[:, x0:x1] if denoiser.spec.takes_noise_map else None
             level = denoiser.sigma_for(crop)
