@@ -124,33 +124,29 @@ class ModelSpec:
 
     @classmethod
     def from_metadata(cls, metadata: dict[str, Any]) -> "ModelSpec":
-        """Build from the JSON document an exported model carries under the ``grainwright`` key."""
-        architecture = metadata.get("architecture", {})
-        if isinstance(architecture, str):
-            architecture = {"name": architecture}
-
-        def pick(key: str, default: Any = None) -> Any:
-            return metadata.get(key, architecture.get(key, default))
-
-        if pick("receptive_field") is None:
+        """Build from the JSON document an exported model carries under the ``grainwright`` key (written by
+        ``grainwright.models.export.build_metadata``)."""
+        if metadata.get("receptive_field") is None:
             raise ConfigError("model metadata has no receptive_field")
+
+        def number(key: str, kind: type = float, source: dict[str, Any] = metadata) -> Any:
+            value = source.get(key)
+            return None if value is None else kind(value)
+
         normalization = metadata.get("normalization") or {}
-        low, high = normalization.get("low"), normalization.get("high")
-        training = metadata.get("training_noise") or {}
-        sigma = training.get("sigma_native")
         return cls(
-            receptive_field=int(pick("receptive_field")),
-            alignment=int(pick("alignment", 1)),
-            margin=None if pick("tile_margin") is None else int(pick("tile_margin")),
-            channels=None if pick("channels") is None else int(pick("channels")),
-            takes_noise_map=bool(pick("takes_noise_map", False)),
-            architecture=str(architecture.get("name", metadata.get("architecture_name", "unknown"))),
-            macs_per_pixel=None if pick("macs_per_pixel") is None else float(pick("macs_per_pixel")),
-            low=None if low is None else float(low),
-            high=None if high is None else float(high),
+            receptive_field=int(metadata["receptive_field"]),
+            alignment=int(metadata.get("alignment", 1)),
+            margin=number("tile_margin", int),
+            channels=number("channels", int),
+            takes_noise_map=bool(metadata.get("takes_noise_map", False)),
+            architecture=str((metadata.get("architecture") or {}).get("name", "unknown")),
+            macs_per_pixel=number("macs_per_pixel"),
+            low=number("low", source=normalization),
+            high=number("high", source=normalization),
             dtype=normalization.get("dtype"),
-            training_sigma=None if sigma is None else float(sigma),
-            training_bit_depth=normalization.get("bit_depth"),
+            training_sigma=number("sigma_native", source=metadata.get("training_noise") or {}),
+            training_bit_depth=number("bit_depth", int, source=normalization),
             metadata=dict(metadata),
         )
 

@@ -90,8 +90,10 @@ def build_conv_model(
         document = {
             "format": "grainwright-model",
             "format_version": 1,
-            "architecture": {"name": "test-conv", "receptive_field": 2 * radius + 1,
-                             "alignment": 2 if pooled else 1, "macs_per_pixel": 9 * width * width * layers},
+            "architecture": {"name": "test-conv"},
+            "receptive_field": 2 * radius + 1,
+            "alignment": 2 if pooled else 1,
+            "macs_per_pixel": 9 * width * width * layers,
             "channels": channels,
             "takes_noise_map": noise_map,
             "normalization": {"dtype": "uint16", "bit_depth": 10, "low": 0.0, "high": NATIVE_HIGH},
