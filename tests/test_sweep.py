@@ -23,9 +23,10 @@ def test_trials_are_base_plus_changes():
     regimes = sweep.regime_trials(unet)
     assert all(t["model"] == "unet-small" and t["hyper"] == unet["hyper"] for t in regimes)
     assert {(t["patch_size"], t["batch_size"]) for t in regimes} >= {(64, 8), (32, 32)}
-    noise = sweep.noise_trials(unet)  # a U-Net winner: the noise cases use the default residual size
+    small = next(t for t in trials if t["name"] == "residual 8x32")
+    noise = sweep.noise_trials(small)
     assert {t["case"] for t in noise} == {"poisson-gaussian", "speckle"}
-    assert all(t["hyper"] == sweep.BASE["hyper"] for t in noise)
+    assert all(t["hyper"] == small["hyper"] and t["name"].endswith("residual 8x32") for t in noise)
     noisemap = next(t for t in noise if t["model"] == "residual-noisemap")
     assert noisemap["set"]["data.transform"] == "none" and noisemap["case"] == "poisson-gaussian"
 

@@ -78,17 +78,19 @@ def regime_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
 
 
 def noise_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
-    """Poisson-Gaussian: Anscombe domain against a noise-map model; speckle: neighbor2neighbor."""
-    residual = best["hyper"] if best["model"] == "residual" else BASE["hyper"]
+    """Poisson-Gaussian: Anscombe domain against a noise-map model, both with the best ``residual`` size (the
+    noise-map model is a residual stack); speckle: neighbor2neighbor with the best Gaussian configuration."""
+    size = f"{best['hyper']['depth']}x{best['hyper']['width']}"
     regime = {"patch_size": best["patch_size"], "batch_size": best["batch_size"], "set": dict(best["set"])}
+    residual = {**regime, "hyper": best["hyper"]}
     return [
-        trial("Poisson-Gaussian: recorrupted, Anscombe domain", case="poisson-gaussian", model="residual",
-              hyper=residual, **regime),
-        trial("Poisson-Gaussian: neighbor2neighbor, noise-map model, linear domain", case="poisson-gaussian",
-              scheme="neighbor2neighbor", model="residual-noisemap", hyper=residual,
-              **{**regime, "set": {**regime["set"], "data.transform": "none"}}),
-        trial("speckle: neighbor2neighbor, linear domain", case="speckle", scheme="neighbor2neighbor",
-              model="residual", hyper=residual, **regime),
+        trial(f"Poisson-Gaussian: recorrupted, Anscombe domain, residual {size}", case="poisson-gaussian",
+              model="residual", **residual),
+        trial(f"Poisson-Gaussian: neighbor2neighbor, noise-map model, linear domain, residual {size}",
+              case="poisson-gaussian", scheme="neighbor2neighbor", model="residual-noisemap",
+              **{**residual, "set": {**regime["set"], "data.transform": "none"}}),
+        trial("speckle: neighbor2neighbor, linear domain, residual " + size, case="speckle",
+              scheme="neighbor2neighbor", model="residual", **residual),
     ]
 
 
@@ -315,7 +317,9 @@ def run_search(args: argparse.Namespace) -> int:
             architecture = _best(results, [spec["name"] for spec in architecture_trials()])
             run_stage(regime_trials(results["trials"][architecture]["spec"]), stage, args.cpu_seconds)
         elif stage == "noise":
-            run_stage(noise_trials(winner()), stage, args.cpu_seconds)
+            residuals = [key for key, record in results["trials"].items()
+                         if record["spec"]["case"] == "gaussian" and record["spec"]["model"] == "residual"]
+            run_stage(noise_trials(results["trials"][_best(results, residuals)]["spec"]), stage, args.cpu_seconds)
         elif stage == "long":
             run_stage([winner()], stage, args.long_cpu_seconds, suffix=f", {args.long_cpu_seconds:.0f} CPU-s")
         else:
