@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import importlib
 
-HELP = "measure speed and quality side by side (models, train, runtime, baselines)"
+HELP = "measure speed and quality side by side (models, train, runtime, baselines, sizes)"
 
 # Each target module is torch-free at import time and exposes HELP, add_arguments(parser) and run(args).
 BENCH_TARGETS: dict[str, str] = {
@@ -12,6 +12,7 @@ BENCH_TARGETS: dict[str, str] = {
     "train": "grainwright.inference.commands.bench_train",
     "runtime": "grainwright.inference.commands.bench_runtime",
     "baselines": "grainwright.inference.commands.bench_baselines",
+    "sizes": "grainwright.inference.commands.bench_sizes",
 }
 
 
