@@ -53,7 +53,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="sizes of the generated TIFFs for the peak-memory runs (megapixels, commas; "
                         "'none' to skip)")
     parser.add_argument("--rss-model", metavar="PATH", help="model for the peak-memory runs (default: MODEL)")
-    parser.add_argument("--profile", metavar="PATH",
+    parser.add_argument("--profile", "--profile-out", dest="profile", metavar="PATH",
                         help="also measure this machine's sizing profile (reference conv stacks) and write it here")
     parser.add_argument("--json", metavar="PATH", help="write all figures as JSON here")
 
