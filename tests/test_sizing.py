@@ -111,3 +111,56 @@ def test_fit_assignments_name_a_bad_profile(tmp_path):
     path.write_text("[1, 2")
     with pytest.raises(InputError, match="broken-profile.json"):
         sizing.fit_assignments(str(path), 100.0, "64x64")
+
+
+def _noisy_data(root):
+    import numpy as np
+    from skimage import data
+
+    from grainwright.inference.imageio import write_image
+
+    rng = np.random.default_rng(0)
+    for index, (top, left) in enumerate(((0, 0), (100, 300), (300, 100), (250, 250))):
+        clean = data.camera()[top:top + 64, left:left + 64] / 255.0  # scikit-image sample image, open data
+        noisy = (clean + rng.normal(0, 0.1, clean.shape)).astype(np.float32)[..., None]
+        write_image(root / "noisy" / f"{index}.npy", noisy)
+    return root
+
+
+@pytest.mark.slow
+def test_train_fits_the_model_to_a_profile(tmp_path, capsys, rungs):
+    import tomllib
+
+    from grainwright.inference.cli import main
+
+    profile = tmp_path / "plant.json"
+    profile.write_text(json.dumps(PROFILE))
+    target = sizing.predict(rungs[2], PROFILE, (640, 480)).milliseconds * 1.001
+    code = main(["train", "--data", str(_noisy_data(tmp_path / "data")), "--steps", "2", "--out",
+                 str(tmp_path / "run"), "--fit-to", str(profile), "--ms-per-frame", f"{target:.1f}", "--frame",
+                 "640x480", "--set", "logging.progress=false", "--set", "logging.tensorboard=false",
+                 "--set", "data.patch_size=32", "--set", "data.batch_size=2", "--set", "threads=1"])
+    said = capsys.readouterr().out
+    assert code == 0
+    assert "picked residual 8x32, predicted" in said
+    config = tomllib.loads((tmp_path / "run" / "config.toml").read_text())
+    assert config["model"]["name"] == "residual"
+    assert config["model"]["hyper"]["depth"] == 8 and config["model"]["hyper"]["width"] == 32
+
+
+@pytest.mark.parametrize("extra, problem", [
+    (["--ms-per-frame", "100"], "--frame"),
+    (["--fit-to", "plant.json", "--frame", "64x64"], "--ms-per-frame"),
+    (["--fit-to", "missing.json", "--ms-per-frame", "100", "--frame", "64x64"], "missing.json"),
+    (["--fit-to", "plant.json", "--ms-per-frame", "0.001", "--frame", "64x64"], "smallest size"),
+    (["--fit-to", "plant.json", "--ms-per-frame", "100", "--frame", "64by64"], "--frame"),
+])
+def test_train_fit_options_refuse_bad_input(tmp_path, capsys, monkeypatch, extra, problem):
+    from grainwright.inference.cli import main
+
+    (tmp_path / "plant.json").write_text(json.dumps(PROFILE))
+    monkeypatch.chdir(tmp_path)
+    code = main(["train", "--data", str(tmp_path), "--out", str(tmp_path / "run")] + extra)
+    assert code == 2
+    assert problem in capsys.readouterr().err
+    assert not (tmp_path / "run").exists()
