@@ -40,7 +40,8 @@ def box_mean_model(path: Path, channels: int = 1) -> Path:
     model.ir_version = 8
     metadata = {
         "format": "grainwright-model", "format_version": 1,
-        "architecture": {"name": "box-mean", "receptive_field": 3, "alignment": 1},
+        "architecture": {"name": "box-mean", "hyper": {}},
+        "receptive_field": 3, "alignment": 1, "tile_margin": 1,
         "channels": channels, "takes_noise_map": False,
         "normalization": {"dtype": "uint8", "bit_depth": 8, "low": 0.0, "high": 255.0},
     }
