@@ -169,11 +169,11 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
     normalisation, and time the file-to-file ``denoise`` path on a generated 16-bit TIFF frame of ``frame``
     pixels.
 
-    Without a ``profile``, each of the ``repeats`` rounds first measures a fresh FP32 profile of this machine and
-    then times every target, so that the prediction and the measurement it is compared with see the same load
-    on a shared machine; the rungs are picked with the first round's profile. The figures are the medians over
-    the rounds, and the error is the median of the rounds' ``predicted / measured - 1``. Returns one row per
-    target.
+    Without a ``profile``, each of the ``repeats`` rounds first measures a fresh FP32 profile of this machine,
+    and re-measures the seconds per GMAC at the rung's width right before each timed ``denoise``, so that the
+    prediction and the measurement it is compared with see the same load on a shared machine; the rungs are
+    picked with the first round's profile. The figures are the medians over the rounds, and the error is the
+    median of the rounds' ``predicted / measured - 1``. Returns one row per target.
     """
     import tempfile
     from pathlib import Path
@@ -183,7 +183,7 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
     import torch
 
     from grainwright.inference.imageio import write_image
-    from grainwright.inference.machine_profile import measure_profile
+    from grainwright.inference.machine_profile import REFERENCE_DEPTH, measure_profile, seconds_per_gmac
     from grainwright.inference.normalization import Normalization
     from grainwright.inference.runner import Denoiser, ModelSpec
     from grainwright.inference.runtime_batch import denoise_files
@@ -219,6 +219,9 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
         for round_index in range(repeats):
             current = first if round_index == 0 else round_profile()
             for row, (item, denoiser) in zip(rows, runs):
+                if profile is None:  # the network's speed just now, at this rung's width
+                    speed = seconds_per_gmac(REFERENCE_DEPTH, item.width, "fp32", threads, repeats=1)
+                    current = {**current, "seconds_per_gmac": {"fp32": {str(item.width): speed}}}
                 start = time.perf_counter()
                 [result] = denoise_files(denoiser, [source], folder / "out", overwrite=True)
                 row["measured"].append(1000.0 * (time.perf_counter() - start))
