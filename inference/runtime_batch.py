@@ -29,7 +29,7 @@ from tqdm import tqdm
 
 from grainwright.inference import __version__
 from grainwright.inference.errors import GrainwrightError, InputError
-from grainwright.inference.estimation import estimate_sigma
+from grainwright.inference.estimation import correct_fixed_pattern, detect_banding, estimate_sigma
 from grainwright.inference.imageio import (
     SUPPORTED_SUFFIXES,
     effective_bit_depth,
@@ -49,6 +49,8 @@ DOMAIN_FACTOR = 2.0
 SAMPLE_EDGE = 1024
 # Below this edge (pixels) the wavelet MAD estimate has too few coefficients to be worth a warning.
 MIN_ESTIMATE_EDGE = 16
+# When to remove row/column banding before the model sees a frame (the trainer does the same before training).
+FIXED_PATTERN_MODES = ("auto", "always", "never")
 
 
 @dataclass
@@ -146,6 +148,7 @@ def denoise_files(
     overwrite: bool = False,
     keep_mixed: bool = False,
     into_input_folder: bool = False,
+    fixed_pattern: str = "auto",
     progress: bool = False,
 ) -> Iterator[FileResult]:
     """Denoise files into ``out_dir``, yielding one :class:`FileResult` per input.
@@ -170,6 +173,11 @@ def denoise_files(
         Let a batch go on although existing outputs were made with another model or settings (they are kept).
     into_input_folder : bool
         Allow ``out_dir`` to be an input's own folder.
+    fixed_pattern : {"auto", "always", "never"}
+        Remove row/column banding (``estimation.correct_fixed_pattern``) before denoising: ``auto`` when
+        ``estimation.detect_banding`` flags the frame. Self-supervised models cannot remove a fixed pattern
+        themselves. Streamed (tiled or striped) TIFFs are never corrected, since the estimate needs whole rows
+        and columns; their result carries a note when a correction was asked for.
     progress : bool
         Show tqdm bars over files and tiles.
 
@@ -179,6 +187,9 @@ def denoise_files(
         Before anything is written: no inputs, output folder is an input folder, or existing outputs made with
         another model or settings (unless ``overwrite`` or ``keep_mixed``).
     """
+    if fixed_pattern not in FIXED_PATTERN_MODES:
+        raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
+                               f"got {fixed_pattern!r}")
     out_dir = Path(out_dir)
     suffix = None if out_format is None else "." + out_format.lower().lstrip(".")
     if suffix is not None and suffix not in SUPPORTED_SUFFIXES:
@@ -193,7 +204,8 @@ def denoise_files(
                                        "another -o folder, or allow it with --into-input-folder")
     expected = {
         "model_sha256": file_sha256(denoiser.path),
-        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float},
+        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float,
+                     "fixed_pattern": fixed_pattern},
     }
     if not overwrite and not keep_mixed:
         changed = [job.output for job in jobs if job.output.exists()
@@ -208,7 +220,8 @@ def denoise_files(
     tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)
     try:
         for job in jobs:
-            result = _process(denoiser, job, expected, overwrite=overwrite, as_float=as_float, tiles_bar=tiles_bar)
+            result = _process(denoiser, job, expected, overwrite=overwrite, as_float=as_float,
+                              fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
             files_bar.update(1)
             yield result
     finally:
@@ -217,7 +230,7 @@ def denoise_files(
 
 
 def _process(denoiser: Denoiser, job: Job, expected: dict[str, Any], *, overwrite: bool, as_float: bool,
-             tiles_bar: tqdm) -> FileResult:
+             fixed_pattern: str, tiles_bar: tqdm) -> FileResult:
     start = time.perf_counter()
     source, output = job.source, job.output
     try:
@@ -244,9 +257,14 @@ def _process(denoiser: Denoiser, job: Job, expected: dict[str, Any], *, overwrit
         }
         streamed = output.suffix.lower() in (".tif", ".tiff") and source.suffix.lower() in (".tif", ".tiff") \
             and can_stream(source)
-        runner = _stream_tiff if streamed else _in_memory
-        megapixels, notes = runner(denoiser, source, output, record, overwrite=overwrite, as_float=as_float,
-                                   tiles_bar=tiles_bar)
+        if streamed:
+            megapixels, notes = _stream_tiff(denoiser, source, output, record, overwrite=overwrite,
+                                             as_float=as_float, tiles_bar=tiles_bar)
+            if fixed_pattern != "never":
+                notes.append("fixed-pattern correction is not applied to streamed TIFFs (it needs whole rows)")
+        else:
+            megapixels, notes = _in_memory(denoiser, source, output, record, overwrite=overwrite,
+                                           as_float=as_float, fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
     except GrainwrightError as error:
         return FileResult(source, None, "failed", str(error), seconds=time.perf_counter() - start)
     except MemoryError:
@@ -255,7 +273,7 @@ def _process(denoiser: Denoiser, job: Job, expected: dict[str, Any], *, overwrit
 
 
 def _in_memory(denoiser: Denoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
-               as_float: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
+               as_float: bool, fixed_pattern: str, tiles_bar: tqdm) -> tuple[float, list[str]]:
     frames = read_frames(source)
     count, height, width, channels = frames.shape
     denoiser.check_channels(channels, source)
@@ -266,12 +284,18 @@ def _in_memory(denoiser: Denoiser, source: Path, output: Path, record: dict[str,
         notes.append(f"decoded whole (not a tiled or striped TIFF): needs about {needed / 2**20:.0f} MiB")
     plan = denoiser.plan(height, width)
     tiles_bar.reset(total=len(plan.tiles) * count)
-    levels, results = [], []
+    levels, results, corrected = [], [], []
     for frame in frames:
-        level = denoiser.sigma_for(frame)
+        correct = fixed_pattern == "always" or (fixed_pattern == "auto" and detect_banding(frame).flagged)
+        corrected.append(correct)
+        model_input = correct_fixed_pattern(frame) if correct else frame
+        level = denoiser.sigma_for(model_input)
         levels.append(level)
-        values = denoiser.run(frame, sigma=level, as_float=True, progress=tiles_bar.update)
+        values = denoiser.run(model_input, sigma=level, as_float=True, progress=tiles_bar.update)
         results.append(values if as_float else to_dtype(values, frames.dtype, denoiser.spec))
+    record["fixed_pattern_corrected"] = corrected
+    if any(corrected):
+        notes.append(f"row/column banding removed before denoising in {sum(corrected)} of {count} frame(s)")
     record["noise_sigma_used"] = _noise_note(denoiser) or (levels if denoiser.spec.takes_noise_map else None)
     stack = np.stack(results)
     try:

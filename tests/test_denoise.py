@@ -15,7 +15,7 @@ from grainwright.inference.imageio import read_frames, read_text, write_image
 from grainwright.inference.runner import Denoiser, file_sha256
 from test_runner import NATIVE_HIGH, build_conv_model
 
-BLOCK_TORCH = "import sys; sys.modules['torch'] = None\n"
+from no_torch import BLOCK_TORCH
 
 
 @pytest.fixture
@@ -166,3 +166,32 @@ def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
     assert result.returncode == 0, result.stderr
     assert "done 4, skipped 0, failed 0" in result.stdout
     assert read_frames(batch["out"] / "b.tif").shape == (3, 40, 30, 1)
+
+
+def test_row_banding_is_removed_before_denoising_when_flagged(tmp_path, capsys):
+    # A smooth ramp with independent row offsets (fixed-pattern noise) and white noise: the banding flag and
+    # correction are the foundation's (estimation.detect_banding / correct_fixed_pattern), as in training.
+    from grainwright.inference.estimation import correct_fixed_pattern, detect_banding, estimate_sigma
+
+    rng = np.random.default_rng(3)
+    ramp = np.linspace(300, 800, 96)[None, :] * np.ones((96, 1))
+    frame = ramp + rng.normal(0, 12, (96, 96)) + rng.normal(0, 30, (96, 1))
+    frame = np.clip(np.rint(frame), 0, NATIVE_HIGH).astype(np.uint16)[:, :, None]
+    assert detect_banding(frame).flagged
+    write_image(tmp_path / "in" / "banded.tif", frame)
+    model = build_conv_model(tmp_path / "m.onnx", training_sigma=20.0)
+    denoiser = Denoiser(model, threads=1)
+
+    assert _run(model, tmp_path / "in", "-o", tmp_path / "auto") == 0
+    assert "banding removed" in capsys.readouterr().err
+    corrected = read_frames(tmp_path / "auto" / "banded.tif")[0]
+    expected = denoiser.run(correct_fixed_pattern(frame), as_float=True)
+    np.testing.assert_allclose(corrected, np.clip(np.rint(expected), 0, NATIVE_HIGH), atol=1)
+    assert json.loads(read_text(tmp_path / "auto" / "banded.tif"))["fixed_pattern_corrected"] == [True]
+
+    assert _run(model, tmp_path / "in", "-o", tmp_path / "never", "--fixed-pattern", "never") == 0
+    kept = read_frames(tmp_path / "never" / "banded.tif")[0]
+    np.testing.assert_array_equal(kept, denoiser.run(frame))
+    # The banding left in the output shows as extra spread of the row means.
+    row_spread = lambda image: float(np.std(image[:, :, 0].astype(float).mean(axis=1) - ramp.mean(axis=1)))
+    assert row_spread(corrected) < 0.5 * row_spread(kept)

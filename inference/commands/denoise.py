@@ -9,7 +9,7 @@ from tqdm import tqdm
 
 from grainwright.inference.errors import ConfigError
 from grainwright.inference.runner import ENSEMBLE_SIZES, NOISE_SIGMA_MODES, Denoiser, ModelSpec
-from grainwright.inference.runtime_batch import denoise_files
+from grainwright.inference.runtime_batch import FIXED_PATTERN_MODES, denoise_files
 
 HELP = "denoise images with an exported ONNX model (tiled, bounded memory, resumable; no torch needed)"
 
@@ -55,6 +55,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="for a model without grainwright metadata: its receptive field (odd, pixels)")
     parser.add_argument("--alignment", type=int, default=1, metavar="N",
                         help="with --receptive-field: input sizes must be multiples of N (default 1)")
+    parser.add_argument("--fixed-pattern", choices=FIXED_PATTERN_MODES, default="auto",
+                        help="remove row/column banding before denoising: auto (when detected in the frame, as the "
+                        "trainer does), always or never; not applied to streamed large TIFFs")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
 
 
@@ -77,7 +80,7 @@ def run(args: argparse.Namespace) -> int:
     results = denoise_files(
         denoiser, args.inputs, args.out_dir, recursive=args.recursive, out_format=args.format,
         as_float=args.float32, overwrite=args.overwrite, keep_mixed=args.keep_mixed,
-        into_input_folder=args.into_input_folder, progress=not args.quiet,
+        into_input_folder=args.into_input_folder, fixed_pattern=args.fixed_pattern, progress=not args.quiet,
     )
     for result in results:
         counts[result.status] += 1
