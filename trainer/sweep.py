@@ -208,13 +208,14 @@ def evaluate(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
 
 
 def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, Any], cpu_seconds: float,
-              threads: int, seed: int) -> dict[str, Any]:
-    """Train one trial for ``cpu_seconds`` worth of steps, export it, evaluate it; returns its record."""
+              threads: int, seed: int, steps: int | None = None) -> dict[str, Any]:
+    """Train one trial for ``cpu_seconds`` worth of steps (or exactly ``steps``), export it, evaluate it;
+    returns its record."""
     from grainwright.models.export import export_checkpoint
     from grainwright.trainer.run import train_command
 
     per_step = cpu_seconds_per_step(spec, threads)
-    steps = max(20, int(cpu_seconds / per_step))
+    steps = steps or max(20, int(cpu_seconds / per_step))
     settings = [f"model.name=\"{spec['model']}\"", f"data.patch_size={spec['patch_size']}",
                 f"data.batch_size={spec['batch_size']}", f"threads={threads}", f"seed={seed}",
                 f"validation.every_steps={max(10, steps // 8)}", "validation.patches=32", "validation.patience=0",
@@ -282,14 +283,15 @@ def run_search(args: argparse.Namespace) -> int:
                 _save(path, results)
         return cases[case]
 
-    def run_stage(specs: list[dict[str, Any]], stage: str, cpu_seconds: float, suffix: str = "") -> list[str]:
+    def run_stage(specs: list[dict[str, Any]], stage: str, cpu_seconds: float, suffix: str = "",
+                  steps: int | None = None) -> list[str]:
         names = [spec["name"] + suffix for spec in specs]
         for spec, key in zip(specs, names):
             if key in results["trials"]:
                 continue
             print(f"-- [{stage}] {key}", flush=True)
             folder, images = case_data(spec["case"])
-            record = run_trial(spec, folder, work, images, cpu_seconds, args.threads, args.seed)
+            record = run_trial(spec, folder, work, images, cpu_seconds, args.threads, args.seed, steps)
             record["stage"] = stage
             results["trials"][key] = record
             _save(path, results)
@@ -320,6 +322,8 @@ def run_search(args: argparse.Namespace) -> int:
             residuals = [key for key, record in results["trials"].items()
                          if record["spec"]["case"] == "gaussian" and record["spec"]["model"] == "residual"]
             run_stage(noise_trials(results["trials"][_best(results, residuals)]["spec"]), stage, args.cpu_seconds)
+        elif stage == "long" and args.long_steps:
+            run_stage([winner()], stage, 0.0, suffix=f", {args.long_steps} steps", steps=args.long_steps)
         elif stage == "long":
             run_stage([winner()], stage, args.long_cpu_seconds, suffix=f", {args.long_cpu_seconds:.0f} CPU-s")
         else:
@@ -361,6 +365,8 @@ def add_search_arguments(parser: argparse.ArgumentParser) -> None:
                         help="CPU-seconds of training per trial (default 120; the full budget is 1200)")
     parser.add_argument("--long-cpu-seconds", type=float, default=600.0, metavar="S",
                         help="CPU-seconds for the winner's longer run (default 600)")
+    parser.add_argument("--long-steps", type=int, default=0, metavar="N",
+                        help="give the winner's longer run exactly N steps instead of --long-cpu-seconds")
     parser.add_argument("--threads", type=int, default=2, metavar="N", help="torch and ONNX Runtime threads")
     parser.add_argument("--seed", type=int, default=0)
 

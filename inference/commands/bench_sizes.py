@@ -40,6 +40,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="--sweep: CPU-seconds of training per trial (the full budget is 1200 = 10 min x 2 cores)")
     parser.add_argument("--long-cpu-seconds", type=float, default=600.0, metavar="S",
                         help="--sweep: CPU-seconds for the winner's longer run")
+    parser.add_argument("--long-steps", type=int, default=0, metavar="N",
+                        help="--sweep: give the winner's longer run exactly N steps instead")
     parser.add_argument("--seed", type=int, default=0, help="--sweep: seed of the noise and of training")
 
 
