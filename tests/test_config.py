@@ -19,8 +19,12 @@ def test_defaults_are_valid():
 
 @pytest.mark.parametrize("name", SHIPPED)
 def test_shipped_configs_load(name):
+    from grainwright.models.registry import build_model
+
     config = load_config(name)
-    assert config["model"]["name"] == "residual"
+    # The shipped model section must build (registry check of name and hyper-parameters).
+    model = build_model(config["model"]["name"], 1, **config["model"]["hyper"])
+    assert model.parameter_count() > 0
 
 
 def test_unknown_key_names_the_path_and_the_closest_key():

@@ -62,7 +62,7 @@ def test_budget_must_be_positive(tmp_path):
 def test_whole_demo_with_a_tiny_budget(tmp_path):
     settings = DemoSettings(
         steps=4, train_frames=3, holdout_frames=1, frame_size=64, large_size=(96, 160), threads=1, progress=False,
-        train_settings=["model.hyper={depth=3, width=8}", "data.batch_size=4", "data.patch_size=48",
+        train_settings=['model.name="residual"', "model.hyper={depth=3, width=8}", "data.batch_size=4", "data.patch_size=48",
                         "validation.every_steps=2", "validation.patches=4", "logging.tensorboard=false"],
     )
     lines: list[str] = []
