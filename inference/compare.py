@@ -95,6 +95,8 @@ class CompareOptions:
         Seed of the SURE probes.
     overwrite : bool
         Replace an existing, non-empty report folder.
+    size_plot : str or None
+        An SVG of the model sizes tried (``size_plot.size_search_svg``) to show in the report.
     """
 
     quick: bool = False
@@ -103,6 +105,7 @@ class CompareOptions:
     sure_probes: int = 1
     seed: int = 0
     overwrite: bool = False
+    size_plot: str | None = None
 
     @property
     def tuning_crop(self) -> int:
@@ -786,4 +789,5 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
         plot_quality_label="PSNR (dB)" if ground_truth else "SURE estimated PSNR (dB)",
         panels=panels,
         notes=notes,
+        size_plot=options.size_plot,
     )

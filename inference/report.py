@@ -95,6 +95,7 @@ class ReportContent:
     plot_quality_label: str
     panels: list[ImagePanels]
     notes: list[str] = field(default_factory=list)
+    size_plot: str | None = None  # SVG: quality versus time per frame of the model sizes tried
 
 
 def write_report(out_dir: str | Path, content: ReportContent, *, overwrite: bool = False) -> Path:
@@ -321,6 +322,10 @@ def _html_page(content: ReportContent, image_dir: Path) -> str:
     points = [(row["method"], row.get("seconds_per_megapixel") or math.nan, row.get(content.plot_quality_key))
               for row in content.ranking if row.get(content.plot_quality_key) is not None]
     out.append(quality_speed_svg(points, content.plot_quality_label))
+    if content.size_plot:
+        out.append("<h2>Model sizes tried</h2><p>Mean PSNR of each size in the recorded size search against its "
+                   "predicted time per frame on the profiled machine; the chosen size is ringed.</p>")
+        out.append(content.size_plot)
     if content.details:
         out.append("<h2>Detail retention in regions of interest</h2>")
         out.append("<p>Contrast retention: (feature mean - background mean) in the output divided by the same "

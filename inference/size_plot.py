@@ -11,13 +11,16 @@ time per frame predicted for a machine profile (:func:`points_from_sweep`); the 
 from __future__ import annotations
 
 import html
+import json
 import math
 import os
+import re
 import tempfile
 from pathlib import Path
 from typing import Any
 
-from grainwright.inference.machine_profile import seconds_per_gmac_for
+from grainwright.inference.errors import ConfigError, InputError
+from grainwright.inference.machine_profile import load_profile, seconds_per_gmac_for
 from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
 
 
@@ -113,6 +116,29 @@ def points_from_sweep(results: dict[str, Any], profile: dict[str, Any], frame: t
         ms = predicted_ms(record["macs_per_pixel"], hyper.get("width", 32), receptive, alignment, profile, frame)
         points.append((name, ms, record["mean"]["1"]))
     return points
+
+
+def size_search_svg(results_path: str | Path, profile_path: str | Path, frame: str = "1024x1024",
+                    target_ms: float | None = None, case: str = "gaussian") -> str:
+    """The quality-versus-time plot of a recorded size search (``grainwright bench sizes --sweep``, its JSON) for
+    the machine in ``profile_path`` and frames of ``frame`` (``"WxH"``, pixels). The chosen size, ringed, is the
+    best mean PSNR among the sizes predicted to stay under ``target_ms`` (all sizes when it is None)."""
+    match = re.fullmatch(r"\s*(\d+)\s*[xX]\s*(\d+)\s*", str(frame))
+    if not match or min(int(match.group(1)), int(match.group(2))) < 1:
+        raise ConfigError(f"frame size must look like 1024x768 (width x height in pixels), got {frame!r}")
+    try:
+        results = json.loads(Path(results_path).read_text(encoding="utf-8"))
+        trials = results["trials"]
+    except (OSError, ValueError, KeyError, TypeError) as error:
+        raise InputError(results_path, f"not a size-search results file ({error})") from None
+    if not isinstance(trials, dict):
+        raise InputError(results_path, "not a size-search results file (no trials)")
+    points = points_from_sweep(results, load_profile(profile_path), (int(match.group(1)), int(match.group(2))), case)
+    if not points:
+        raise InputError(results_path, f"no '{case}' trials recorded")
+    fitting = [point for point in points if target_ms is None or point[1] <= target_ms]
+    chosen = max(fitting, key=lambda point: point[2])[0] if fitting else None
+    return size_plot_svg(points, chosen=chosen, target_ms=target_ms)
 
 
 def write_size_plot(path: str | Path, svg: str) -> Path:

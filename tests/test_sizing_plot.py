@@ -38,3 +38,48 @@ def test_points_from_a_search_result_use_the_profile():
     # One tile covers a 256 x 256 frame for a receptive field of 17: network on the frame's pixels only.
     expected = 1000 * (1e4 * 256 * 256 / 1e9 * 0.2 + 0.1 + 0.5 * 256 * 256 / 1e6)
     assert ms == predicted_ms(1e4, 16, 17, 1, PROFILE, (256, 256)) == expected
+
+
+def test_compare_report_shows_the_sizes_tried(tmp_path):
+    """A recorded search and a profile give the plot in the compare report; the chosen size is the best PSNR
+    predicted under the target (the times follow ``predicted_ms``, checked above)."""
+    import json
+
+    import numpy as np
+    import pytest
+    from skimage import data
+
+    from grainwright.inference.cli import main
+    from grainwright.inference.errors import InputError
+    from grainwright.inference.imageio import write_image
+    from grainwright.inference.size_plot import size_search_svg
+
+    def record(depth: int, width: int, psnr: float) -> dict:
+        return {"spec": {"case": "gaussian", "hyper": {"depth": depth, "width": width}},
+                "macs_per_pixel": 9.0 * width * width * depth, "mean": {"1": psnr}}
+
+    search = tmp_path / "search.json"
+    search.write_text(json.dumps({"trials": {"small": record(4, 16, 29.0), "large": record(16, 64, 30.5)}}))
+    profile = tmp_path / "profile.json"
+    profile.write_text(json.dumps(PROFILE))
+    small_ms = predicted_ms(9.0 * 16 * 16 * 4, 16, 9, 1, PROFILE, (512, 512))
+    large_ms = predicted_ms(9.0 * 64 * 64 * 16, 64, 33, 1, PROFILE, (512, 512))
+    assert small_ms < large_ms
+    texts = [e.text for e in ElementTree.fromstring(
+        size_search_svg(search, profile, "512x512", (small_ms + large_ms) / 2)).iter(f"{SVG}text")]
+    assert "small (chosen)" in texts
+    texts = [e.text for e in ElementTree.fromstring(size_search_svg(search, profile, "512x512")).iter(f"{SVG}text")]
+    assert "large (chosen)" in texts
+    with pytest.raises(InputError, match="not a size-search results file"):
+        size_search_svg(profile, profile)
+
+    noisy = tmp_path / "noisy"
+    rng = np.random.default_rng(0)
+    write_image(noisy / "camera.png", np.clip(data.camera()[:64, :64] + rng.normal(0, 10, (64, 64)), 0, 255)
+                .round().astype(np.uint8))
+    code = main(["compare", "--noisy", str(noisy), "--methods", "gaussian", "-o", str(tmp_path / "report"),
+                 "--quick", "--threads", "1", "--size-search", str(search), "--profile", str(profile),
+                 "--frame", "512x512"])
+    assert code == 0
+    page = (tmp_path / "report" / "index.html").read_text(encoding="utf-8")
+    assert "Model sizes tried" in page and "large (chosen)" in page

@@ -5,6 +5,8 @@ import argparse
 import sys
 
 from grainwright.inference.compare import NOISE_CHOICES, CompareOptions, run_comparison
+from grainwright.inference.errors import ConfigError
+from grainwright.inference.size_plot import size_search_svg
 
 HELP = "compare ONNX models and classical filters on your images (with or without clean references)"
 
@@ -29,15 +31,29 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sure-probes", type=int, default=1, metavar="N",
                         help="Monte-Carlo SURE probes per method and image (default 1)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    sizes = parser.add_argument_group("model sizes tried (from 'grainwright bench sizes --sweep')")
+    sizes.add_argument("--size-search", metavar="RESULTS.json", help="add a quality-versus-time plot of the sizes "
+                       "in this size-search results file")
+    sizes.add_argument("--profile", metavar="PROFILE.json", help="machine profile for the predicted times "
+                       "('grainwright bench runtime --profile-out')")
+    sizes.add_argument("--frame", default="1024x1024", metavar="WxH", help="frame size for the predicted times")
+    sizes.add_argument("--ms-per-frame", type=float, metavar="T",
+                       help="cycle-time target: drawn on the plot, and the chosen size is the best under it")
 
 
 def run(args: argparse.Namespace) -> int:
+    size_plot = None
+    if args.size_search:
+        if not args.profile:
+            raise ConfigError("--size-search needs --profile PROFILE.json (the machine the times are predicted for)")
+        size_plot = size_search_svg(args.size_search, args.profile, args.frame, args.ms_per_frame)
     options = CompareOptions(
         quick=args.quick,
         noise=args.noise,
         threads=args.threads,
         sure_probes=max(1, args.sure_probes),
         overwrite=args.overwrite,
+        size_plot=size_plot,
     )
     result = run_comparison(
         args.noisy,
