@@ -280,7 +280,8 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
             state["elapsed"] += seconds
             timing["steps"] += 1
             timing["seconds"] += seconds
-            bar.update(1 if budget_steps else seconds)
+            # Whole seconds on a time budget, so the bar reads "95/240 s" rather than a long fraction.
+            bar.update(1 if budget_steps else max(0, round(state["elapsed"]) - bar.n))
             rate = config["data"]["batch_size"] / max(seconds, 1e-9)
             bar.set_postfix(loss=f"{loss.item():.3g}", patches_s=f"{rate:.0f}", refresh=False)
             if writer is not None:
