@@ -21,6 +21,7 @@ from typing import Iterable
 
 import numpy as np
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import InputError
 
 SUPPORTED_SUFFIXES = (".png", ".tif", ".tiff", ".npy")
@@ -292,7 +293,7 @@ def write_image(
         else:
             _write_tiff(temporary, data, text)
         if suffix == ".npy" and text is not None:
-            _write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1))
+            write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1))
         os.replace(temporary, path)
     finally:
         if os.path.exists(temporary):
@@ -356,18 +357,6 @@ def _write_tiff(temporary: str, data: np.ndarray, text: str | None) -> None:
                 metadata=None,
                 contiguous=False,
             )
-
-
-def _write_text_atomic(path: Path, text: str) -> None:
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-        os.replace(temporary, path)
-    except BaseException:
-        if os.path.exists(temporary):
-            os.unlink(temporary)
-        raise
 
 
 def read_text(path: str | Path) -> str | None:

@@ -24,7 +24,6 @@ import json
 import os
 import platform
 import statistics
-import struct
 import tempfile
 import time
 from pathlib import Path
@@ -33,6 +32,7 @@ from typing import Any
 import numpy as np
 import onnxruntime as ort
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import InputError
 
 PROFILE_FORMAT = "grainwright-machine-profile"
@@ -294,14 +294,7 @@ def measure_profile(threads: int = 2, widths: tuple[int, ...] = REFERENCE_WIDTHS
 
 def save_profile(profile: dict[str, Any], path: str | Path) -> Path:
     """Write the profile as JSON atomically (temporary name in the same folder, then rename)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    with os.fdopen(handle, "w", encoding="utf-8") as stream:
-        json.dump(profile, stream, indent=1)
-        stream.write("\n")
-    os.replace(temporary, path)
-    return path
+    return write_text_atomic(path, json.dumps(profile, indent=1) + "\n")
 
 
 def load_profile(path: str | Path) -> dict[str, Any]:

@@ -13,12 +13,11 @@ from __future__ import annotations
 import html
 import json
 import math
-import os
 import re
-import tempfile
 from pathlib import Path
 from typing import Any
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.machine_profile import load_profile, seconds_per_gmac_for
 from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
@@ -143,10 +142,4 @@ def size_search_svg(results_path: str | Path, profile_path: str | Path, frame: s
 
 def write_size_plot(path: str | Path, svg: str) -> Path:
     """Write the SVG atomically (temporary name in the same folder, then rename)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    with os.fdopen(handle, "w", encoding="utf-8") as stream:
-        stream.write(svg)
-    os.replace(temporary, path)
-    return path
+    return write_text_atomic(path, svg)

@@ -4,13 +4,12 @@ subset grainwright's own files use (tables, arrays of tables, strings, numbers, 
 from __future__ import annotations
 
 import math
-import os
 import re
-import tempfile
 import tomllib
 from pathlib import Path
 from typing import Any
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError, InputError
 
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
@@ -47,16 +46,7 @@ def write_toml(path: str | Path, data: dict[str, Any], header: str = "") -> None
     """
     path = Path(path)
     text = "".join(f"# {line}\n" if line else "#\n" for line in header.splitlines()) + dump_toml(data)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as out:
-            out.write(text)
-        os.replace(temporary, path)
-    except BaseException:
-        if os.path.exists(temporary):
-            os.unlink(temporary)
-        raise
+    write_text_atomic(path, text)
 
 
 def _is_table(value: Any) -> bool:

@@ -171,7 +171,7 @@ def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
 def test_row_banding_is_removed_before_denoising_when_flagged(tmp_path, capsys):
     # A smooth ramp with independent row offsets (fixed-pattern noise) and white noise: the banding flag and
     # correction are the foundation's (estimation.detect_banding / correct_fixed_pattern), as in training.
-    from grainwright.inference.estimation import correct_fixed_pattern, detect_banding, estimate_sigma
+    from grainwright.inference.estimation import correct_fixed_pattern, detect_banding
 
     rng = np.random.default_rng(3)
     ramp = np.linspace(300, 800, 96)[None, :] * np.ones((96, 1))

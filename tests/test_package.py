@@ -1,7 +1,6 @@
 """The package shape: one grainwright.* namespace, a torch-free runtime half, one console command."""
 from __future__ import annotations
 
-import importlib.util
 import pkgutil
 import subprocess
 import sys

@@ -21,6 +21,7 @@ from typing import Any, Callable
 import numpy as np
 import torch
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
@@ -280,11 +281,7 @@ def _create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFold
 
 
 def _write_summary(run: RunFolder, summary: dict[str, Any]) -> None:
-    handle, temporary = tempfile.mkstemp(prefix=".training-summary.", suffix=".tmp", dir=run.root)
-    with os.fdopen(handle, "w", encoding="utf-8") as stream:
-        json.dump(summary, stream, indent=2, default=float)
-        stream.write("\n")
-    os.replace(temporary, run.summary)
+    write_text_atomic(run.summary, json.dumps(summary, indent=2, default=float) + "\n")
 
 
 def summary_line(summary: dict[str, Any], run: RunFolder) -> str:

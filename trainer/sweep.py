@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import copy
 import json
-import os
 import shutil
 import time
 from pathlib import Path
@@ -32,6 +31,7 @@ from typing import Any
 
 import numpy as np
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError
 
 SEARCH_BASELINES = ("tv", "nlm", "wavelet", "bm3d")
@@ -242,9 +242,7 @@ def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, 
 
 
 def _save(path: Path, results: dict[str, Any]) -> None:
-    temporary = path.with_name(f".{path.name}.tmp")
-    temporary.write_text(json.dumps(results, indent=1, default=float) + "\n", encoding="utf-8")
-    os.replace(temporary, path)
+    write_text_atomic(path, json.dumps(results, indent=1, default=float) + "\n")
 
 
 def _best(results: dict[str, Any], names: list[str]) -> str:

@@ -11,13 +11,13 @@ import argparse
 import json
 import os
 import platform
-import tempfile
 import time
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline
 from grainwright.inference.calibration import GROUND_TRUTH_LABEL, tune_on_ground_truth
 from grainwright.inference.errors import ConfigError
@@ -67,11 +67,7 @@ def _timed_denoise(name: str, noisy: np.ndarray, sigma: float, **params: Any) ->
 
 
 def _write_json(path: Path, payload: dict[str, Any]) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    with os.fdopen(handle, "w") as stream:
-        json.dump(payload, stream, indent=2)
-    os.replace(temporary, path)
+    write_text_atomic(path, json.dumps(payload, indent=2))
 
 
 def run(args: argparse.Namespace) -> int:

@@ -12,7 +12,6 @@ Both need PyTorch (to build and export the models); the profile itself is measur
 from __future__ import annotations
 
 import argparse
-import json
 from pathlib import Path
 
 from grainwright.inference.errors import ConfigError
