@@ -27,6 +27,7 @@ from PIL import Image
 
 from grainwright.inference.detail import STRUCTURED_THRESHOLD
 from grainwright.inference.errors import InputError
+from grainwright.inference.svgplot import log_scatter_svg
 
 CAUTION = (
     "Denoising can remove exactly the detail that matters: a hairline crack, a pore, a lesion. On medical or "
@@ -241,51 +242,10 @@ def _table(columns: list[Column], rows: list[dict[str, Any]], css: str = "") -> 
     return f'<table class="{css}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
 
 
-def quality_speed_svg(points: list[tuple[str, float, float]], quality_label: str, width: int = 560,
-                      height: int = 320) -> str:
+def quality_speed_svg(points: list[tuple[str, float, float]], quality_label: str) -> str:
     """Inline SVG scatter: seconds per megapixel (log axis) against a quality figure, one labelled dot each."""
-    points = [(n, s, q) for n, s, q in points if s > 0 and math.isfinite(s) and math.isfinite(q)]
-    left, right, top, bottom = 64, 150, 16, 44
-    plot_w, plot_h = width - left - right, height - top - bottom
-    parts = [f'<svg width="{width}" height="{height}" role="img" '
-             f'aria-label="quality versus speed">',
-             f'<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="#fafafa" stroke="#888"/>']
-    if points:
-        log_s = [math.log10(s) for _, s, _ in points]
-        qs = [q for _, _, q in points]
-        s_lo, s_hi = math.floor(min(log_s)), math.ceil(max(log_s))
-        if s_hi == s_lo:
-            s_hi += 1
-        q_lo, q_hi = min(qs), max(qs)
-        pad = max(0.5, 0.1 * (q_hi - q_lo))
-        q_lo, q_hi = q_lo - pad, q_hi + pad
-
-        def x_of(seconds: float) -> float:
-            return left + (math.log10(seconds) - s_lo) / (s_hi - s_lo) * plot_w
-
-        def y_of(quality: float) -> float:
-            return top + (1 - (quality - q_lo) / (q_hi - q_lo)) * plot_h
-
-        for decade in range(s_lo, s_hi + 1):
-            x = x_of(10.0**decade)
-            parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + plot_h}" stroke="#ddd"/>')
-            parts.append(f'<text x="{x:.1f}" y="{top + plot_h + 16}" font-size="11" text-anchor="middle">'
-                         f'{10.0**decade:g}</text>')
-        for k in range(5):
-            quality = q_lo + (q_hi - q_lo) * k / 4
-            y = y_of(quality)
-            parts.append(f'<line x1="{left}" y1="{y:.1f}" x2="{left + plot_w}" y2="{y:.1f}" stroke="#eee"/>')
-            parts.append(f'<text x="{left - 6}" y="{y + 4:.1f}" font-size="11" text-anchor="end">{quality:.1f}</text>')
-        for name, seconds, quality in points:
-            x, y = x_of(seconds), y_of(quality)
-            parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="5" fill="#1f6fb2"/>')
-            parts.append(f'<text x="{x + 8:.1f}" y="{y + 4:.1f}" font-size="11">{html.escape(name)}</text>')
-    parts.append(f'<text x="{left + plot_w / 2:.1f}" y="{height - 8}" font-size="12" text-anchor="middle">'
-                 f'seconds per megapixel (log scale; faster to the left)</text>')
-    parts.append(f'<text x="14" y="{top + plot_h / 2:.1f}" font-size="12" text-anchor="middle" '
-                 f'transform="rotate(-90 14 {top + plot_h / 2:.1f})">{html.escape(quality_label)}</text>')
-    parts.append("</svg>")
-    return "".join(parts)
+    return log_scatter_svg(points, "seconds per megapixel (log scale; faster to the left)", quality_label,
+                           aria_label="quality versus speed")
 
 
 STYLE = """

@@ -10,9 +10,7 @@ time per frame predicted for a machine profile (:func:`points_from_sweep`); the 
 """
 from __future__ import annotations
 
-import html
 import json
-import math
 import re
 from pathlib import Path
 from typing import Any
@@ -20,65 +18,19 @@ from typing import Any
 from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError, InputError
 from grainwright.inference.machine_profile import load_profile, seconds_per_gmac_for
+from grainwright.inference.svgplot import log_scatter_svg
 from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
 
 
 def size_plot_svg(points: list[tuple[str, float, float]], chosen: str | None = None, target_ms: float | None = None,
-                  quality_label: str = "PSNR (dB)", width: int = 600, height: int = 340) -> str:
+                  quality_label: str = "PSNR (dB)", standalone: bool = True) -> str:
     """An SVG scatter of ``(label, milliseconds per frame, quality)``: time on a log axis, the ``chosen`` label
     ringed and named, the ``target_ms`` drawn as a dashed vertical line. Non-finite or non-positive times are
-    left out."""
-    points = [(n, t, q) for n, t, q in points if t > 0 and math.isfinite(t) and math.isfinite(q)]
-    left, right, top, bottom = 64, 170, 16, 44
-    plot_w, plot_h = width - left - right, height - top - bottom
-    parts = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" role="img" '
-             'aria-label="quality versus time per frame of the model sizes tried">',
-             f'<rect x="{left}" y="{top}" width="{plot_w}" height="{plot_h}" fill="#fafafa" stroke="#888"/>']
-    if points:
-        times = [t for _, t, _ in points] + ([target_ms] if target_ms and target_ms > 0 else [])
-        t_lo, t_hi = math.floor(math.log10(min(times))), math.ceil(math.log10(max(times)))
-        t_hi += t_hi == t_lo
-        qualities = [q for _, _, q in points]
-        pad = max(0.25, 0.1 * (max(qualities) - min(qualities)))
-        q_lo, q_hi = min(qualities) - pad, max(qualities) + pad
-
-        def x_of(ms: float) -> float:
-            return left + (math.log10(ms) - t_lo) / (t_hi - t_lo) * plot_w
-
-        def y_of(quality: float) -> float:
-            return top + (1 - (quality - q_lo) / (q_hi - q_lo)) * plot_h
-
-        for decade in range(t_lo, t_hi + 1):
-            x = x_of(10.0**decade)
-            parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + plot_h}" stroke="#ddd"/>')
-            parts.append(f'<text x="{x:.1f}" y="{top + plot_h + 16}" font-size="11" text-anchor="middle">'
-                         f'{10.0**decade:g}</text>')
-        for k in range(5):
-            quality = q_lo + (q_hi - q_lo) * k / 4
-            y = y_of(quality)
-            parts.append(f'<line x1="{left}" y1="{y:.1f}" x2="{left + plot_w}" y2="{y:.1f}" stroke="#eee"/>')
-            parts.append(f'<text x="{left - 6}" y="{y + 4:.1f}" font-size="11" text-anchor="end">{quality:.2f}</text>')
-        if target_ms and target_ms > 0:
-            x = x_of(target_ms)
-            parts.append(f'<line x1="{x:.1f}" y1="{top}" x2="{x:.1f}" y2="{top + plot_h}" stroke="#b35c00" '
-                         'stroke-dasharray="5,4"/>')
-            parts.append(f'<text x="{x + 4:.1f}" y="{top + 12}" font-size="11" fill="#b35c00">target '
-                         f'{target_ms:g} ms</text>')
-        for name, ms, quality in points:
-            x, y = x_of(ms), y_of(quality)
-            parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="4" fill="#1f6fb2"/>')
-            label = html.escape(name)
-            if name == chosen:
-                parts.append(f'<circle cx="{x:.1f}" cy="{y:.1f}" r="9" fill="none" stroke="#b35c00" '
-                             'stroke-width="2"/>')
-                label += " (chosen)"
-            parts.append(f'<text x="{x + 11:.1f}" y="{y + 4:.1f}" font-size="11">{label}</text>')
-    parts.append(f'<text x="{left + plot_w / 2:.1f}" y="{height - 8}" font-size="12" text-anchor="middle">'
-                 'milliseconds per frame (log scale; faster to the left)</text>')
-    parts.append(f'<text x="14" y="{top + plot_h / 2:.1f}" font-size="12" text-anchor="middle" '
-                 f'transform="rotate(-90 14 {top + plot_h / 2:.1f})">{html.escape(quality_label)}</text>')
-    parts.append("</svg>")
-    return "".join(parts)
+    left out. ``standalone`` adds the SVG namespace for a file of its own."""
+    return log_scatter_svg(points, "milliseconds per frame (log scale; faster to the left)", quality_label,
+                           aria_label="quality versus time per frame of the model sizes tried", chosen=chosen,
+                           marker=target_ms, marker_label=f"target {target_ms:g} ms" if target_ms else "",
+                           standalone=standalone, width=600, height=340)
 
 
 def predicted_ms(macs_per_pixel: float, width: int, receptive_field: int, alignment: int,
