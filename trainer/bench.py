@@ -3,14 +3,18 @@
 Data (open data, grayscale): scikit-image's bundled sample images. The networks train on ``TRAIN_IMAGES`` and are
 scored on the held-out ``TEST_IMAGES``, which they never see. Noise cases: Gaussian (sigma 25/255, every scheme),
 Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each). Noisy images are float32 and
-unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes.
+unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the settings
+of a shipped config (``--config``, default ``noisy-only``: the model and patch regime of the recorded size search)
+and any ``--set`` overrides; the scheme and the time box are the benchmark's. Each trained model is exported to
+ONNX and scored through the torch-free runtime, alone and with the runtime's 8-member flip/rotation self-ensemble.
 
-Opponent: for each held-out image, the best PSNR among total-variation denoising (Chambolle), non-local means and
-wavelet shrinkage (BayesShrink and VisuShrink) from ``skimage.restoration``, each with a small parameter grid
-tuned on that image's ground truth, which no real user has.
+Opponent: for each held-out image, the best PSNR among total-variation denoising (Chambolle), non-local means,
+wavelet shrinkage (scikit-image, through ``grainwright.inference.baselines``) and our BM3D, each with its
+parameter grid tuned on that image's ground truth, which no real user has.
 
 Throughput: the training loop (patch sampling, synthetic noise, schedule, logging included) against bare
-forward+backward+Adam passes of the same model on tensors made once, alternated twice in the same run.
+forward+backward+Adam passes of the same model in the same layout and precision on tensors made once,
+alternated in the same run.
 """
 from __future__ import annotations
 
@@ -26,6 +30,8 @@ from typing import Any
 import numpy as np
 import torch
 
+from grainwright.inference.errors import ConfigError
+
 TEST_IMAGES = ("camera", "coins", "moon")
 TRAIN_IMAGES = ("brick", "grass", "gravel", "chelsea", "coffee", "rocket", "page", "text", "clock", "cell",
                 "immunohistochemistry", "hubble_deep_field")
@@ -39,6 +45,14 @@ CASES: dict[str, dict[str, Any]] = {
 }
 SUPERVISED = ("supervised",)
 SELF_SUPERVISED = ("masked", "neighbor2neighbor", "recorrupted")
+SEARCH_BASELINES = ("tv", "nlm", "wavelet", "bm3d")
+# BM3D's full ground-truth grid for the Gaussian case; the published hard threshold 2.7 sigma (Dabov et al.
+# 2007) and the defaults for the others, where a full grid would cost more than the networks' training.
+SHORT_GRIDS = {"bm3d": [{"threshold": 2.7}]}
+OPPONENT = "opponent (best of TV/NLM/wavelet/BM3D, tuned on ground truth)"
+BASELINE_LABELS = {"tv": "TV", "nlm": "NLM", "wavelet": "wavelet", "bm3d": "BM3D (ours)"}
+ENSEMBLE = 8  # the runtime's largest flip/rotation self-ensemble
+ENSEMBLE_LABEL = f", x{ENSEMBLE} self-ensemble"
 
 
 def sample_image(name: str) -> np.ndarray:
@@ -74,51 +88,51 @@ def make_folders(work: Path, case: str, seed: int) -> dict[str, Any]:
     return {"root": root, "clean": held_out, "noisy": noisy}
 
 
-def classical_opponent(clean: np.ndarray, noisy: np.ndarray) -> dict[str, float]:
-    """Best PSNR (dB, peak 1) of TV, NLM and wavelet shrinkage, each over a small grid tuned on ``clean``."""
-    from skimage.restoration import denoise_nl_means, denoise_tv_chambolle, denoise_wavelet, estimate_sigma
+def opponent(case: str, images: dict[str, tuple[np.ndarray, np.ndarray]]) -> dict[str, dict[str, Any]]:
+    """PSNR (dB, peak 1) of each classical baseline of ``SEARCH_BASELINES`` tuned on each image's ground truth,
+    its parameters and CPU seconds, and the per-image best (``"best per image"``). ``images`` maps a name to
+    ``(clean, noisy)``, ``(H, W, 1)`` float32."""
+    from grainwright.inference.calibration import tune_on_ground_truth
 
-    from grainwright.inference.metrics import psnr
+    noise = CASES[case]["noise"]
+    table: dict[str, dict[str, Any]] = {}
+    for method in SEARCH_BASELINES:
+        started = time.process_time()
+        table[method] = {"psnr": {}, "params": {}}
+        for name, (clean, noisy) in images.items():
+            grid = SHORT_GRIDS.get(method) if case != "gaussian" else None
+            tuning = tune_on_ground_truth(method, noisy, clean, noise, peak=1.0, grid=grid)
+            table[method]["psnr"][name] = float(tuning.score)
+            table[method]["params"][name] = tuning.params
+        table[method]["cpu_seconds"] = time.process_time() - started
+        print(f"   {method} tuned on ground truth: {np.mean(list(table[method]['psnr'].values())):.2f} dB",
+              flush=True)
+    table["best per image"] = {"psnr": {name: max(table[m]["psnr"][name] for m in SEARCH_BASELINES)
+                                        for name in images}}
+    return table
 
-    sigma = float(estimate_sigma(noisy))
-    best: dict[str, float] = {}
-    trials = {
-        "TV": [lambda w=w: denoise_tv_chambolle(noisy, weight=w) for w in (0.04, 0.06, 0.08, 0.11, 0.15, 0.2)],
-        "NLM": [lambda k=k: denoise_nl_means(noisy, h=k * sigma, sigma=sigma, patch_size=5, patch_distance=6,
-                                             fast_mode=True) for k in (0.6, 0.8, 1.0, 1.2)],
-        "wavelet": [lambda k=k, m=m: denoise_wavelet(noisy, sigma=k * sigma, method=m, mode="soft",
-                                                     rescale_sigma=True)
-                    for m, scales in (("BayesShrink", (0.75, 1.0, 1.25)), ("VisuShrink", (0.35, 0.5, 0.7)))
-                    for k in scales],
-    }
-    for method, runs in trials.items():
-        best[method] = max(psnr(clean, run(), peak=1.0) for run in runs)
-    return best
+
+def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], threads: int) -> dict[str, Any]:
+    """Export a run folder's best checkpoint to ONNX and score it through the runtime, with 1 and 8 members."""
+    from grainwright.models.export import export_checkpoint
+    from grainwright.trainer.sweep import evaluate, runtime_denoiser
+
+    onnx_path = run_dir / "model.onnx"
+    export_checkpoint(run_dir, onnx_path, overwrite=True, threads=threads)
+    return evaluate(runtime_denoiser(onnx_path, threads), images, ensembles=(1, ENSEMBLE))
 
 
-def denoise_with(run_dir: Path, noisy: np.ndarray) -> np.ndarray:
-    """Apply a run folder's best checkpoint to a float image, through its normalisation (and transform)."""
-    from grainwright.inference.normalization import Normalization
-    from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
-
-    payload = load_checkpoint(run_dir)
-    model = model_from_checkpoint(payload)
-    normalization = Normalization.from_dict(payload["normalization"])
-    working = normalization.to_working(noisy[..., None])
-    with torch.no_grad():
-        output = model(torch.from_numpy(working.transpose(2, 0, 1)[None].copy()))[0].numpy()
-    return normalization.from_working_float(output.transpose(1, 2, 0))[..., 0]
+def common_settings(args: argparse.Namespace) -> list[str]:
+    """The ``--set`` overrides every benchmark run gets, after the user's own."""
+    return list(args.set or []) + [f"threads={args.threads}", f"seed={args.seed}", "logging.progress=false"]
 
 
 def train_scheme(folder: Path, scheme: str, out: Path, minutes: float, args: argparse.Namespace) -> dict[str, Any]:
     from grainwright.trainer.run import train_command
 
-    settings = [f"model.hyper.depth={args.depth}", f"model.hyper.width={args.width}",
-                f"data.patch_size={args.patch_size}", f"data.batch_size={args.batch_size}",
-                f"threads={args.threads}", f"seed={args.seed}", "validation.every_steps=50",
-                "validation.patches=32", "validation.patience=0", "logging.progress=false",
-                "checkpoint.every_minutes=2"]
-    summary, _ = train_command(None, str(folder), scheme=scheme, minutes=minutes, out=str(out),
+    settings = common_settings(args) + ["validation.every_steps=50", "validation.patches=32",
+                                        "validation.patience=0", "checkpoint.every_minutes=2"]
+    summary, _ = train_command(args.config, str(folder), scheme=scheme, minutes=minutes, out=str(out),
                                assignments=settings, announce=lambda text: print(f"    {text}", flush=True))
     return summary
 
@@ -130,20 +144,19 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
     import copy
 
     from grainwright.trainer.config import load_config
-    from grainwright.trainer.loop import to_tensors, train
+    from grainwright.trainer.loop import step_precision, to_tensors, train
     from grainwright.trainer.run import _create_run_folder, physical_cores, prepare
 
     threads = args.threads or physical_cores()
     torch.set_num_threads(threads)
-    config = load_config(None, [f'data.folder="{folder.as_posix()}"', "scheme=\"supervised\"",
-                                f"model.hyper.depth={args.depth}", f"model.hyper.width={args.width}",
-                                f"data.patch_size={args.patch_size}", f"data.batch_size={args.batch_size}",
-                                f"budget.steps={steps}", "validation.every_steps=1000000", "logging.progress=false",
-                                f"seed={args.seed}"])
+    config = load_config(args.config, common_settings(args) + [
+        f'data.folder="{folder.as_posix()}"', "scheme=\"supervised\"", f"budget.steps={steps}",
+        "validation.every_steps=1000000"])
     setup, _, noise = prepare(config, announce=lambda text: None)
+    batch_size, patch_size = config["data"]["batch_size"], config["data"]["patch_size"]
     initial = copy.deepcopy(setup.model)
     rng = np.random.default_rng(args.seed)
-    batch = to_tensors(setup.scheme.prepare(setup.train.sample(rng, args.batch_size, args.patch_size), rng),
+    batch = to_tensors(setup.scheme.prepare(setup.train.sample(rng, batch_size, patch_size), rng),
                        setup.channels_last)
     loop_rates, bare_rates = [], []
     for round_index in range(rounds):
@@ -151,73 +164,93 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         run = _create_run_folder(work / f"throughput-{round_index}", setup.config, noise)
         started = time.perf_counter()
         train(setup, run)
-        loop_rates.append(steps * args.batch_size / (time.perf_counter() - started))
+        loop_rates.append(steps * batch_size / (time.perf_counter() - started))
 
         model = copy.deepcopy(initial)
         if setup.channels_last:
-            model.to(memory_format=torch.channels_last)  # the same layout as the loop's
+            model.to(memory_format=torch.channels_last)  # the same layout and arithmetic as the loop's
         optimizer = torch.optim.Adam(model.parameters(), lr=1e-3)
         started = time.perf_counter()
         for _ in range(steps):
             optimizer.zero_grad(set_to_none=True)
-            torch.mean((model(batch["noisy"]) - batch["clean"]) ** 2).backward()
+            with step_precision(setup.precision):
+                output = model(batch["noisy"]).float()
+            torch.mean((output - batch["clean"]) ** 2).backward()
             optimizer.step()
-        bare_rates.append(steps * args.batch_size / (time.perf_counter() - started))
+        bare_rates.append(steps * batch_size / (time.perf_counter() - started))
     loop, bare = statistics.median(loop_rates), statistics.median(bare_rates)
     return {"loop_patches_per_second": loop_rates, "bare_patches_per_second": bare_rates,
-            "ratio": loop / bare, "threads": threads, "steps": steps, "channels_last": setup.channels_last}
+            "ratio": loop / bare, "threads": threads, "steps": steps, "channels_last": setup.channels_last,
+            "precision": setup.precision}
 
 
 def run_bench(args: argparse.Namespace) -> int:
+    """Run the benchmark; with ``--json``, results are written after every scheme and a rerun with the same
+    file skips what is done (so schemes may get different ``--minutes-per-scheme`` in separate runs)."""
+    from grainwright.inference.atomic import write_text_atomic
     from grainwright.inference.metrics import psnr
+    from grainwright.trainer.config import load_config
 
-    work = Path(args.work) if args.work else Path(tempfile.mkdtemp(prefix="grainwright-bench-train-"))
-    work.mkdir(parents=True, exist_ok=True)
     cases = [case.strip() for case in args.cases.split(",") if case.strip()]
     gaussian_schemes = tuple(s.strip() for s in args.schemes.split(",") if s.strip())
-    results: dict[str, Any] = {"settings": {"minutes_per_scheme": args.minutes_per_scheme, "depth": args.depth,
-                                            "width": args.width, "patch_size": args.patch_size,
-                                            "batch_size": args.batch_size, "seed": args.seed,
-                                            "train_images": TRAIN_IMAGES, "test_images": TEST_IMAGES},
-                               "cases": {}}
+    saved = Path(args.json) if args.json else None
+    results: dict[str, Any] = json.loads(saved.read_text()) if saved and saved.is_file() else {"cases": {}}
+    resolved = load_config(args.config, common_settings(args))
+    settings = {"config": args.config, "set": list(args.set or []), "seed": args.seed,
+                "model": resolved["model"]["name"], "hyper": resolved["model"]["hyper"],
+                "patch_size": resolved["data"]["patch_size"], "batch_size": resolved["data"]["batch_size"],
+                "train_images": list(TRAIN_IMAGES), "test_images": list(TEST_IMAGES)}
+    if results.get("settings", settings) != settings:
+        raise ConfigError(f"{saved}: holds results of other settings ({results['settings']}); use another --json")
+    results["settings"] = settings
+    work = Path(args.work) if args.work else Path(tempfile.mkdtemp(prefix="grainwright-bench-train-"))
+    work.mkdir(parents=True, exist_ok=True)
+
+    def save() -> None:
+        if saved:
+            write_text_atomic(saved, json.dumps(results, indent=2, default=float) + "\n")
+
     try:
         for case in cases:
             print(f"== {CASES[case]['label']}", flush=True)
             made = make_folders(work, case, args.seed)
-            opponent = {name: classical_opponent(made["clean"][name], made["noisy"][name]) for name in TEST_IMAGES}
-            rows: dict[str, Any] = {
-                "noisy": {name: psnr(made["clean"][name], made["noisy"][name], peak=1.0) for name in TEST_IMAGES},
-                "opponent (best of TV/NLM/wavelet, tuned on ground truth)":
-                    {name: max(best.values()) for name, best in opponent.items()},
-            }
-            for method in ("TV", "NLM", "wavelet"):
-                rows[f"{method} (tuned on ground truth)"] = {name: opponent[name][method] for name in TEST_IMAGES}
-            print(f"   opponent: {np.mean(list(rows['opponent (best of TV/NLM/wavelet, tuned on ground truth)'].values())):.2f} dB", flush=True)
-            summaries = {}
+            images = {name: (made["clean"][name][..., None], made["noisy"][name][..., None]) for name in TEST_IMAGES}
+            record = results["cases"].setdefault(case, {"label": CASES[case]["label"], "psnr": {}, "training": {}})
+            rows = record["psnr"]
+            if OPPONENT not in rows:
+                table = opponent(case, images)
+                rows["noisy"] = {name: psnr(clean, noisy, peak=1.0) for name, (clean, noisy) in images.items()}
+                rows[OPPONENT] = table["best per image"]["psnr"]
+                for method in SEARCH_BASELINES:
+                    rows[f"{BASELINE_LABELS[method]} (tuned on ground truth)"] = table[method]["psnr"]
+                save()
+            print(f"   opponent: {_mean(rows[OPPONENT]):.2f} dB", flush=True)
             for scheme in CASES[case].get("schemes", gaussian_schemes):
+                if scheme in rows:
+                    continue
                 layout = {"supervised": "clean-only", "noise2noise": "noisy-pairs"}.get(scheme, "noisy-only")
                 print(f"-- {scheme} on {layout}, {args.minutes_per_scheme} min", flush=True)
                 out = work / "runs" / f"{case}-{scheme}"
                 shutil.rmtree(out, ignore_errors=True)
                 summary = train_scheme(made["root"] / layout, scheme, out, args.minutes_per_scheme, args)
-                rows[scheme] = {name: psnr(made["clean"][name], denoise_with(out, made["noisy"][name]), peak=1.0)
-                                for name in TEST_IMAGES}
-                summaries[scheme] = {key: summary[key] for key in ("steps", "minutes", "patches_per_second",
-                                                                   "gflops_per_second", "stopped", "transform")}
-                print(f"   {scheme}: {np.mean(list(rows[scheme].values())):.2f} dB after {summary['steps']} steps",
-                      flush=True)
-            results["cases"][case] = {"label": CASES[case]["label"], "psnr": rows, "training": summaries}
-        if "gaussian" in cases:
+                scores = score_run(out, images, args.threads or 2)
+                rows[scheme], rows[scheme + ENSEMBLE_LABEL] = scores["psnr"]["1"], scores["psnr"][str(ENSEMBLE)]
+                record["training"][scheme] = {key: summary.get(key) for key in (
+                    "steps", "minutes", "patches_per_second", "gflops_per_second", "stopped", "transform",
+                    "precision")}
+                save()
+                print(f"   {scheme}: {_mean(rows[scheme]):.2f} dB, x{ENSEMBLE} "
+                      f"{_mean(rows[scheme + ENSEMBLE_LABEL]):.2f} dB after {summary['steps']} steps", flush=True)
+        if "gaussian" in cases and args.throughput:
             print("== loop vs bare throughput", flush=True)
             results["throughput"] = measure_throughput(work / "gaussian" / "clean-only", work, args)
+            save()
     finally:
         if not args.work:
             shutil.rmtree(work, ignore_errors=True)
     results["targets"] = check_targets(results)
-    report = render_report(results)
-    print(report)
-    if args.json:
-        Path(args.json).write_text(json.dumps(results, indent=2, default=float) + "\n", encoding="utf-8")
+    save()
+    print(render_report(results))
     return 0
 
 
@@ -226,23 +259,28 @@ def _mean(row: dict[str, float]) -> float:
 
 
 def check_targets(results: dict[str, Any]) -> list[tuple[str, bool | None, str]]:
-    """The issue's targets: (description, met or None when not measured, figures)."""
+    """The issue's targets, met or not, with their figures: each quality target once for the models alone and
+    once with the runtime's self-ensemble (when measured)."""
     targets: list[tuple[str, bool | None, str]] = []
     gaussian = results["cases"].get("gaussian", {}).get("psnr", {})
-    opponent = gaussian.get("opponent (best of TV/NLM/wavelet, tuned on ground truth)")
-    supervised = gaussian.get("supervised")
-    if opponent and supervised:
-        gap = _mean(supervised) - _mean(opponent)
-        targets.append(("supervised >= opponent + 0.5 dB", gap >= 0.5, f"{gap:+.2f} dB"))
-    if supervised and "noise2noise" in gaussian:
-        gap = _mean(gaussian["noise2noise"]) - _mean(supervised)
-        targets.append(("Noise2Noise within 0.2 dB of supervised", gap >= -0.2, f"{gap:+.2f} dB"))
-    selfsup = {name: _mean(gaussian[name]) for name in SELF_SUPERVISED if name in gaussian}
-    if supervised and opponent and selfsup:
-        name = max(selfsup, key=selfsup.get)
-        gap, margin = selfsup[name] - _mean(supervised), selfsup[name] - _mean(opponent)
-        targets.append((f"best self-supervised ({name}) within 0.5 dB of supervised and above the opponent",
-                        gap >= -0.5 and margin > 0, f"{gap:+.2f} dB vs supervised, {margin:+.2f} dB vs opponent"))
+    opponent = gaussian.get(OPPONENT)
+    for suffix in ("", ENSEMBLE_LABEL):
+        rows = {name: gaussian[name + suffix] for name in SUPERVISED + ("noise2noise",) + SELF_SUPERVISED
+                if name + suffix in gaussian}
+        supervised = rows.get("supervised")
+        if opponent and supervised:
+            gap = _mean(supervised) - _mean(opponent)
+            targets.append((f"supervised{suffix} >= opponent + 0.5 dB", gap >= 0.5, f"{gap:+.2f} dB"))
+        if supervised and "noise2noise" in rows:
+            gap = _mean(rows["noise2noise"]) - _mean(supervised)
+            targets.append((f"Noise2Noise{suffix} within 0.2 dB of supervised", gap >= -0.2, f"{gap:+.2f} dB"))
+        selfsup = {name: _mean(rows[name]) for name in SELF_SUPERVISED if name in rows}
+        if supervised and opponent and selfsup:
+            name = max(selfsup, key=selfsup.get)
+            gap, margin = selfsup[name] - _mean(supervised), selfsup[name] - _mean(opponent)
+            targets.append((f"best self-supervised ({name}{suffix}) within 0.5 dB of supervised and above the "
+                            "opponent", gap >= -0.5 and margin > 0,
+                            f"{gap:+.2f} dB vs supervised, {margin:+.2f} dB vs opponent"))
     if "throughput" in results:
         ratio = results["throughput"]["ratio"]
         targets.append(("loop >= 90% of bare forward+backward throughput", ratio >= 0.9, f"{ratio:.1%}"))
@@ -253,17 +291,20 @@ def render_report(results: dict[str, Any]) -> str:
     """The results as Markdown tables (PSNR in dB on the held-out images, peak 1)."""
     lines = []
     settings = results["settings"]
-    lines.append(f"Model: residual {settings['depth']} x {settings['width']}, patches {settings['patch_size']}, "
-                 f"batch {settings['batch_size']}, {settings['minutes_per_scheme']} min per scheme. Held out: "
+    hyper = ", ".join(f"{key} {value}" for key, value in settings["hyper"].items())
+    lines.append(f"Model: {settings['model']} ({hyper}), patches {settings['patch_size']}, batch "
+                 f"{settings['batch_size']} (config {settings['config']}"
+                 + "".join(f", {text}" for text in settings["set"]) + f"). Held out: "
                  f"{', '.join(settings['test_images'])}.")
     for case in results["cases"].values():
         lines += ["", f"**{case['label']}** (PSNR, dB)", "",
-                  "| Method | " + " | ".join(TEST_IMAGES) + " | mean | steps |",
-                  "|---|" + "---|" * (len(TEST_IMAGES) + 2)]
+                  "| Method | " + " | ".join(TEST_IMAGES) + " | mean | minutes | steps |",
+                  "|---|" + "---|" * (len(TEST_IMAGES) + 3)]
         for method, row in case["psnr"].items():
-            steps = case["training"].get(method, {}).get("steps", "")
+            training = case["training"].get(method.removesuffix(ENSEMBLE_LABEL), {})
+            minutes = f"{training['minutes']:.1f}" if "minutes" in training else ""
             lines.append(f"| {method} | " + " | ".join(f"{row[name]:.2f}" for name in TEST_IMAGES)
-                         + f" | {_mean(row):.2f} | {steps} |")
+                         + f" | {_mean(row):.2f} | {minutes} | {training.get('steps', '')} |")
     if "throughput" in results:
         t = results["throughput"]
         lines += ["", f"Throughput ({t['threads']} threads, {t['steps']} steps per measurement, alternated): loop "

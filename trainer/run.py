@@ -28,7 +28,7 @@ from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
 from grainwright.trainer.data import LAYOUT_TEXT, Layout, PatchSource, detect_layout, read_layout, split_by_image, \
     split_single_image
-from grainwright.trainer.loop import TrainingSetup, faster_in_channels_last, train
+from grainwright.trainer.loop import TrainingSetup, fastest_step, train
 from grainwright.trainer.schemes.registry import check_scheme_fits, choose_scheme, scheme_class
 
 # Noisy images analysed for the noise model and the flags (evenly spaced over the list), to bound the start-up time.
@@ -218,13 +218,18 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
                           f"'{name}' with architecture '{model.name}'")
     if model.takes_noise_map and sigma is None:
         raise ConfigError(f"model.name: '{model.name}' needs a noise level: give a noise.toml (noise.file)")
-    channels_last = config["model"]["channels_last"]
-    if channels_last == "auto":
-        channels_last, standard, last = faster_in_channels_last(model, channels, data_cfg["patch_size"],
-                                                                data_cfg["batch_size"])
-        announce(f"tensor layout: {'channels-last' if channels_last else 'standard'} (measured {standard * 1e3:.0f} "
-                 f"ms per step standard, {last * 1e3:.0f} ms channels-last)")
-    config = dict(config, model=dict(config["model"], skip=skip, hyper=dict(model.hyper), channels_last=channels_last))
+    channels_last, precision = config["model"]["channels_last"], config["model"]["precision"]
+    if "auto" in (channels_last, precision):
+        layouts = (False, True) if channels_last == "auto" else (channels_last,)
+        precisions = ("float32", "bfloat16") if precision == "auto" else (precision,)
+        (channels_last, precision), seconds = fastest_step(model, channels, data_cfg["patch_size"],
+                                                           data_cfg["batch_size"], layouts, precisions)
+        measured = ", ".join(f"{'channels-last' if layout else 'standard'} {kind} {value * 1e3:.0f}"
+                             for (layout, kind), value in seconds.items())
+        announce(f"step arithmetic: {'channels-last' if channels_last else 'standard'} layout, {precision} "
+                 f"(measured ms per step: {measured})")
+    config = dict(config, model=dict(config["model"], skip=skip, hyper=dict(model.hyper), channels_last=channels_last,
+                                     precision=precision))
     scheme = cls(config, noise, sigma)
 
     validation: list[dict[str, np.ndarray]] = []
@@ -246,10 +251,11 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     summary = {"layout": layout.name, "scheme": name, "training_images": len(train_images),
                "validation_images": len(validation_images), "data_folder": str(layout.root),
                "fixed_pattern_corrected": fixed_pattern, "transform": transform,
-               "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel()}
+               "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
+               "channels_last": channels_last, "precision": precision}
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=source(train_images),
                           validation=validation, ground_truth=layout.has_ground_truth, normalization=normalization,
-                          channels_last=channels_last,
+                          channels_last=channels_last, precision=precision,
                           noise=noise, data_fingerprint=data_fingerprint(sorted({p for s in layout.samples for p in s})),
                           training_noise=training_noise, summary=summary)
     return setup, layout, noise
@@ -344,7 +350,8 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         announce(f"{LAYOUT_TEXT[layout.name]}: {setup.summary['training_images']} training and "
                  f"{setup.summary['validation_images']} validation images; scheme {setup.config['scheme']}; "
                  f"{setup.model.name} ({setup.model.parameter_count()} parameters, "
-                 f"{'channels-last' if setup.channels_last else 'standard'} layout); run folder {run.root}")
+                 f"{'channels-last' if setup.channels_last else 'standard'} layout, {setup.precision}); "
+                 f"run folder {run.root}")
         summary = train(setup, run, resume=state, interrupt_at_step=interrupt_at_step)
     except FloatingPointError as error:
         raise GrainwrightError(f"{run.root}: {error}; resume from the last checkpoint with --resume") from None

@@ -16,7 +16,8 @@ Search order (``--stages``, run in the order given). Stage ``architecture`` comp
 regime; stage ``regime`` varies patch size, batch size and learning rate around the best architecture (by mean
 PSNR without ensemble; the best of each stage and case is then also scored with 2, 4 and 8 members); stage
 ``noise`` runs the Poisson-Gaussian (Anscombe domain versus a noise-map model) and speckle cases with the best
-Gaussian configuration so far; stage ``long`` retrains that configuration with a larger budget.
+Gaussian configuration so far; stage ``larger`` tries larger U-Nets (worth it once bfloat16 steps made each
+step cheaper); stage ``long`` retrains that configuration with a larger budget.
 Results are written after every trial, so a stopped search resumes where it left off.
 """
 from __future__ import annotations
@@ -33,11 +34,8 @@ import numpy as np
 
 from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError
+from grainwright.trainer.bench import SEARCH_BASELINES, opponent
 
-SEARCH_BASELINES = ("tv", "nlm", "wavelet", "bm3d")
-# BM3D costs a minute per run on the shared machine: its full ground-truth grid for the Gaussian case, the
-# published hard threshold 2.7 sigma (Dabov et al. 2007) and the defaults for the others.
-SHORT_GRIDS = {"bm3d": [{"threshold": 2.7}]}
 TEST_EDGE = 256
 BUDGET_CPU_SECONDS = 1200.0  # 10 minutes on 2 cores
 ENSEMBLES = (1, 2, 4, 8)  # self-ensemble sizes, members in the runtime's order (runner.ENSEMBLE_TRANSFORMS)
@@ -52,6 +50,12 @@ ARCHITECTURES: dict[str, dict[str, Any]] = {
     "residual 6x24": {"hyper": {"depth": 6, "width": 24}},
     "unet-small 2 levels x24": {"model": "unet-small", "hyper": {"levels": 2, "width": 24}},
     "unet-small 3 levels x16": {"model": "unet-small", "hyper": {"levels": 3, "width": 16}},
+}
+# Larger U-Nets, once bfloat16 steps (AMX) made each step 2-3 times cheaper; the first entry is the control.
+LARGER: dict[str, dict[str, Any]] = {
+    "unet-small 2 levels x24, bfloat16 steps": {"model": "unet-small", "hyper": {"levels": 2, "width": 24}},
+    "unet-small 3 levels x24": {"model": "unet-small", "hyper": {"levels": 3, "width": 24}},
+    "unet-small 3 levels x32": {"model": "unet-small", "hyper": {"levels": 3, "width": 32}},
 }
 REGIMES: dict[str, dict[str, Any]] = {
     "patch 64, batch 8": {"patch_size": 64, "batch_size": 8},
@@ -70,6 +74,10 @@ def trial(name: str, **changes: Any) -> dict[str, Any]:
 
 def architecture_trials() -> list[dict[str, Any]]:
     return [trial(name, **changes) for name, changes in ARCHITECTURES.items()]
+
+
+def larger_trials() -> list[dict[str, Any]]:
+    return [trial(name, **changes) for name, changes in LARGER.items()]
 
 
 def regime_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
@@ -97,12 +105,15 @@ def noise_trials(best: dict[str, Any]) -> list[dict[str, Any]]:
 # -- pieces ---------------------------------------------------------------------------------------------------
 
 
-def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> float:
+def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> tuple[float, bool, str]:
     """CPU seconds of one bare forward+backward+Adam step of the trial's model on random patches (median of
-    ``PROBE_STEPS`` after one warm-up step)."""
+    ``PROBE_STEPS`` after one warm-up step), in the tensor layout and precision the trainer would pick
+    (:func:`grainwright.trainer.loop.fastest_step`); returns the seconds, the layout and the precision."""
     import torch
 
     from grainwright.models.registry import build_model, hyper_defaults
+    from grainwright.trainer.loop import fastest_step, step_precision
+    from grainwright.trainer.schemes.base import apply_model
     from grainwright.trainer.schemes.registry import scheme_class
 
     torch.set_num_threads(threads)
@@ -110,19 +121,24 @@ def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> float:
     model = build_model(spec["model"], 1, **hyper)
     passes = scheme_class(spec["scheme"]).forward_passes_per_pixel / 3.0  # relative to forward + backward
     size = spec["patch_size"]
+    (channels_last, precision), _ = fastest_step(model, 1, size, spec["batch_size"])
     batch = torch.rand(spec["batch_size"], 1, size, size)
     level = torch.full((spec["batch_size"], 1, size, size), 0.1)
+    if channels_last:
+        model.to(memory_format=torch.channels_last)
+        batch = batch.contiguous(memory_format=torch.channels_last)
     optimizer = torch.optim.Adam(model.parameters(), lr=1e-4)
     times = []
     for index in range(PROBE_STEPS + 1):
         start = time.process_time()
         optimizer.zero_grad(set_to_none=True)
-        output = model(batch, level) if model.takes_noise_map else model(batch)
+        with step_precision(precision):
+            output = apply_model(model, batch, level)
         torch.mean((output - batch) ** 2).backward()
         optimizer.step()
         if index:
             times.append(time.process_time() - start)
-    return float(np.median(times)) * passes
+    return float(np.median(times)) * passes, channels_last, precision
 
 
 def held_out(made: dict[str, Any]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
@@ -133,29 +149,6 @@ def held_out(made: dict[str, Any]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         crop = (slice(top, top + TEST_EDGE), slice(left, left + TEST_EDGE))
         out[name] = (clean[crop][..., None].copy(), made["noisy"][name][crop][..., None].copy())
     return out
-
-
-def opponent(case: str, images: dict[str, tuple[np.ndarray, np.ndarray]]) -> dict[str, dict[str, Any]]:
-    """PSNR (dB, peak 1) of each classical baseline tuned on each image's ground truth, and its parameters."""
-    from grainwright.inference.calibration import tune_on_ground_truth
-    from grainwright.trainer.bench import CASES
-
-    noise = CASES[case]["noise"]
-    table: dict[str, dict[str, Any]] = {}
-    for method in SEARCH_BASELINES:
-        started = time.process_time()
-        table[method] = {"psnr": {}, "params": {}}
-        for name, (clean, noisy) in images.items():
-            grid = SHORT_GRIDS.get(method) if case != "gaussian" else None
-            tuning = tune_on_ground_truth(method, noisy, clean, noise, peak=1.0, grid=grid)
-            table[method]["psnr"][name] = float(tuning.score)
-            table[method]["params"][name] = tuning.params
-        table[method]["cpu_seconds"] = time.process_time() - started
-        print(f"   {method} tuned on ground truth: {np.mean(list(table[method]['psnr'].values())):.2f} dB",
-              flush=True)
-    table["best per image"] = {"psnr": {name: max(table[m]["psnr"][name] for m in SEARCH_BASELINES)
-                                        for name in images}}
-    return table
 
 
 def _member(image: np.ndarray, member: tuple[bool, bool, bool], inverse: bool = False) -> np.ndarray:
@@ -214,9 +207,10 @@ def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, 
     from grainwright.models.export import export_checkpoint
     from grainwright.trainer.run import train_command
 
-    per_step = cpu_seconds_per_step(spec, threads)
+    per_step, channels_last, precision = cpu_seconds_per_step(spec, threads)
     steps = steps or max(20, int(cpu_seconds / per_step))
-    settings = [f"model.name=\"{spec['model']}\"", f"data.patch_size={spec['patch_size']}",
+    settings = [f"model.name=\"{spec['model']}\"", f"model.channels_last={json.dumps(channels_last)}",
+                f"model.precision=\"{precision}\"", f"data.patch_size={spec['patch_size']}",
                 f"data.batch_size={spec['batch_size']}", f"threads={threads}", f"seed={seed}",
                 f"validation.every_steps={max(10, steps // 8)}", "validation.patches=32", "validation.patience=0",
                 "logging.progress=false", "logging.tensorboard=false", "checkpoint.every_minutes=5"]
@@ -233,6 +227,7 @@ def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, 
     export_checkpoint(out, onnx_path, overwrite=True, threads=threads)
     scores = evaluate(runtime_denoiser(onnx_path, threads), images, ensembles=(1,))
     return {"spec": spec, "onnx": str(onnx_path), "steps": steps, "probe_cpu_seconds_per_step": per_step,
+            "channels_last": channels_last, "precision": precision,
             "train_cpu_seconds": used,
             "train_wall_seconds": wall, "macs_per_pixel": summary["macs_per_pixel"],
             "parameters": summary["parameters"], "transform": summary.get("transform"), **scores}
@@ -313,6 +308,8 @@ def run_search(args: argparse.Namespace) -> int:
     for stage in stages:  # in the order given, each building on what is done so far
         if stage == "architecture":
             run_stage(architecture_trials(), stage, args.cpu_seconds)
+        elif stage == "larger":
+            run_stage(larger_trials(), stage, args.cpu_seconds)
         elif stage == "regime":
             architecture = _best(results, [spec["name"] for spec in architecture_trials()])
             run_stage(regime_trials(results["trials"][architecture]["spec"]), stage, args.cpu_seconds)
@@ -325,7 +322,7 @@ def run_search(args: argparse.Namespace) -> int:
         elif stage == "long":
             run_stage([winner()], stage, args.long_cpu_seconds, suffix=f", {args.long_cpu_seconds:.0f} CPU-s")
         else:
-            raise ConfigError(f"--stages: unknown stage '{stage}' (architecture, regime, noise, long)")
+            raise ConfigError(f"--stages: unknown stage '{stage}' (architecture, larger, regime, noise, long)")
     results["winner"] = winner()
     _save(path, results)
     print(render_markdown(results))
@@ -358,7 +355,7 @@ def add_search_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", default="sweep.json", metavar="FILE",
                         help="results file (read first: finished trials are skipped)")
     parser.add_argument("--stages", default="architecture,regime,noise,long", metavar="LIST",
-                        help="comma-separated stages to run")
+                        help="comma-separated stages to run (architecture, larger, regime, noise, long)")
     parser.add_argument("--cpu-seconds", type=float, default=120.0, metavar="S",
                         help="CPU-seconds of training per trial (default 120; the full budget is 1200)")
     parser.add_argument("--long-cpu-seconds", type=float, default=600.0, metavar="S",

@@ -34,7 +34,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", metavar="FILE", help="also write the figures as JSON (the sweep reads it first)")
     parser.add_argument("--work", default="sweep-work", metavar="DIR", help="--sweep: generated data and runs")
     parser.add_argument("--stages", default="architecture,regime,noise,long", metavar="LIST",
-                        help="--sweep: stages to run (architecture, regime, noise, long)")
+                        help="--sweep: stages to run (architecture, larger, regime, noise, long)")
     parser.add_argument("--cpu-seconds", type=float, default=120.0, metavar="S",
                         help="--sweep: CPU-seconds of training per trial (the full budget is 1200 = 10 min x 2 cores)")
     parser.add_argument("--long-cpu-seconds", type=float, default=600.0, metavar="S",

@@ -16,13 +16,17 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         metavar="LIST", help="comma-separated schemes for the Gaussian case")
     parser.add_argument("--cases", default="gaussian,poisson-gaussian,speckle", metavar="LIST",
                         help="comma-separated noise cases")
-    parser.add_argument("--depth", type=int, default=8, help="layers of the residual CNN (default 8)")
-    parser.add_argument("--width", type=int, default=32, help="feature channels of the residual CNN (default 32)")
-    parser.add_argument("--patch-size", type=int, default=48, metavar="N", help="training patch edge (default 48)")
-    parser.add_argument("--batch-size", type=int, default=16, metavar="N", help="patches per step (default 16)")
+    parser.add_argument("--config", default="noisy-only", metavar="CONFIG",
+                        help="training config for every scheme: a file or a shipped name (default noisy-only: the "
+                             "model and patch regime of the recorded size search); its scheme is overridden")
+    parser.add_argument("--set", action="append", metavar="KEY=VALUE",
+                        help="override a config key for every scheme (repeatable), e.g. model.hyper.width=32")
+    parser.add_argument("--no-throughput", dest="throughput", action="store_false",
+                        help="skip the loop-vs-bare throughput measurement")
     parser.add_argument("--threads", type=int, default=0, metavar="N", help="torch threads (0 = physical cores)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the noise and of training")
-    parser.add_argument("--json", metavar="FILE", help="also write the results as JSON")
+    parser.add_argument("--json", metavar="FILE", help="also write the results as JSON, after every scheme; a "
+                        "rerun with the same file and settings skips the schemes already done")
     parser.add_argument("--work", metavar="DIR", help="folder for the generated data and run folders "
                         "(default: a temporary folder, removed afterwards)")
 

@@ -66,11 +66,13 @@ class Scheme:
 
 
 def apply_model(model: torch.nn.Module, image: torch.Tensor, level: torch.Tensor | None = None) -> torch.Tensor:
-    """Run ``model`` on ``image``, handing noise-map models their noise level (resized to ``image``)."""
+    """Run ``model`` on ``image``, handing noise-map models their noise level (resized to ``image``).
+
+    The output is float32 even under bfloat16 autocast, so that losses compare it at full precision."""
     if not getattr(model, "takes_noise_map", False):
-        return model(image)
+        return model(image).float()
     if level is None:
         raise ValueError("a noise-map model needs a noise level")
     if level.shape[-2:] != image.shape[-2:]:
         level = level.mean(dim=(2, 3), keepdim=True).expand(-1, -1, *image.shape[-2:])
-    return model(image, level)
+    return model(image, level).float()
