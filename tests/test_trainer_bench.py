@@ -81,7 +81,7 @@ def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
 
     # Small crops of the same open sample images, one cheap baseline: the plumbing, not the figures.
     original = bench.sample_image
-    monkeypatch.setattr(bench, "sample_image", lambda name: original(name)[:96, :96].copy())
+    monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
     monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass", "gravel"))
     monkeypatch.setattr(bench, "SEARCH_BASELINES", ("tv",))
     saved = tmp_path / "bench.json"

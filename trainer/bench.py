@@ -1,7 +1,8 @@
 """``grainwright bench train``: each training scheme, time-boxed, against classical filters tuned on ground truth.
 
-Data (open data, grayscale): scikit-image's bundled sample images. The networks train on ``TRAIN_IMAGES`` and are
-scored on the held-out ``TEST_IMAGES``, which they never see. Noise cases: Gaussian (sigma 25/255, every scheme),
+Data (open data, grayscale): scikit-image's bundled sample images. The networks train on ``TRAIN_IMAGES`` (centre
+crops of at most ``TRAIN_EDGE`` pixels) and are scored on the held-out ``TEST_IMAGES`` (at most ``TEST_EDGE``),
+which they never see. Noise cases: Gaussian (sigma 25/255, every scheme),
 Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each). Noisy images are float32 and
 unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the settings
 of a shipped config (``--config``, default ``noisy-only``: the model and patch regime of the recorded size search)
@@ -34,7 +35,8 @@ from grainwright.inference.errors import ConfigError
 
 TEST_IMAGES = ("camera", "coins", "moon")
 TRAIN_IMAGES = ("brick", "grass", "gravel", "chelsea", "coffee", "rocket", "page", "text", "clock", "cell",
-                "immunohistochemistry", "hubble_deep_field")
+                "immunohistochemistry", "hubble_deep_field", "retina", "shepp_logan_phantom")
+TEST_EDGE, TRAIN_EDGE = 512, 1024  # largest centre crops of the held-out and the training images
 CASES: dict[str, dict[str, Any]] = {
     "gaussian": {"noise": {"kind": "gaussian", "sigma": 25.0 / 255.0}, "label": "Gaussian, sigma 25/255"},
     "poisson-gaussian": {"noise": {"kind": "poisson-gaussian", "gain": 0.01, "read": 0.02},
@@ -55,16 +57,19 @@ ENSEMBLE = 8  # the runtime's largest flip/rotation self-ensemble
 ENSEMBLE_LABEL = f", x{ENSEMBLE} self-ensemble"
 
 
-def sample_image(name: str) -> np.ndarray:
-    """A scikit-image sample image as float32 grayscale in [0, 1] (at most 512 x 512, centre crop)."""
+def sample_image(name: str, edge: int = TEST_EDGE) -> np.ndarray:
+    """A scikit-image sample image as float32 grayscale in [0, 1] (at most ``edge`` x ``edge``, centre crop)."""
     from skimage import data
     from skimage.color import rgb2gray
 
     image = getattr(data, name)()
-    image = rgb2gray(image[..., :3]) if image.ndim == 3 else image.astype(np.float64) / 255.0
+    if image.ndim == 3:
+        image = rgb2gray(image[..., :3])
+    elif image.dtype == np.uint8:
+        image = image / 255.0
     h, w = image.shape
-    top, left = max(0, (h - 512) // 2), max(0, (w - 512) // 2)
-    return np.ascontiguousarray(image[top:top + 512, left:left + 512], dtype=np.float32)
+    top, left = max(0, (h - edge) // 2), max(0, (w - edge) // 2)
+    return np.ascontiguousarray(np.clip(image[top:top + edge, left:left + edge], 0.0, 1.0), dtype=np.float32)
 
 
 def make_folders(work: Path, case: str, seed: int) -> dict[str, Any]:
@@ -76,7 +81,7 @@ def make_folders(work: Path, case: str, seed: int) -> dict[str, Any]:
     rng = np.random.default_rng([seed, len(case)])
     root = work / case
     for index, name in enumerate(TRAIN_IMAGES):
-        clean = sample_image(name)[..., None]
+        clean = sample_image(name, TRAIN_EDGE)[..., None]
         for folder, array in (("clean-only/clean", clean), ("noisy-pairs/noisy-a", noise.sample(clean, rng)),
                               ("noisy-pairs/noisy-b", noise.sample(clean, rng)),
                               ("noisy-only/noisy", noise.sample(clean, rng))):
@@ -84,6 +89,7 @@ def make_folders(work: Path, case: str, seed: int) -> dict[str, Any]:
             np.save(root / folder / f"{index:02d}-{name}.npy", np.asarray(array, dtype=np.float32))
     save_noise(noise, root / "clean-only" / "noise.toml")
     held_out = {name: sample_image(name) for name in TEST_IMAGES}
+    rng = np.random.default_rng([seed, len(case), 1])  # its own stream: the same noise whatever is trained on
     noisy = {name: noise.sample(image[..., None], rng)[..., 0] for name, image in held_out.items()}
     return {"root": root, "clean": held_out, "noisy": noisy}
 

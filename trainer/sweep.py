@@ -55,7 +55,6 @@ ARCHITECTURES: dict[str, dict[str, Any]] = {
 LARGER: dict[str, dict[str, Any]] = {
     "unet-small 2 levels x24, bfloat16 steps": {"model": "unet-small", "hyper": {"levels": 2, "width": 24}},
     "unet-small 3 levels x24": {"model": "unet-small", "hyper": {"levels": 3, "width": 24}},
-    "unet-small 3 levels x32": {"model": "unet-small", "hyper": {"levels": 3, "width": 32}},
 }
 REGIMES: dict[str, dict[str, Any]] = {
     "patch 64, batch 8": {"patch_size": 64, "batch_size": 8},
