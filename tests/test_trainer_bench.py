@@ -102,3 +102,13 @@ def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
     assert run_bench(args) == 0  # supervised is kept, recorrupted added
     rows = json.loads(saved.read_text())["cases"]["gaussian"]["psnr"]
     assert rows["supervised"] == first and "recorrupted" + ENSEMBLE_LABEL in rows
+
+
+def test_a_misspelt_model_setting_stops_before_any_work(tmp_path):
+    args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised",
+                              json=str(tmp_path / "bench.json"), config="noisy-only",
+                              set=["model.hyper.widht=8"], seed=0, threads=1, minutes_per_scheme=0.1,
+                              throughput=False)
+    with pytest.raises(ConfigError, match="did you mean 'width'"):
+        run_bench(args)
+    assert not (tmp_path / "work").exists() and not (tmp_path / "bench.json").exists()

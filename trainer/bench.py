@@ -200,6 +200,7 @@ def run_bench(args: argparse.Namespace) -> int:
     file skips what is done (so schemes may get different ``--minutes-per-scheme`` in separate runs)."""
     from grainwright.inference.atomic import write_text_atomic
     from grainwright.inference.metrics import psnr
+    from grainwright.models.registry import build_model, hyper_defaults
     from grainwright.trainer.config import load_config
 
     cases = [case.strip() for case in args.cases.split(",") if case.strip()]
@@ -207,6 +208,8 @@ def run_bench(args: argparse.Namespace) -> int:
     saved = Path(args.json) if args.json else None
     results: dict[str, Any] = json.loads(saved.read_text()) if saved and saved.is_file() else {"cases": {}}
     resolved = load_config(args.config, common_settings(args))
+    build_model(resolved["model"]["name"], 1, **{**hyper_defaults(resolved["model"]["name"]),
+                                                  **resolved["model"]["hyper"]})  # a bad --set fails here, early
     settings = {"config": args.config, "set": list(args.set or []), "seed": args.seed,
                 "model": resolved["model"]["name"], "hyper": resolved["model"]["hyper"],
                 "patch_size": resolved["data"]["patch_size"], "batch_size": resolved["data"]["batch_size"],
