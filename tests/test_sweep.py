@@ -11,6 +11,7 @@ import pytest
 
 from grainwright.inference.runner import ENSEMBLE_TRANSFORMS, _transform, _untransform
 from grainwright.trainer import sweep
+from grainwright.trainer.bench import ensemble_member
 
 
 def test_trials_are_base_plus_changes():
@@ -34,10 +35,10 @@ def test_trials_are_base_plus_changes():
 @pytest.mark.parametrize("member", ENSEMBLE_TRANSFORMS)
 def test_members_are_the_runtime_members(member):
     image = np.random.default_rng(0).random((6, 6, 2)).astype(np.float32)
-    ours = sweep._member(image, member)
+    ours = ensemble_member(image, member)
     runtime = _transform(image.transpose(2, 0, 1)[None], member)[0].transpose(1, 2, 0)
     np.testing.assert_array_equal(ours, runtime)
-    np.testing.assert_array_equal(sweep._member(ours, member, inverse=True), image)
+    np.testing.assert_array_equal(ensemble_member(ours, member, inverse=True), image)
     back = _untransform(runtime.transpose(2, 0, 1)[None], member)[0].transpose(1, 2, 0)
     np.testing.assert_array_equal(back, image)
 

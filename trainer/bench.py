@@ -54,6 +54,7 @@ SHORT_GRIDS = {"bm3d": [{"threshold": 2.7}]}
 OPPONENT = "opponent (best of TV/NLM/wavelet/BM3D, tuned on ground truth)"
 BASELINE_LABELS = {"tv": "TV", "nlm": "NLM", "wavelet": "wavelet", "bm3d": "BM3D (ours)"}
 ENSEMBLE = 8  # the runtime's largest flip/rotation self-ensemble
+ENSEMBLES = (1, 2, 4, 8)  # self-ensemble sizes, members in the runtime's order (runner.ENSEMBLE_TRANSFORMS)
 ENSEMBLE_LABEL = f", x{ENSEMBLE} self-ensemble"
 
 
@@ -118,10 +119,58 @@ def opponent(case: str, images: dict[str, tuple[np.ndarray, np.ndarray]]) -> dic
     return table
 
 
+def ensemble_member(image: np.ndarray, member: tuple[bool, bool, bool], inverse: bool = False) -> np.ndarray:
+    """Apply (or undo) one self-ensemble member (transpose, flip rows, flip columns) to an ``(H, W, C)`` image,
+    in the runtime's order: flips then transpose, undone as transpose then flips."""
+    transpose, flip_rows, flip_cols = member
+    if inverse and transpose:
+        image = image.transpose(1, 0, 2)
+    if flip_rows:
+        image = image[::-1]
+    if flip_cols:
+        image = image[:, ::-1]
+    if not inverse and transpose:
+        image = image.transpose(1, 0, 2)
+    return np.ascontiguousarray(image)
+
+
+def runtime_denoiser(onnx_path: Path, threads: int) -> Any:
+    """The runtime's denoiser for an exported model; noise-map models get the per-pixel map of their training
+    noise model."""
+    from grainwright.inference.modelinfo import read_model_metadata
+    from grainwright.inference.runner import Denoiser
+
+    takes_map = bool(read_model_metadata(onnx_path).get("takes_noise_map"))
+    return Denoiser(onnx_path, threads=threads, noise_sigma="model" if takes_map else "estimate")
+
+
+def evaluate(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
+             ensembles: tuple[int, ...] = ENSEMBLES) -> dict[str, Any]:
+    """PSNR (dB, peak 1) of a runtime ``Denoiser`` (ensemble 1) with each self-ensemble size in ``ensembles``:
+    one pass per member, partial averages, the members in the runtime's order; and the seconds each size costs."""
+    from grainwright.inference.metrics import psnr
+    from grainwright.inference.runner import ENSEMBLE_TRANSFORMS
+
+    scores: dict[int, dict[str, float]] = {size: {} for size in ensembles}
+    seconds = {size: 0.0 for size in ensembles}
+    for name, (clean, noisy) in images.items():
+        total, elapsed = None, 0.0
+        for count, member in enumerate(ENSEMBLE_TRANSFORMS[: max(ensembles)], start=1):
+            started = time.perf_counter()
+            output = ensemble_member(denoiser.run(ensemble_member(noisy, member), as_float=True), member, inverse=True)
+            elapsed += time.perf_counter() - started
+            total = output if total is None else total + output
+            if count in ensembles:
+                scores[count][name] = float(psnr(clean, total / count, peak=1.0))
+                seconds[count] += elapsed
+    return {"psnr": {str(size): row for size, row in scores.items()},
+            "mean": {str(size): float(np.mean(list(row.values()))) for size, row in scores.items()},
+            "seconds": {str(size): value for size, value in seconds.items()}}
+
+
 def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], threads: int) -> dict[str, Any]:
     """Export a run folder's best checkpoint to ONNX and score it through the runtime, with 1 and 8 members."""
     from grainwright.models.export import export_checkpoint
-    from grainwright.trainer.sweep import evaluate, runtime_denoiser
 
     onnx_path = run_dir / "model.onnx"
     export_checkpoint(run_dir, onnx_path, overwrite=True, threads=threads)

@@ -34,11 +34,11 @@ import numpy as np
 
 from grainwright.inference.atomic import write_text_atomic
 from grainwright.inference.errors import ConfigError
-from grainwright.trainer.bench import SEARCH_BASELINES, opponent
+from grainwright.trainer.bench import (ENSEMBLES, SEARCH_BASELINES, evaluate, opponent,
+                                       runtime_denoiser)
 
 TEST_EDGE = 256
 BUDGET_CPU_SECONDS = 1200.0  # 10 minutes on 2 cores
-ENSEMBLES = (1, 2, 4, 8)  # self-ensemble sizes, members in the runtime's order (runner.ENSEMBLE_TRANSFORMS)
 PROBE_STEPS = 4  # timed steps of the CPU-time probe
 
 # Trials as plain data: architecture and hyper-parameters, patch regime, and any other config keys (``--set``).
@@ -148,55 +148,6 @@ def held_out(made: dict[str, Any]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
         crop = (slice(top, top + TEST_EDGE), slice(left, left + TEST_EDGE))
         out[name] = (clean[crop][..., None].copy(), made["noisy"][name][crop][..., None].copy())
     return out
-
-
-def _member(image: np.ndarray, member: tuple[bool, bool, bool], inverse: bool = False) -> np.ndarray:
-    """Apply (or undo) one self-ensemble member (transpose, flip rows, flip columns) to an ``(H, W, C)`` image,
-    in the runtime's order: flips then transpose, undone as transpose then flips."""
-    transpose, flip_rows, flip_cols = member
-    if inverse and transpose:
-        image = image.transpose(1, 0, 2)
-    if flip_rows:
-        image = image[::-1]
-    if flip_cols:
-        image = image[:, ::-1]
-    if not inverse and transpose:
-        image = image.transpose(1, 0, 2)
-    return np.ascontiguousarray(image)
-
-
-def runtime_denoiser(onnx_path: Path, threads: int) -> Any:
-    """The runtime's denoiser for an exported model; noise-map models get the per-pixel map of their training
-    noise model."""
-    from grainwright.inference.modelinfo import read_model_metadata
-    from grainwright.inference.runner import Denoiser
-
-    takes_map = bool(read_model_metadata(onnx_path).get("takes_noise_map"))
-    return Denoiser(onnx_path, threads=threads, noise_sigma="model" if takes_map else "estimate")
-
-
-def evaluate(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
-             ensembles: tuple[int, ...] = ENSEMBLES) -> dict[str, Any]:
-    """PSNR (dB, peak 1) of a runtime ``Denoiser`` (ensemble 1) with each self-ensemble size in ``ensembles``:
-    one pass per member, partial averages, the members in the runtime's order; and the seconds each size costs."""
-    from grainwright.inference.metrics import psnr
-    from grainwright.inference.runner import ENSEMBLE_TRANSFORMS
-
-    scores: dict[int, dict[str, float]] = {size: {} for size in ensembles}
-    seconds = {size: 0.0 for size in ensembles}
-    for name, (clean, noisy) in images.items():
-        total, elapsed = None, 0.0
-        for count, member in enumerate(ENSEMBLE_TRANSFORMS[: max(ensembles)], start=1):
-            started = time.perf_counter()
-            output = _member(denoiser.run(_member(noisy, member), as_float=True), member, inverse=True)
-            elapsed += time.perf_counter() - started
-            total = output if total is None else total + output
-            if count in ensembles:
-                scores[count][name] = float(psnr(clean, total / count, peak=1.0))
-                seconds[count] += elapsed
-    return {"psnr": {str(size): row for size, row in scores.items()},
-            "mean": {str(size): float(np.mean(list(row.values()))) for size, row in scores.items()},
-            "seconds": {str(size): value for size, value in seconds.items()}}
 
 
 def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, Any], cpu_seconds: float,
