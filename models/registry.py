@@ -13,10 +13,11 @@ from grainwright.inference.errors import ConfigError
 from grainwright.models.base import Denoiser
 from grainwright.models.residual import ResidualDenoiser
 from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
+from grainwright.models.unet_halfres import UNetHalfResDenoiser
 from grainwright.models.unet_small import UNetSmallDenoiser
 
 MODELS: dict[str, type[Denoiser]] = {
-    cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser)
+    cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser, UNetHalfResDenoiser)
 }
 
 
@@ -44,7 +45,7 @@ def build_model(name: str, channels: int, **hyper: Any) -> Denoiser:
     Parameters
     ----------
     name : str
-        A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"`` or ``"unet-small"``.
+        A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"``, ``"unet-small"`` or ``"unet-halfres"``.
     channels : int
         Image channels in and out (1 for grayscale, 3 for RGB, more for multi-band).
     **hyper

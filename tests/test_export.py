@@ -29,6 +29,7 @@ TINY = {
     "residual": {"depth": 3, "width": 8},
     "residual-noisemap": {"depth": 3, "width": 8},
     "unet-small": {"levels": 2, "width": 4},
+    "unet-halfres": {"levels": 2, "width": 4},
 }
 
 

@@ -15,6 +15,7 @@ TINY = {
     "residual": {"depth": 4, "width": 6},
     "residual-noisemap": {"depth": 4, "width": 6},
     "unet-small": {"levels": 2, "width": 4},
+    "unet-halfres": {"levels": 2, "width": 4},
 }
 
 

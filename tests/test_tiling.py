@@ -117,6 +117,7 @@ TINY_HYPER = {
     "residual": {"depth": 3, "width": 6},
     "residual-noisemap": {"depth": 3, "width": 6},
     "unet-small": {"levels": 3, "width": 4},
+    "unet-halfres": {"levels": 2, "width": 4},
 }
 
 

@@ -112,3 +112,21 @@ def test_a_misspelt_model_setting_stops_before_any_work(tmp_path):
     with pytest.raises(ConfigError, match="did you mean 'width'"):
         run_bench(args)
     assert not (tmp_path / "work").exists() and not (tmp_path / "bench.json").exists()
+
+
+@pytest.mark.slow
+def test_throughput_measurement_reports_whole_run_and_step_rates(tmp_path, monkeypatch):
+    from grainwright.trainer import bench
+
+    original = bench.sample_image
+    monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
+    monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass", "gravel"))
+    folders = bench.make_folders(tmp_path, "gaussian", seed=0)
+    args = argparse.Namespace(config="noisy-only", set=["model.hyper.width=8", "data.batch_size=4"], seed=0,
+                              threads=1)
+    result = bench.measure_throughput(folders["root"] / "clean-only", tmp_path, args, steps=15, rounds=2)
+    assert len(result["loop_patches_per_second"]) == len(result["bare_patches_per_second"]) == 2
+    # The steps alone leave out the run's one-off costs (checkpoints, final validation), so they are faster.
+    for whole, steps in zip(result["loop_patches_per_second"], result["loop_step_patches_per_second"]):
+        assert 0 < whole < steps
+    assert result["step_ratio"] > result["ratio"] > 0

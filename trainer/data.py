@@ -151,22 +151,26 @@ class PatchSource:
         index = rng.choice(len(self), size=draw, p=positions / positions.sum())
         top = (rng.random(draw) * (self.heights[index] - size + 1)).astype(np.int64)
         left = (rng.random(draw) * (self.widths[index] - size + 1)).astype(np.int64)
-        rows = np.arange(size)[None, :, None]
-        cols = np.arange(size)[None, None, :]
-        if augment:
-            code = rng.integers(0, 8, draw)
-            swap = (code & 4).astype(bool)[:, None, None]
-            rows, cols = np.where(swap, cols, rows), np.where(swap, rows, cols)
-            rows = np.where((code & 1).astype(bool)[:, None, None], size - 1 - rows, rows)
-            cols = np.where((code & 2).astype(bool)[:, None, None], size - 1 - cols, cols)
-        pixel = (top[:, None, None] + rows) * self.widths[index][:, None, None] + left[:, None, None] + cols
-        flat = (self.offsets[index][:, None, None] + pixel * self.channels)[..., None] + np.arange(self.channels)
+        code = rng.integers(0, 8, draw) if augment else None
+        # One gather per role with an index built by broadcasting (draw, size, 1, 1) + (draw, 1, size, 1) + (C,).
+        stride = (self.widths[index] * self.channels)[:, None, None, None]
+        start = (self.offsets[index] + (top * self.widths[index] + left) * self.channels)[:, None, None, None]
+        flat = (start + np.arange(size)[None, :, None, None] * stride
+                + np.arange(size)[None, None, :, None] * self.channels + np.arange(self.channels))
         if flat_level is not None:
             reference = "clean" if "clean" in self.buffers else self.roles[0]
             spread = self.buffers[reference][flat].reshape(draw, -1).std(axis=1)
-            order = np.argsort(spread < flat_level, kind="stable")  # non-flat candidates first, order kept
-            flat = flat[order[:count]]
-        return {role: np.ascontiguousarray(buffer[flat].transpose(0, 3, 1, 2)) for role, buffer in self.buffers.items()}
+            order = np.argsort(spread < flat_level, kind="stable")[:count]  # non-flat candidates first, order kept
+            flat = flat[order]
+            code = None if code is None else code[order]
+        patches = {role: buffer[flat] for role, buffer in self.buffers.items()}
+        if code is not None:  # the 8 flips / 90-degree rotations: transpose (bit 4), then flip rows (1), columns (2)
+            swap, rows, cols = ((code & bit).astype(bool) for bit in (4, 1, 2))
+            for array in patches.values():
+                array[swap] = array[swap].transpose(0, 2, 1, 3)
+                array[rows] = array[rows][:, ::-1]
+                array[cols] = array[cols][:, :, ::-1]
+        return {role: np.ascontiguousarray(array.transpose(0, 3, 1, 2)) for role, array in patches.items()}
 
 
 @dataclass

@@ -230,7 +230,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
                  f"(measured ms per step: {measured})")
     config = dict(config, model=dict(config["model"], skip=skip, hyper=dict(model.hyper), channels_last=channels_last,
                                      precision=precision))
-    scheme = cls(config, noise, sigma)
+    scheme = cls(config, noise, sigma, level_maps=model.takes_noise_map)
 
     validation: list[dict[str, np.ndarray]] = []
     if validation_images:

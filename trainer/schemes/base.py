@@ -36,12 +36,15 @@ class Scheme:
     patch_multiple: int = 1
     forward_passes_per_pixel: float = 3.0
 
-    def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None):
+    def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
+                 level_maps: bool = True):
         """``noise``: the noise model in working units (or None); ``sigma``: per-channel Gaussian standard
-        deviation of the noise in working units (known or estimated; None when unknown)."""
+        deviation of the noise in working units (known or estimated; None when unknown); ``level_maps``: whether
+        the model takes noise-level maps (when not, batches carry none, which saves their cost every step)."""
         self.config = config
         self.noise = noise
         self.sigma = None if sigma is None else np.asarray(sigma, dtype=np.float32).reshape(1, -1, 1, 1)
+        self.level_maps = level_maps
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         """Add the scheme's random draws to a batch of patches (numpy, ``(N, C, H, W)``)."""
@@ -58,7 +61,7 @@ class Scheme:
 
     def noise_level(self, batch: dict[str, np.ndarray]) -> np.ndarray | None:
         """The per-pixel noise level of ``batch['noisy']`` for noise-map models, ``(N, 1, H, W)``, or None."""
-        if self.sigma is None:
+        if self.sigma is None or not self.level_maps:
             return None
         noisy = batch["noisy"]
         level = np.float32(np.sqrt(np.mean(self.sigma ** 2)))

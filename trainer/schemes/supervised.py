@@ -30,6 +30,8 @@ class Supervised(Scheme):
         return batch
 
     def noise_level(self, batch: dict[str, np.ndarray]) -> np.ndarray | None:
+        if not self.level_maps:
+            return None
         if self.noise is not None and "clean" in batch:
             sigma = self.noise.sigma_map(batch["clean"].transpose(0, 2, 3, 1))
             if sigma is not None:
