@@ -97,6 +97,24 @@ def test_same_seed_gives_the_same_weights(tmp_path):
 
 
 @pytest.mark.slow
+def test_a_completed_budget_keeps_its_final_state_as_best_unless_told_otherwise(tmp_path):
+    folder = _clean_folder(tmp_path / "data")
+    # A learning rate too high to keep improving makes the validations disagree with the final state.
+    settings = TINY + ["optim.lr=0.05", "optim.warmup_fraction=0", "validation.every_steps=5"]
+    kept, run = train_command(None, str(folder), steps=30, out=str(tmp_path / "kept"), announce=_quiet,
+                              assignments=settings)
+    assert kept["best_step"] == 30
+    assert kept["best_validation"]["psnr"] == kept["validation_history"][-1]["psnr"]
+    best, last = load_checkpoint(run.best)["state_dict"], _weights(run)
+    assert all(torch.equal(best[key], last[key]) for key in best)
+    competing, run = train_command(None, str(folder), steps=30, out=str(tmp_path / "competing"), announce=_quiet,
+                                   assignments=settings + ["validation.keep_final=false"])
+    scores = [entry["psnr"] for entry in competing["validation_history"]]
+    assert competing["best_validation"]["psnr"] == max(scores) and competing["best_step"] != 30
+    assert competing["best_step"] == competing["validation_history"][scores.index(max(scores))]["step"]
+
+
+@pytest.mark.slow
 def test_resume_continues_exactly(tmp_path):
     folder = _noisy_folder(tmp_path / "data")
     settings = TINY + ["model.channels_last=true"]

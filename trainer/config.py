@@ -97,6 +97,9 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                         0, 10**6),
         "min_delta": Key("float", 0.0, "Smallest change that counts as an improvement (dB for PSNR, else loss).",
                          0.0, 1e6),
+        "keep_final": Key("bool", True, "When the run completes its budget, `best.pt` is the final state (the "
+                          "end of the learning-rate schedule), which is still validated and logged; false: it "
+                          "competes with the earlier validations like any other."),
     },
     "checkpoint": {
         "every_minutes": Key("float", 3.0, "Minutes between saves of `checkpoints/last.pt` (also saved at the end "
