@@ -5,7 +5,8 @@ Adam/AdamW with gradient clipping. The learning rate warms up linearly, then dec
 ``optim.final_lr_fraction`` of its peak; progress is the step count over ``budget.steps``, or the elapsed
 fraction of ``budget.minutes``. Every ``validation.every_steps`` steps the model is scored on fixed held-out
 patches (PSNR/SSIM against ground truth when there is any, else the scheme's own loss with fixed draws); the best
-score is saved as ``checkpoints/best.pt`` and a plateau stops the run. ``checkpoints/last.pt`` is saved every few
+score is saved as ``checkpoints/best.pt`` (replaced by the final state when the budget completes, unless
+``validation.keep_final`` is false) and a plateau stops the run. ``checkpoints/last.pt`` is saved every few
 minutes, at the end and on SIGINT/SIGTERM, with the optimiser, schedule, random-generator states and step, so a
 resumed run continues exactly where it stopped.
 """
