@@ -317,18 +317,19 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
             # Whole seconds on a time budget, so the bar reads "95/240 s" rather than a long fraction.
             bar.update(1 if budget_steps else max(0, round(state["elapsed"]) - bar.n))
             rate = config["data"]["batch_size"] / max(seconds, 1e-9)
-            bar.set_postfix(loss=f"{loss.item():.3g}", patches_s=f"{rate:.0f}", refresh=False)
-            logged["loss"] += loss.item()
+            loss_value = loss.item()
+            bar.set_postfix(loss=f"{loss_value:.3g}", patches_s=f"{rate:.0f}", refresh=False)
+            logged["loss"] += loss_value
             logged["steps"] += 1
             logged["seconds"] += seconds
-            if writer is not None and logged["steps"] == SCALAR_EVERY_STEPS:
-                step_seconds = logged["seconds"] / logged["steps"]
-                writer.add_scalar("train/loss", logged["loss"] / logged["steps"], state["step"])
-                writer.add_scalar("train/lr", rate_now, state["step"])
-                writer.add_scalar("speed/patches_per_second", config["data"]["batch_size"] / step_seconds,
-                                  state["step"])
-                writer.add_scalar("speed/gflops_per_second", flops_per_step / step_seconds / 1e9, state["step"])
             if logged["steps"] == SCALAR_EVERY_STEPS:
+                if writer is not None:
+                    step_seconds = logged["seconds"] / logged["steps"]
+                    writer.add_scalar("train/loss", logged["loss"] / logged["steps"], state["step"])
+                    writer.add_scalar("train/lr", rate_now, state["step"])
+                    writer.add_scalar("speed/patches_per_second", config["data"]["batch_size"] / step_seconds,
+                                      state["step"])
+                    writer.add_scalar("speed/gflops_per_second", flops_per_step / step_seconds / 1e9, state["step"])
                 logged.update(loss=0.0, steps=0, seconds=0.0)
 
             if setup.validation and state["step"] % every_val == 0:
