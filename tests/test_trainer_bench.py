@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 
+import numpy as np
 import pytest
 
 from grainwright.inference.errors import ConfigError
@@ -34,6 +35,20 @@ def _results(supervised: float, n2n: float, best_self: float, ratio: float, ense
 
 def test_held_out_images_are_never_trained_on():
     assert not set(TEST_IMAGES) & set(TRAIN_IMAGES)
+
+
+def test_half_scale_copies_are_2x2_means_of_the_larger_training_images():
+    from grainwright.trainer.bench import HALF_SCALE_MIN_EDGE, sample_image, training_image, training_labels
+
+    labels = training_labels(half_scale=True)
+    assert labels[: len(TRAIN_IMAGES)] == list(TRAIN_IMAGES) == training_labels()
+    halves = labels[len(TRAIN_IMAGES):]
+    assert "brick@half" in halves and "text@half" not in halves  # 512 x 512 has one; 172 x 448 is too small
+    full, half = sample_image("brick", 1024), training_image("brick@half")
+    assert min(full.shape) >= HALF_SCALE_MIN_EDGE and half.shape == (256, 256)
+    # Area downsampling by two: each output pixel is the mean of its 2x2 cell (computed here by slicing).
+    expected = (full[0::2, 0::2] + full[1::2, 0::2] + full[0::2, 1::2] + full[1::2, 1::2]) / 4
+    np.testing.assert_allclose(half, expected, atol=1e-6)
 
 
 def test_targets_met():
@@ -69,7 +84,7 @@ def test_results_of_other_settings_are_not_mixed(tmp_path):
     saved.write_text(json.dumps({"settings": {"config": "pairs"}, "cases": {}}))
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised", json=str(saved),
                               config="noisy-only", set=None, seed=0, threads=1, minutes_per_scheme=0.1,
-                              throughput=False)
+                              throughput=False, half_scale=False)
     with pytest.raises(ConfigError, match="other settings"):
         run_bench(args)
     assert not (tmp_path / "work").exists()
@@ -88,7 +103,7 @@ def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised", json=str(saved),
                               config="noisy-only", set=["model.hyper.width=8", "data.batch_size=4",
                                                         "logging.tensorboard=false"],
-                              seed=0, threads=1, minutes_per_scheme=0.05, throughput=False)
+                              seed=0, threads=1, minutes_per_scheme=0.05, throughput=False, half_scale=False)
     assert run_bench(args) == 0
     results = json.loads(saved.read_text())
     rows = results["cases"]["gaussian"]["psnr"]
@@ -108,7 +123,7 @@ def test_a_misspelt_model_setting_stops_before_any_work(tmp_path):
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised",
                               json=str(tmp_path / "bench.json"), config="noisy-only",
                               set=["model.hyper.widht=8"], seed=0, threads=1, minutes_per_scheme=0.1,
-                              throughput=False)
+                              throughput=False, half_scale=False)
     with pytest.raises(ConfigError, match="did you mean 'width'"):
         run_bench(args)
     assert not (tmp_path / "work").exists() and not (tmp_path / "bench.json").exists()

@@ -37,6 +37,8 @@ TEST_IMAGES = ("camera", "coins", "moon")
 TRAIN_IMAGES = ("brick", "grass", "gravel", "chelsea", "coffee", "rocket", "page", "text", "clock", "cell",
                 "immunohistochemistry", "hubble_deep_field", "retina", "shepp_logan_phantom")
 TEST_EDGE, TRAIN_EDGE = 512, 1024  # largest centre crops of the held-out and the training images
+HALF_SCALE_MIN_EDGE = 384  # with --half-scale, training images at least this big also train at half size
+HALF = "@half"  # the suffix naming a half-size copy in the list of training images
 CASES: dict[str, dict[str, Any]] = {
     "gaussian": {"noise": {"kind": "gaussian", "sigma": 25.0 / 255.0}, "label": "Gaussian, sigma 25/255"},
     "poisson-gaussian": {"noise": {"kind": "poisson-gaussian", "gain": 0.01, "read": 0.02},
@@ -73,21 +75,41 @@ def sample_image(name: str, edge: int = TEST_EDGE) -> np.ndarray:
     return np.ascontiguousarray(np.clip(image[top:top + edge, left:left + edge], 0.0, 1.0), dtype=np.float32)
 
 
-def make_folders(work: Path, case: str, seed: int) -> dict[str, Any]:
-    """Write the training folders of ``case`` (clean-only + noise.toml, noisy-pairs, noisy-only) and return the
-    held-out clean and noisy images."""
+def training_labels(half_scale: bool = False) -> list[str]:
+    """The training images: ``TRAIN_IMAGES`` and, with ``half_scale``, a half-size copy (``name@half``) of each
+    whose shorter side is at least ``HALF_SCALE_MIN_EDGE`` pixels."""
+    labels = list(TRAIN_IMAGES)
+    if half_scale:
+        labels += [name + HALF for name in TRAIN_IMAGES if min(sample_image(name, TRAIN_EDGE).shape) >= HALF_SCALE_MIN_EDGE]
+    return labels
+
+
+def training_image(label: str) -> np.ndarray:
+    """One training image of ``training_labels``: a half-size copy is the mean of each 2x2 cell of the crop
+    (finer detail per pixel, the image's own noise halved; the benchmark's noise is added afterwards)."""
+    name, half, _ = label.partition("@")
+    image = sample_image(name, TRAIN_EDGE)
+    if half:
+        h, w = image.shape[0] // 2 * 2, image.shape[1] // 2 * 2
+        image = image[:h, :w].reshape(h // 2, 2, w // 2, 2).mean(axis=(1, 3))
+    return np.ascontiguousarray(image, dtype=np.float32)
+
+
+def make_folders(work: Path, case: str, seed: int, labels: list[str] | None = None) -> dict[str, Any]:
+    """Write the training folders of ``case`` (clean-only + noise.toml, noisy-pairs, noisy-only) from the training
+    images ``labels`` (default ``TRAIN_IMAGES``) and return the held-out clean and noisy images."""
     from grainwright.inference.noise import noise_from_dict, save_noise
 
     noise = noise_from_dict(CASES[case]["noise"])
     rng = np.random.default_rng([seed, len(case)])
     root = work / case
-    for index, name in enumerate(TRAIN_IMAGES):
-        clean = sample_image(name, TRAIN_EDGE)[..., None]
+    for index, name in enumerate(labels or TRAIN_IMAGES):
+        clean = training_image(name)[..., None]
         for folder, array in (("clean-only/clean", clean), ("noisy-pairs/noisy-a", noise.sample(clean, rng)),
                               ("noisy-pairs/noisy-b", noise.sample(clean, rng)),
                               ("noisy-only/noisy", noise.sample(clean, rng))):
             (root / folder).mkdir(parents=True, exist_ok=True)
-            np.save(root / folder / f"{index:02d}-{name}.npy", np.asarray(array, dtype=np.float32))
+            np.save(root / folder / f"{index:02d}-{name.replace('@', '-')}.npy", np.asarray(array, dtype=np.float32))
     save_noise(noise, root / "clean-only" / "noise.toml")
     held_out = {name: sample_image(name) for name in TEST_IMAGES}
     rng = np.random.default_rng([seed, len(case), 1])  # its own stream: the same noise whatever is trained on
@@ -271,7 +293,7 @@ def run_bench(args: argparse.Namespace) -> int:
     settings = {"config": args.config, "set": list(args.set or []), "seed": args.seed,
                 "model": resolved["model"]["name"], "hyper": resolved["model"]["hyper"],
                 "patch_size": resolved["data"]["patch_size"], "batch_size": resolved["data"]["batch_size"],
-                "train_images": list(TRAIN_IMAGES), "test_images": list(TEST_IMAGES)}
+                "train_images": training_labels(args.half_scale), "test_images": list(TEST_IMAGES)}
     if results.get("settings", settings) != settings:
         raise ConfigError(f"{saved}: holds results of other settings ({results['settings']}); use another --json")
     results["settings"] = settings
@@ -285,7 +307,7 @@ def run_bench(args: argparse.Namespace) -> int:
     try:
         for case in cases:
             print(f"== {CASES[case]['label']}", flush=True)
-            made = make_folders(work, case, args.seed)
+            made = make_folders(work, case, args.seed, settings["train_images"])
             images = {name: (made["clean"][name][..., None], made["noisy"][name][..., None]) for name in TEST_IMAGES}
             record = results["cases"].setdefault(case, {"label": CASES[case]["label"], "psnr": {}, "training": {}})
             rows = record["psnr"]

@@ -21,6 +21,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "model and patch regime of the recorded size search); its scheme is overridden")
     parser.add_argument("--set", action="append", metavar="KEY=VALUE",
                         help="override a config key for every scheme (repeatable), e.g. model.hyper.width=32")
+    parser.add_argument("--half-scale", action="store_true",
+                        help="also train on half-size copies (2x2 means) of the training images of at least 384 px")
     parser.add_argument("--no-throughput", dest="throughput", action="store_false",
                         help="skip the loop-vs-bare throughput measurement")
     parser.add_argument("--threads", type=int, default=0, metavar="N", help="torch threads (0 = physical cores)")
