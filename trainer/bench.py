@@ -2,9 +2,9 @@
 
 Data (open data, grayscale): scikit-image's bundled sample images. The networks train on ``TRAIN_IMAGES`` (centre
 crops of at most ``TRAIN_EDGE`` pixels; ``--half-scale`` adds half-size copies of the larger ones) and are scored
-on the held-out ``TEST_IMAGES`` (at most ``TEST_EDGE``), which they never see. Noise cases: Gaussian (sigma 25/255, every scheme),
-Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each). Noisy images are float32 and
-unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the settings
+on the held-out ``TEST_IMAGES`` (at most ``TEST_EDGE``), which they never see. Noise cases: Gaussian (sigma
+25/255, every scheme), Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each).
+Noisy images are float32 and unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the settings
 of a shipped config (``--config``, default ``noisy-only``: the model and patch regime of the recorded size search)
 and any ``--set`` overrides; the scheme and the time box are the benchmark's. Each trained model is exported to
 ONNX and scored through the torch-free runtime, alone and with the runtime's 8-member flip/rotation self-ensemble.
@@ -80,7 +80,8 @@ def training_labels(half_scale: bool = False) -> list[str]:
     whose shorter side is at least ``HALF_SCALE_MIN_EDGE`` pixels."""
     labels = list(TRAIN_IMAGES)
     if half_scale:
-        labels += [name + HALF for name in TRAIN_IMAGES if min(sample_image(name, TRAIN_EDGE).shape) >= HALF_SCALE_MIN_EDGE]
+        labels += [name + HALF for name in TRAIN_IMAGES
+                   if min(sample_image(name, TRAIN_EDGE).shape) >= HALF_SCALE_MIN_EDGE]
     return labels
 
 
