@@ -1,13 +1,14 @@
 """``grainwright bench train``: each training scheme, time-boxed, against classical filters tuned on ground truth.
 
 Data (open data, grayscale): scikit-image's bundled sample images. The networks train on ``TRAIN_IMAGES`` (centre
-crops of at most ``TRAIN_EDGE`` pixels; ``--half-scale`` adds half-size copies of the larger ones) and are scored
-on the held-out ``TEST_IMAGES`` (at most ``TEST_EDGE``), which they never see. Noise cases: Gaussian (sigma
-25/255, every scheme), Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each).
-Noisy images are float32 and unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the settings
-of a shipped config (``--config``, default ``noisy-only``: the model and patch regime of the recorded size search)
-and any ``--set`` overrides; the scheme and the time box are the benchmark's. Each trained model is exported to
-ONNX and scored through the torch-free runtime, alone and with the runtime's 8-member flip/rotation self-ensemble.
+crops of at most ``TRAIN_EDGE`` pixels; ``--half-scale`` adds half-size copies of the larger ones) and are scored on
+the held-out ``TEST_IMAGES`` (at most ``TEST_EDGE``), which they never see. Noise cases: Gaussian (sigma 25/255,
+every scheme), Poisson-Gaussian and gamma speckle (a supervised and a self-supervised scheme each). Noisy images are
+float32 and unclipped. Each scheme trains with ``grainwright train`` for ``--minutes-per-scheme`` minutes, with the
+settings of a shipped config (``--config``, default ``noisy-only``: the model and patch regime of the recorded size
+search) and any ``--set`` overrides; the scheme and the time box are the benchmark's. Each trained model is exported
+to ONNX and scored through the torch-free runtime, alone and with the runtime's 8-member flip/rotation
+self-ensemble.
 
 Opponent: for each held-out image, the best PSNR among total-variation denoising (Chambolle), non-local means,
 wavelet shrinkage (scikit-image, through ``grainwright.inference.baselines``) and our BM3D, each with its
