@@ -88,10 +88,10 @@ def training_labels(half_scale: bool = False) -> list[str]:
 
 def training_image(label: str) -> np.ndarray:
     """One training image of ``training_labels``: a half-size copy is the mean of each 2x2 cell of the crop
-    (finer detail per pixel, the image's own noise halved; the benchmark's noise is added afterwards)."""
-    name, half, _ = label.partition("@")
-    image = sample_image(name, TRAIN_EDGE)
-    if half:
+    (finer detail per pixel, the standard deviation of the image's own noise halved; the benchmark's noise is
+    added afterwards)."""
+    image = sample_image(label.removesuffix(HALF), TRAIN_EDGE)
+    if label.endswith(HALF):
         h, w = image.shape[0] // 2 * 2, image.shape[1] // 2 * 2
         image = image[:h, :w].reshape(h // 2, 2, w // 2, 2).mean(axis=(1, 3))
     return np.ascontiguousarray(image, dtype=np.float32)
