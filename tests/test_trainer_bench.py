@@ -85,7 +85,7 @@ def test_results_of_other_settings_are_not_mixed(tmp_path):
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised", json=str(saved),
                               config="noisy-only", set=None, seed=0, threads=1, minutes_per_scheme=0.1,
                               throughput=False, half_scale=False)
-    with pytest.raises(ConfigError, match="other settings"):
+    with pytest.raises(ConfigError, match="other settings .differing: .*config"):
         run_bench(args)
     assert not (tmp_path / "work").exists()
 

@@ -297,7 +297,10 @@ def run_bench(args: argparse.Namespace) -> int:
                 "patch_size": resolved["data"]["patch_size"], "batch_size": resolved["data"]["batch_size"],
                 "train_images": training_labels(args.half_scale), "test_images": list(TEST_IMAGES)}
     if results.get("settings", settings) != settings:
-        raise ConfigError(f"{saved}: holds results of other settings ({results['settings']}); use another --json")
+        differing = sorted(key for key in settings.keys() | results["settings"].keys()
+                           if settings.get(key) != results["settings"].get(key))
+        raise ConfigError(f"{saved}: holds results of other settings (differing: {', '.join(differing)}); "
+                          "use another --json")
     results["settings"] = settings
     work = Path(args.work) if args.work else Path(tempfile.mkdtemp(prefix="grainwright-bench-train-"))
     work.mkdir(parents=True, exist_ok=True)
