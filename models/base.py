@@ -12,7 +12,7 @@ import torch
 from torch import nn
 
 
-class Denoiser(nn.Module):
+class DenoisingNetwork(nn.Module):
     """Base class of the registered architectures.
 
     Attributes
@@ -67,7 +67,7 @@ class Denoiser(nn.Module):
         """Overlap kept around each tile: the receptive-field radius rounded up to the alignment."""
         return -(-self.receptive_radius // self.alignment) * self.alignment
 
-    def for_export(self) -> "Denoiser":
+    def for_export(self) -> "DenoisingNetwork":
         """An equivalent module for inference-only graphs (e.g. with batch norm folded). Default: ``self``."""
         return self
 

@@ -11,8 +11,8 @@ Payload keys (every checkpoint):
 ``architecture``       registry name, e.g. ``"residual"``
 ``hyper``              dict of the architecture's hyper-parameters (``depth``, ``width``, ``skip``, ...)
 ``channels``           int, image channels in and out
-``state_dict``         the model's weights (``Denoiser.state_dict()``)
-``normalization``      dict from ``grainwright.inference.normalization.Normalization.to_dict()``, transform
+``state_dict``         the model's weights (``DenoisingNetwork.state_dict()``)
+``normalization``      dict from ``grainwright.inference.images.normalization.Normalization.to_dict()``, transform
                        included (dtype, bit depth, native range, channels, channel order, transform)
 ``noise``              dict from ``NoiseModel.to_dict()`` (the noise model of training), or None
 ``scheme``             training scheme name (``"supervised"``, ``"recorrupted"``, ...), or None
@@ -51,8 +51,8 @@ from typing import Any, Iterable, Mapping
 import torch
 
 from grainwright.inference import __version__
-from grainwright.inference.errors import GrainwrightError, InputError
-from grainwright.models.base import Denoiser
+from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.models.base import DenoisingNetwork
 from grainwright.models.registry import architecture, build_model
 
 FORMAT = "grainwright-checkpoint"
@@ -125,7 +125,7 @@ def data_fingerprint(files: Iterable[str | Path]) -> str:
 
 
 def checkpoint_payload(
-    model: Denoiser,
+    model: DenoisingNetwork,
     normalization: Any,
     *,
     noise: Any = None,
@@ -232,7 +232,7 @@ def load_checkpoint(path: str | Path) -> dict[str, Any]:
     return payload
 
 
-def model_from_checkpoint(payload: Mapping[str, Any], path: str | Path | None = None) -> Denoiser:
+def model_from_checkpoint(payload: Mapping[str, Any], path: str | Path | None = None) -> DenoisingNetwork:
     """Rebuild the model of a loaded payload with its weights, in eval mode."""
     try:
         model = build_model(payload["architecture"], payload["channels"], **payload["hyper"])

@@ -34,12 +34,12 @@ import torch
 from torch import nn
 
 from grainwright.inference import __version__
-from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
-from grainwright.inference.imageio import find_images, read_frames
-from grainwright.inference.modelinfo import METADATA_FORMAT, METADATA_KEY, METADATA_VERSION
-from grainwright.inference.normalization import Normalization
-from grainwright.models.base import Denoiser
+from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.runtime.modelinfo import METADATA_FORMAT, METADATA_KEY, METADATA_VERSION
+from grainwright.inference.images.normalization import Normalization
+from grainwright.models.base import DenoisingNetwork
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint, resolve_checkpoint
+from grainwright.models.onnx_io import centre_crop, pad_to_alignment, read_calibration, run_session, session_for
 from grainwright.models.working_range import WorkingRange
 
 OPSET = 17
@@ -47,7 +47,6 @@ OPSET = 17
 PARITY_TOLERANCE = 1e-4
 PARITY_SHAPE = (123, 77)  # odd on purpose: padding to the alignment is part of what is checked
 CALIBRATION_CROP = 256
-MAX_CALIBRATION_FILES = 64
 CAUTION = (
     "Denoising can remove exactly the detail that matters. On medical or safety-critical images the output is "
     "an aid for viewing and screening, not a substitute for the original or for qualified review; follow local "
@@ -58,7 +57,7 @@ CAUTION = (
 class ExportGraph(nn.Module):
     """Native values -> working range -> network -> native values, as one module to trace."""
 
-    def __init__(self, model: Denoiser, working_range: WorkingRange):
+    def __init__(self, model: DenoisingNetwork, working_range: WorkingRange):
         super().__init__()
         self.model = model
         self.working_range = working_range
@@ -71,7 +70,7 @@ class ExportGraph(nn.Module):
         return self.working_range.from_working_float(self.model(working, sigma))
 
 
-def export_graph(model: Denoiser, normalization: Normalization, opset: int = OPSET) -> onnx.ModelProto:
+def export_graph(model: DenoisingNetwork, normalization: Normalization, opset: int = OPSET) -> onnx.ModelProto:
     """Trace ``model`` (eval mode, batch norm folded) with its normalisation into an ONNX model."""
     graph = ExportGraph(model.for_export().eval(), WorkingRange(normalization)).eval()
     side = 2 * model.alignment
@@ -97,23 +96,7 @@ def export_graph(model: Denoiser, normalization: Normalization, opset: int = OPS
     return proto
 
 
-def session_for(proto: onnx.ModelProto | bytes, threads: int = 2) -> ort.InferenceSession:
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = threads
-    options.inter_op_num_threads = 1
-    data = proto if isinstance(proto, bytes) else proto.SerializeToString()
-    return ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
-
-
-def run_session(session: ort.InferenceSession, image: np.ndarray, noise_sigma: np.ndarray | None = None) -> np.ndarray:
-    """Run a grainwright ONNX session on a native ``(N, C, H, W)`` float32 batch."""
-    feeds = {"image": np.ascontiguousarray(image, dtype=np.float32)}
-    if noise_sigma is not None and any(i.name == "noise_sigma" for i in session.get_inputs()):
-        feeds["noise_sigma"] = np.ascontiguousarray(noise_sigma, dtype=np.float32)
-    return session.run(["denoised"], feeds)[0]
-
-
-def reference_output(model: Denoiser, normalization: Normalization, image: np.ndarray,
+def reference_output(model: DenoisingNetwork, normalization: Normalization, image: np.ndarray,
                      noise_sigma: np.ndarray | None = None) -> np.ndarray:
     """What the export must reproduce: numpy ``to_working``, the torch network, numpy ``from_working_float``."""
     working = torch.from_numpy(normalization.to_working(image))
@@ -125,16 +108,7 @@ def reference_output(model: Denoiser, normalization: Normalization, image: np.nd
     return normalization.from_working_float(output)
 
 
-def pad_to_alignment(image: np.ndarray, alignment: int) -> np.ndarray:
-    """Pad ``(N, C, H, W)`` at the bottom and right to multiples of ``alignment`` by reflection (as the runtime)."""
-    height, width = image.shape[-2:]
-    extra = (-height % alignment, -width % alignment)
-    if extra == (0, 0):
-        return image
-    return np.pad(image, ((0, 0), (0, 0), (0, extra[0]), (0, extra[1])), mode="reflect")
-
-
-def parity_difference(session: ort.InferenceSession, model: Denoiser, normalization: Normalization,
+def parity_difference(session: ort.InferenceSession, model: DenoisingNetwork, normalization: Normalization,
                       image: np.ndarray, noise_sigma: np.ndarray | None) -> float:
     """Largest |ONNX Runtime - torch| over ``image``, in fractions of the native range."""
     expected = reference_output(model, normalization, image, noise_sigma)
@@ -163,7 +137,7 @@ def training_noise(payload: dict[str, Any], normalization: Normalization) -> dic
 
 
 def tiling_rule(receptive_field: int, alignment: int, margin: int) -> str:
-    """The tiling rule in words, with this model's numbers (the runtime's rule, ``grainwright.inference.tiling``)."""
+    """The tiling rule in words, with this model's numbers (the runtime's rule, ``grainwright.inference.runtime.tiling``)."""
     return (
         f"1. Pad the image at the bottom and right by mirror reflection (numpy.pad mode 'reflect') to multiples "
         f"of the alignment, {alignment} px; a whole-image run pads the same way. "
@@ -175,7 +149,7 @@ def tiling_rule(receptive_field: int, alignment: int, margin: int) -> str:
     )
 
 
-def build_metadata(payload: dict[str, Any], model: Denoiser, normalization: Normalization,
+def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalization: Normalization,
                    parity: dict[str, Any], source: Path) -> dict[str, Any]:
     """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in DEVELOPERS.md)."""
     figures = model.describe()
@@ -244,39 +218,6 @@ def write_model(proto: onnx.ModelProto, path: Path, overwrite: bool = False) -> 
         Path(temporary).unlink(missing_ok=True)
         raise
     return path
-
-
-@dataclass
-class CalibrationImage:
-    path: Path
-    frame: np.ndarray  # (C, H, W) float32 native values
-
-
-def read_calibration(folder: str | Path, normalization: Normalization, limit: int = MAX_CALIBRATION_FILES) -> list[CalibrationImage]:
-    """Read up to ``limit`` images (first frame of each) and check they fit the model's data description."""
-    folder = Path(folder)
-    if not folder.exists():
-        raise InputError(folder, "no such calibration folder or file")
-    files = find_images(folder)[:limit]
-    if not files:
-        raise InputError(folder, "no PNG, TIFF or npy images found for calibration")
-    images = []
-    for path in files:
-        frames = read_frames(path)
-        channels = frames.shape[-1]
-        if channels != normalization.channels:
-            raise InputError(path, f"has {channels} channel(s); the model takes {normalization.channels}")
-        if frames.dtype.name != normalization.dtype:
-            raise InputError(path, f"is {frames.dtype.name} data; the model was trained on {normalization.dtype} data")
-        images.append(CalibrationImage(path, np.moveaxis(frames[0], -1, 0).astype(np.float32)))
-    return images
-
-
-def centre_crop(image: np.ndarray, edge: int) -> np.ndarray:
-    """Central crop of at most ``edge`` x ``edge`` pixels of a ``(C, H, W)`` array, as a batch of one."""
-    height, width = image.shape[-2:]
-    top, left = max(0, (height - edge) // 2), max(0, (width - edge) // 2)
-    return image[None, :, top:top + edge, left:left + edge]
 
 
 @dataclass

@@ -27,11 +27,11 @@ import numpy as np
 import onnx
 from onnxruntime.quantization import CalibrationDataReader, QuantFormat, QuantType, quantize_static
 
-from grainwright.inference.errors import GrainwrightError
-from grainwright.inference.metrics import psnr
-from grainwright.inference.normalization import Normalization
-from grainwright.models.base import Denoiser
-from grainwright.models.export import CalibrationImage, pad_to_alignment, run_session, session_for
+from grainwright.inference.common.errors import GrainwrightError
+from grainwright.inference.evaluation.metrics import psnr
+from grainwright.inference.images.normalization import Normalization
+from grainwright.models.base import DenoisingNetwork
+from grainwright.models.onnx_io import CalibrationImage, pad_to_alignment, run_session, session_for
 
 PATCH_EDGE = 128
 CALIBRATION_PATCHES = 32
@@ -82,7 +82,7 @@ def _body_convolutions(proto: onnx.ModelProto) -> list[str]:
 
 def quantize_model(
     proto: onnx.ModelProto,
-    model: Denoiser,
+    model: DenoisingNetwork,
     normalization: Normalization,
     images: list[CalibrationImage],
     noise_map_for: Callable[[np.ndarray, bool], np.ndarray | None],
@@ -155,7 +155,7 @@ def quantize_model(
     return report, int8
 
 
-def speed_ratio(fp32_session, int8_session, model: Denoiser, normalization: Normalization,
+def speed_ratio(fp32_session, int8_session, model: DenoisingNetwork, normalization: Normalization,
                 noise_map_for: Callable[[np.ndarray, bool], np.ndarray | None], rng: np.random.Generator,
                 repeats: int = 3) -> float:
     """FP32 seconds / INT8 seconds on one ``SPEED_EDGE`` square, best of ``repeats`` each, interleaved."""

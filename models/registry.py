@@ -9,14 +9,14 @@ import difflib
 import inspect
 from typing import Any
 
-from grainwright.inference.errors import ConfigError
-from grainwright.models.base import Denoiser
+from grainwright.inference.common.errors import ConfigError
+from grainwright.models.base import DenoisingNetwork
 from grainwright.models.residual import ResidualDenoiser
 from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
 from grainwright.models.unet_halfres import UNetHalfResDenoiser
 from grainwright.models.unet_small import UNetSmallDenoiser
 
-MODELS: dict[str, type[Denoiser]] = {
+MODELS: dict[str, type[DenoisingNetwork]] = {
     cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser, UNetHalfResDenoiser)
 }
 
@@ -26,7 +26,7 @@ def _suggest(word: str, choices: list[str]) -> str:
     return f" (did you mean '{close[0]}'?)" if close else f" (known: {', '.join(sorted(choices))})"
 
 
-def architecture(name: str) -> type[Denoiser]:
+def architecture(name: str) -> type[DenoisingNetwork]:
     """The class registered as ``name``; a clear error with a suggestion otherwise."""
     if name not in MODELS:
         raise ConfigError(f"unknown architecture '{name}'{_suggest(name, list(MODELS))}")
@@ -39,7 +39,7 @@ def hyper_defaults(name: str) -> dict[str, Any]:
     return {key: p.default for key, p in parameters.items() if key not in ("self", "channels")}
 
 
-def build_model(name: str, channels: int, **hyper: Any) -> Denoiser:
+def build_model(name: str, channels: int, **hyper: Any) -> DenoisingNetwork:
     """Build architecture ``name`` for ``channels`` image channels, randomly initialised.
 
     Parameters

@@ -16,11 +16,11 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from grainwright.models.base import Denoiser
+from grainwright.models.base import DenoisingNetwork
 from grainwright.models.unet_small import UNetSmallDenoiser
 
 
-class UNetHalfResDenoiser(Denoiser):
+class UNetHalfResDenoiser(DenoisingNetwork):
     """U-Net on 2x2 pixel-unshuffled input.
 
     Parameters

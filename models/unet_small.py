@@ -16,7 +16,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from grainwright.models.base import Denoiser
+from grainwright.models.base import DenoisingNetwork
 
 
 def _double_conv(in_channels: int, out_channels: int) -> nn.Sequential:
@@ -28,7 +28,7 @@ def _double_conv(in_channels: int, out_channels: int) -> nn.Sequential:
     )
 
 
-class UNetSmallDenoiser(Denoiser):
+class UNetSmallDenoiser(DenoisingNetwork):
     """Small U-Net denoiser.
 
     Parameters

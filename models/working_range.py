@@ -1,4 +1,4 @@
-"""Torch mirror of :class:`grainwright.inference.normalization.Normalization`, for inside the ONNX graph.
+"""Torch mirror of :class:`grainwright.inference.images.normalization.Normalization`, for inside the ONNX graph.
 
 ``to_working`` and ``from_working_float`` repeat the numpy functions operation for operation (normalise, then the
 optional generalized Anscombe or log transform rescaled to ``[0, 1]``; and back, with the closed-form exact
@@ -20,7 +20,7 @@ from typing import Any
 import torch
 from torch import nn
 
-from grainwright.inference.normalization import Normalization
+from grainwright.inference.images.normalization import Normalization
 
 ANSCOMBE_MIN_D = 2.0 * math.sqrt(3.0 / 8.0)  # transform of zero counts; the inverse is clamped below it
 SQRT_3_2 = math.sqrt(1.5)

@@ -15,9 +15,9 @@ from grainwright.inference.baselines.base import Baseline
 from grainwright.inference.baselines.domains import denoise_in_domain, gaussian_domain
 from grainwright.inference.baselines.local import bilateral
 from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline, resolve_params
-from grainwright.inference.errors import ConfigError, InputError
-from grainwright.inference.metrics import psnr
-from grainwright.inference.noise import GammaSpeckle, PoissonGaussianNoise, RayleighSpeckle
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.evaluation.metrics import psnr
+from grainwright.inference.noise.models import GammaSpeckle, PoissonGaussianNoise, RayleighSpeckle
 
 NAMES = ["mean", "median", "gaussian", "bilateral", "tv", "wavelet", "nlm", "bm3d"]
 

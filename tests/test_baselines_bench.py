@@ -6,9 +6,9 @@ import json
 
 import pytest
 
-from grainwright.inference.calibration import GROUND_TRUTH_LABEL
-from grainwright.inference.commands import bench_baselines
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL
+from grainwright.console.commands import bench_baselines
+from grainwright.inference.common.errors import ConfigError
 
 
 def _args(*argv: str) -> argparse.Namespace:

@@ -13,8 +13,8 @@ from skimage import color, data
 
 from grainwright.inference.baselines.bm3d import _match, dct_matrix, haar_matrix
 from grainwright.inference.baselines.registry import denoise
-from grainwright.inference.calibration import tune_on_ground_truth
-from grainwright.inference.metrics import psnr
+from grainwright.inference.evaluation.calibration import tune_on_ground_truth
+from grainwright.inference.evaluation.metrics import psnr
 
 SIGMA = 25 / 255
 

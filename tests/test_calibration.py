@@ -13,7 +13,7 @@ from skimage.metrics import peak_signal_noise_ratio
 from skimage.restoration import calibrate_denoiser, denoise_tv_chambolle
 
 from grainwright.inference.baselines.registry import denoise, resolve_params
-from grainwright.inference.calibration import (
+from grainwright.inference.evaluation.calibration import (
     CALIBRATED_LABEL,
     GROUND_TRUTH_LABEL,
     calibrate,
@@ -22,7 +22,7 @@ from grainwright.inference.calibration import (
     j_invariant_output,
     tune_on_ground_truth,
 )
-from grainwright.inference.noise import PoissonGaussianNoise
+from grainwright.inference.noise.models import PoissonGaussianNoise
 
 SIGMA = 25 / 255
 

@@ -18,10 +18,10 @@ from scipy import ndimage
 from skimage import data
 from skimage.metrics import peak_signal_noise_ratio
 
-from grainwright.inference.cli import main
-from grainwright.inference.compare import CompareOptions, parse_methods, run_comparison
-from grainwright.inference.errors import ConfigError, InputError
-from grainwright.inference.imageio import write_image
+from grainwright.console.cli import main
+from grainwright.inference.evaluation.compare import CompareOptions, parse_methods, run_comparison
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.images.imageio import write_image
 
 QUICK = CompareOptions(quick=True, threads=1)
 FAST_METHODS = "box.onnx,gaussian,median"
@@ -106,7 +106,7 @@ def test_with_ground_truth_ranks_by_psnr_and_labels_tuning(with_truth, dataset):
 def test_learned_model_output_matches_scipy_box_mean(with_truth, dataset):
     # The ONNX path (native values -> model -> working range) against SciPy's uniform filter with zero padding,
     # scored by scikit-image's PSNR: the report's figure must be that same number.
-    from grainwright.inference.imageio import read_image
+    from grainwright.inference.images.imageio import read_image
 
     for name in ("camera.png", "coins.png"):
         noisy = read_image(dataset / "noisy" / name)[:, :, 0].astype(np.float64)
@@ -203,7 +203,7 @@ def test_bad_input_gives_one_line_errors(dataset, tmp_path, capsys):
 def test_poisson_gaussian_data_is_scored_in_the_anscombe_domain(tmp_path):
     # 12-bit data in uint16 with Poisson-Gaussian noise (variance = gain * signal + read^2, working units), made
     # with the project's noise registry from scikit-image's coins and camera crops.
-    from grainwright.inference.noise import noise_from_dict
+    from grainwright.inference.noise.models import noise_from_dict
 
     noise = noise_from_dict({"kind": "poisson-gaussian", "gain": 0.004, "read": 0.01})
     rng = np.random.default_rng(4)

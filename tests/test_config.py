@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 from grainwright.trainer.config import SCHEMA, defaults, load_config, parse_assignment, schema_markdown, validate
 
 SHIPPED = ("clean-synthetic", "pairs", "noisy-pairs", "noisy-only", "fast-cpu")

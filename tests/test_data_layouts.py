@@ -4,8 +4,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from grainwright.inference.errors import InputError
-from grainwright.inference.imageio import write_image
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.imageio import write_image
 from grainwright.trainer.data import PatchSource, detect_layout, read_layout, split_by_image, split_single_image
 
 

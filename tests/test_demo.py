@@ -8,8 +8,8 @@ import sys
 
 import pytest
 
-from grainwright.inference.demo import MARKER_FILE, MARKER_KIND, DemoSettings, prepare_out_dir, run_demo
-from grainwright.inference.errors import ConfigError, InputError
+from grainwright.console.demo import MARKER_FILE, MARKER_KIND, DemoSettings, prepare_out_dir, run_demo
+from grainwright.inference.common.errors import ConfigError, InputError
 
 
 def test_refuses_a_non_empty_folder_it_did_not_write(tmp_path):
@@ -45,7 +45,7 @@ def test_new_and_empty_folders_are_accepted(tmp_path):
 def test_command_line_error_is_one_line_and_exit_2(tmp_path):
     (tmp_path / "data.csv").write_text("1,2,3")
     result = subprocess.run(
-        [sys.executable, "-m", "grainwright.inference", "demo", "--out", str(tmp_path)],
+        [sys.executable, "-m", "grainwright.console", "demo", "--out", str(tmp_path)],
         capture_output=True, text=True, timeout=120,
     )
     assert result.returncode == 2

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 import tifffile
 
-from grainwright.inference.cli import main
-from grainwright.inference.imageio import read_frames, read_text, write_image
-from grainwright.inference.runner import Denoiser, file_sha256
+from grainwright.console.cli import main
+from grainwright.inference.images.imageio import read_frames, read_text, write_image
+from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256
 from test_runner import NATIVE_HIGH, build_conv_model
 
 from no_torch import BLOCK_TORCH
@@ -38,7 +38,7 @@ def _run(*argv: object) -> int:
 def test_outputs_mirror_inputs_with_records(batch, capsys):
     assert _run(batch["model"], batch["in"], "-o", batch["out"], "-r") == 0
     assert "done 4, skipped 0, failed 0" in capsys.readouterr().out
-    denoiser = Denoiser(batch["model"], threads=1)
+    denoiser = OnnxDenoiser(batch["model"], threads=1)
     for name in ("a.png", "b.tif", "sub/c.npy", "d.png"):
         source, output = batch["in"] / name, batch["out"] / name
         frames, written = read_frames(source), read_frames(output)
@@ -103,7 +103,7 @@ def test_format_and_float32_options(batch):
     assert _run(batch["model"], batch["in"] / "a.png", "-o", batch["out"], "--format", "tif", "--float32") == 0
     written = tifffile.imread(batch["out"] / "a.tif")
     assert written.dtype == np.float32 and written.shape == (50, 60)
-    expected = Denoiser(batch["model"], threads=1).run(read_frames(batch["in"] / "a.png")[0], as_float=True)
+    expected = OnnxDenoiser(batch["model"], threads=1).run(read_frames(batch["in"] / "a.png")[0], as_float=True)
     np.testing.assert_allclose(written, expected[:, :, 0], atol=1e-3)
 
 
@@ -132,7 +132,7 @@ def test_model_without_metadata_is_refused_on_one_line(batch, tmp_path, capsys):
 
 def test_killed_batch_leaves_no_partial_output(batch, monkeypatch):
     calls = {"n": 0}
-    original = Denoiser.infer
+    original = OnnxDenoiser.infer
 
     def dies_midway(self, windows, sigma=None):
         calls["n"] += 1
@@ -140,7 +140,7 @@ def test_killed_batch_leaves_no_partial_output(batch, monkeypatch):
             raise KeyboardInterrupt
         return original(self, windows, sigma)
 
-    monkeypatch.setattr(Denoiser, "infer", dies_midway)
+    monkeypatch.setattr(OnnxDenoiser, "infer", dies_midway)
     assert _run(batch["model"], batch["in"] / "b.tif", "-o", batch["out"], "--tile", "8") == 130
     assert not batch["out"].exists() or not any(batch["out"].iterdir())
 
@@ -148,7 +148,7 @@ def test_killed_batch_leaves_no_partial_output(batch, monkeypatch):
 @pytest.mark.parametrize("architecture", ["residual", "residual-noisemap"])
 def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
     # The model is exported here (torch is allowed in the test process); the run itself must not need torch.
-    from grainwright.inference.normalization import Normalization
+    from grainwright.inference.images.normalization import Normalization
     from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
     from grainwright.models.export import export_checkpoint
 
@@ -156,7 +156,7 @@ def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
     payload = new_checkpoint(architecture, 1, normalization, hyper={"depth": 3, "width": 8})
     export_checkpoint(save_checkpoint(tmp_path / "model.pt", payload), tmp_path / "model.onnx", threads=1)
     script = BLOCK_TORCH + (
-        "from grainwright.inference.cli import main\n"
+        "from grainwright.console.cli import main\n"
         f"code = main(['denoise', {str(tmp_path / 'model.onnx')!r}, {str(batch['in'])!r}, "
         f"'-o', {str(batch['out'])!r}, '-r', '-q', '--threads', '1'])\n"
         "assert sys.modules.get('torch') is None\n"
@@ -171,7 +171,7 @@ def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
 def test_row_banding_is_removed_before_denoising_when_flagged(tmp_path, capsys):
     # A smooth ramp with independent row offsets (fixed-pattern noise) and white noise: the banding flag and
     # correction are the foundation's (estimation.detect_banding / correct_fixed_pattern), as in training.
-    from grainwright.inference.estimation import correct_fixed_pattern, detect_banding
+    from grainwright.inference.noise.estimation import correct_fixed_pattern, detect_banding
 
     rng = np.random.default_rng(3)
     ramp = np.linspace(300, 800, 96)[None, :] * np.ones((96, 1))
@@ -180,7 +180,7 @@ def test_row_banding_is_removed_before_denoising_when_flagged(tmp_path, capsys):
     assert detect_banding(frame).flagged
     write_image(tmp_path / "in" / "banded.tif", frame)
     model = build_conv_model(tmp_path / "m.onnx", training_sigma=20.0)
-    denoiser = Denoiser(model, threads=1)
+    denoiser = OnnxDenoiser(model, threads=1)
 
     assert _run(model, tmp_path / "in", "-o", tmp_path / "auto") == 0
     assert "banding removed" in capsys.readouterr().err

@@ -14,7 +14,7 @@ import pytest
 from scipy import ndimage
 from skimage import data, util
 
-from grainwright.inference.detail import (
+from grainwright.inference.evaluation.detail import (
     STRUCTURED_THRESHOLD,
     Region,
     added_structure,
@@ -27,7 +27,7 @@ from grainwright.inference.detail import (
     removed_structure,
     structured_residual_map,
 )
-from grainwright.inference.errors import InputError
+from grainwright.inference.common.errors import InputError
 
 SIGMA = 0.05
 LINE = Region("line", feature=(63, 40, 2, 50), background=(55, 40, 4, 50))  # [x, y, w, h]

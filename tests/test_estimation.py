@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from skimage import color, data, restoration
 
-from grainwright.inference.estimation import estimate_sigma
+from grainwright.inference.noise.estimation import estimate_sigma
 
 RNG = np.random.default_rng(2024)
 
@@ -55,7 +55,7 @@ def test_per_channel_and_units_follow_the_input():
 # ------------------------------------------------------------------------------- Poisson-Gaussian fit
 from scipy import ndimage  # noqa: E402
 
-from grainwright.inference.estimation import (  # noqa: E402
+from grainwright.inference.noise.estimation import (  # noqa: E402
     analyse_noise,
     correct_fixed_pattern,
     detect_banding,
@@ -63,7 +63,7 @@ from grainwright.inference.estimation import (  # noqa: E402
     detect_impulses,
     fit_poisson_gaussian,
 )
-from grainwright.inference.noise import noise_from_dict  # noqa: E402
+from grainwright.inference.noise.models import noise_from_dict  # noqa: E402
 
 
 def _unit(name: str) -> np.ndarray:

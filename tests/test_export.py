@@ -16,9 +16,9 @@ import torch
 from skimage import data
 
 import grainwright.models.export as export_module
-from grainwright.inference.cli import main
-from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
-from grainwright.inference.normalization import Normalization
+from grainwright.console.cli import main
+from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.images.normalization import Normalization
 from grainwright.models.checkpoint import FORMAT_VERSION, RunFolder, new_checkpoint, save_checkpoint
 from grainwright.models.export import export_checkpoint, int8_path_for, reference_output
 

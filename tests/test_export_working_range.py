@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 import torch
 
-from grainwright.inference.normalization import Normalization
+from grainwright.inference.images.normalization import Normalization
 from grainwright.models.working_range import WorkingRange
 
 BASE = Normalization("uint16", 12, 0.0, 4095.0, 1)

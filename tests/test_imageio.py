@@ -4,8 +4,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from grainwright.inference.errors import InputError
-from grainwright.inference.imageio import (
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.imageio import (
     effective_bit_depth,
     find_images,
     read_frames,
@@ -52,7 +52,7 @@ def test_16_bit_colour_png_is_a_valid_png_and_scanline_filters_match_libpng(tmp_
     from PIL import Image
     from skimage import data
 
-    from grainwright.inference import imageio
+    from grainwright.inference.images import imageio
 
     # Our 16-bit colour file is a valid PNG: Pillow (libpng-compatible) opens it, reduced to its high bytes.
     image = _random("uint16", 3, shape=(21, 34))

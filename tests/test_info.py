@@ -9,9 +9,9 @@ import onnx
 import pytest
 from onnx import TensorProto, helper
 
-from grainwright.inference.errors import InputError
-from grainwright.inference.modelinfo import read_model_metadata, render_metadata
-from grainwright.inference.normalization import Normalization
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.runtime.modelinfo import read_model_metadata, render_metadata
+from grainwright.inference.images.normalization import Normalization
 from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
 from grainwright.models.export import export_checkpoint
 
@@ -42,7 +42,7 @@ def _plain_onnx(path, metadata=None):
 
 
 def test_info_runs_with_torch_blocked(exported):
-    script = BLOCK_TORCH + f"from grainwright.inference.cli import main\nsys.exit(main(['info', {str(exported)!r}]))\n"
+    script = BLOCK_TORCH + f"from grainwright.console.cli import main\nsys.exit(main(['info', {str(exported)!r}]))\n"
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
     for expected in ("unet-small", "receptive field", "alignment         4 px", "anscombe", "recorrupted",
@@ -51,7 +51,7 @@ def test_info_runs_with_torch_blocked(exported):
 
 
 def test_info_json_is_the_stored_document(exported, capsys):
-    from grainwright.inference.cli import main
+    from grainwright.console.cli import main
 
     assert main(["info", str(exported), "--json"]) == 0
     printed = json.loads(capsys.readouterr().out)

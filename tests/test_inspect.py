@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 from skimage import color, data
 
-from grainwright.inference.cli import main
-from grainwright.inference.imageio import write_image
-from grainwright.inference.noise import load_noise, noise_from_dict
+from grainwright.console.cli import main
+from grainwright.inference.images.imageio import write_image
+from grainwright.inference.noise.models import load_noise, noise_from_dict
 
 from no_torch import BLOCK_TORCH
 
@@ -33,7 +33,7 @@ def _run(args: list[str], capsys) -> tuple[int, str, str]:
 def test_done_when_astronaut_sigma_10_within_10_percent_without_torch(tmp_path):
     path = write_image(tmp_path / "astronaut-noisy.png", _astronaut_gray_with_sigma_10())
     script = BLOCK_TORCH + (
-        "from grainwright.inference.cli import main\n"
+        "from grainwright.console.cli import main\n"
         f"sys.exit(main(['inspect', '--json', {str(path)!r}]))\n"
     )
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)

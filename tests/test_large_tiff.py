@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 import tifffile
 
-from grainwright.inference import large_tiff
-from grainwright.inference.errors import InputError
-from grainwright.inference.large_tiff import TiffRowReader, can_stream, write_tiled_tiff
-from grainwright.inference.runner import Denoiser
-from grainwright.inference.runtime_batch import denoise_files
+from grainwright.inference.images import large_tiff
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.large_tiff import TiffRowReader, can_stream, write_tiled_tiff
+from grainwright.inference.runtime.runner import OnnxDenoiser
+from grainwright.inference.runtime.batch import denoise_files
 from test_runner import NATIVE_HIGH, build_conv_model
 
 LAYOUTS = [
@@ -105,7 +105,7 @@ def test_streamed_denoise_equals_in_memory_run(tmp_path, monkeypatch, layout):
     frames = rng.uniform(0, NATIVE_HIGH, (2, 83, 61, 1)).astype(np.uint16)
     (tmp_path / "in").mkdir()
     source = _write(tmp_path / "in" / "stack.tif", frames, layout)
-    denoiser = Denoiser(model, threads=1, tile=20)
+    denoiser = OnnxDenoiser(model, threads=1, tile=20)
     [result] = denoise_files(denoiser, [source], tmp_path / "out")
     assert result.status == "done", result.message
     written = tifffile.imread(result.output)

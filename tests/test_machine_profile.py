@@ -15,8 +15,8 @@ import pytest
 from onnx import numpy_helper
 from scipy.signal import correlate2d
 
-from grainwright.inference import machine_profile as mp
-from grainwright.inference.errors import InputError
+from grainwright.inference.runtime import machine_profile as mp
+from grainwright.inference.common.errors import InputError
 
 
 def _session(proto: bytes) -> ort.InferenceSession:

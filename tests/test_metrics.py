@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from skimage import data, metrics as skmetrics
 
-from grainwright.inference.metrics import psnr, ssim
+from grainwright.inference.evaluation.metrics import psnr, ssim
 
 RNG = np.random.default_rng(11)
 

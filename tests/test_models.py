@@ -5,7 +5,7 @@ import pytest
 import torch
 from torch.utils.flop_counter import FlopCounterMode
 
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 from grainwright.models.registry import MODELS, build_model, hyper_defaults
 
 torch.set_num_threads(1)

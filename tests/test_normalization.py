@@ -6,8 +6,8 @@ import json
 import numpy as np
 import pytest
 
-from grainwright.inference.errors import ConfigError
-from grainwright.inference.normalization import Normalization
+from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images.normalization import Normalization
 
 
 @pytest.mark.parametrize("dtype", ["uint8", "uint16", "int8", "int16"])

@@ -5,22 +5,25 @@ import pkgutil
 import subprocess
 import sys
 
+import grainwright.console
 import grainwright.inference
 
 from no_torch import BLOCK_TORCH
 
 
-def _inference_modules() -> list[str]:
+def _torch_free_modules() -> list[str]:
+    """The library, and the command layer, which loads the torch half only inside a command's ``run``."""
     return [
         info.name
-        for info in pkgutil.walk_packages(grainwright.inference.__path__, prefix="grainwright.inference.")
+        for package in (grainwright.inference, grainwright.console)
+        for info in pkgutil.walk_packages(package.__path__, prefix=package.__name__ + ".")
         if not info.name.endswith("__main__")
     ]
 
 
-def test_every_inference_module_imports_with_torch_blocked():
-    modules = _inference_modules()
-    assert "grainwright.inference.cli" in modules
+def test_every_library_and_command_module_imports_with_torch_blocked():
+    modules = _torch_free_modules()
+    assert "grainwright.console.cli" in modules and "grainwright.inference.runtime.runner" in modules
     script = BLOCK_TORCH + "".join(f"import {name}\n" for name in modules) + "print('ok')\n"
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=300)
     assert result.returncode == 0, result.stderr
@@ -37,7 +40,7 @@ def test_no_bare_top_level_packages_installed(tmp_path):
     # Run from an empty folder: from the repository root the source folders themselves would be importable.
     script = (
         "import importlib.util\n"
-        "bare = [n for n in ('models', 'trainer', 'inference', 'configs') if importlib.util.find_spec(n)]\n"
+        "bare = [n for n in ('models', 'trainer', 'inference', 'configs', 'console', 'benchmarks') if importlib.util.find_spec(n)]\n"
         "print(','.join(bare))\n"
     )
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, cwd=tmp_path)
@@ -46,7 +49,7 @@ def test_no_bare_top_level_packages_installed(tmp_path):
 
 
 def test_help_lists_every_command_without_torch():
-    script = BLOCK_TORCH + "from grainwright.inference.cli import main\nmain(['--help'])\n"
+    script = BLOCK_TORCH + "from grainwright.console.cli import main\nmain(['--help'])\n"
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)
     assert result.returncode == 0, result.stderr
     for command in ("inspect", "train", "export", "info", "denoise", "compare", "demo", "bench"):
@@ -55,7 +58,7 @@ def test_help_lists_every_command_without_torch():
 
 def test_torch_command_without_torch_gives_clear_message(tmp_path):
     script = BLOCK_TORCH + (
-        "from grainwright.inference.cli import main\n"
+        "from grainwright.console.cli import main\n"
         f"sys.exit(main(['train', '--data', {str(tmp_path)!r}]))\n"
     )
     result = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)

@@ -18,7 +18,7 @@ import pytest
 from scipy import ndimage
 from skimage import color, data, util
 
-from grainwright.inference.quality import (
+from grainwright.inference.evaluation.quality import (
     ms_ssim,
     ms_ssim_scales,
     no_reference_figures,

@@ -8,8 +8,8 @@ import re
 import numpy as np
 import pytest
 
-from grainwright.inference.errors import InputError
-from grainwright.inference.report import (
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.evaluation.report import (
     CAUTION,
     Column,
     CropSet,
@@ -77,7 +77,7 @@ def test_existing_report_needs_overwrite_and_is_replaced_whole(tmp_path):
 
 
 def test_failed_write_leaves_nothing(tmp_path, monkeypatch):
-    import grainwright.inference.report as report
+    import grainwright.inference.evaluation.report as report
 
     def broken(*args, **kwargs):
         raise RuntimeError("disk full")

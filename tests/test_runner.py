@@ -13,8 +13,8 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from grainwright.inference.errors import ConfigError, InputError
-from grainwright.inference.runner import Denoiser, ModelSpec
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
 
 NATIVE_HIGH = 1000.0  # the graphs map 0..1000 native to 0..1 working
 TRAINING_NOISE = {"kind": "poisson-gaussian", "gain": 0.01, "read": 0.02}  # working units
@@ -118,7 +118,7 @@ def test_tiled_equals_whole_on_a_sample_image(conv_model):
     from skimage import data
 
     image = (data.camera()[:150, :190, None].astype(np.float32) * (NATIVE_HIGH / 255)).astype(np.uint16)
-    denoiser = Denoiser(conv_model, threads=1, tile=32, batch=3)
+    denoiser = OnnxDenoiser(conv_model, threads=1, tile=32, batch=3)
     tiled = denoiser.run(image, as_float=True)
     whole = denoiser.run_whole(image)
     assert np.max(np.abs(tiled - whole)) / NATIVE_HIGH < 1e-5
@@ -127,18 +127,18 @@ def test_tiled_equals_whole_on_a_sample_image(conv_model):
 
 def test_output_keeps_dtype_and_clips_to_the_model_range(conv_model):
     image = np.full((20, 30, 1), 990, np.uint16)
-    out = Denoiser(conv_model, threads=1).run(image)
+    out = OnnxDenoiser(conv_model, threads=1).run(image)
     assert out.dtype == np.uint16 and out.shape == image.shape
     assert out.max() <= NATIVE_HIGH  # the model's native range, not the dtype's
-    flat = Denoiser(conv_model, threads=1).run(image[:, :, 0])
+    flat = OnnxDenoiser(conv_model, threads=1).run(image[:, :, 0])
     assert flat.shape == (20, 30)
 
 
 def test_strength_blends_between_input_and_model_output(conv_model):
     image = np.random.default_rng(1).uniform(0, NATIVE_HIGH, (24, 24, 1)).astype(np.float32)
-    full = Denoiser(conv_model, threads=1).run(image, as_float=True)
-    half = Denoiser(conv_model, threads=1, strength=0.5).run(image, as_float=True)
-    none = Denoiser(conv_model, threads=1, strength=0.0).run(image, as_float=True)
+    full = OnnxDenoiser(conv_model, threads=1).run(image, as_float=True)
+    half = OnnxDenoiser(conv_model, threads=1, strength=0.5).run(image, as_float=True)
+    none = OnnxDenoiser(conv_model, threads=1, strength=0.0).run(image, as_float=True)
     np.testing.assert_allclose(half, image + 0.5 * (full - image), atol=1e-3)
     np.testing.assert_allclose(none, image, atol=1e-4)
 
@@ -146,10 +146,10 @@ def test_strength_blends_between_input_and_model_output(conv_model):
 def test_noise_map_strength_scales_the_map(tmp_path):
     path = build_conv_model(tmp_path / "map.onnx", noise_map=True, training_sigma=20.0)
     image = np.random.default_rng(2).uniform(0, NATIVE_HIGH, (16, 20, 1)).astype(np.float32)
-    doubled = Denoiser(path, threads=1, noise_sigma=10.0, strength=2.0).run(image, as_float=True)
-    direct = Denoiser(path, threads=1, noise_sigma=20.0).run(image, as_float=True)
-    trained = Denoiser(path, threads=1, noise_sigma="training").run(image, as_float=True)
-    other = Denoiser(path, threads=1, noise_sigma=5.0).run(image, as_float=True)
+    doubled = OnnxDenoiser(path, threads=1, noise_sigma=10.0, strength=2.0).run(image, as_float=True)
+    direct = OnnxDenoiser(path, threads=1, noise_sigma=20.0).run(image, as_float=True)
+    trained = OnnxDenoiser(path, threads=1, noise_sigma="training").run(image, as_float=True)
+    other = OnnxDenoiser(path, threads=1, noise_sigma=5.0).run(image, as_float=True)
     np.testing.assert_allclose(doubled, direct, atol=1e-4)
     np.testing.assert_allclose(trained, direct, atol=1e-4)
     assert np.max(np.abs(other - direct)) > 1e-3
@@ -158,7 +158,7 @@ def test_noise_map_strength_scales_the_map(tmp_path):
 def test_noise_map_from_the_training_noise_model(tmp_path):
     # Reference: the Poisson-Gaussian variance model gain * x + read^2 (Foi et al. 2008), in working units.
     path = build_conv_model(tmp_path / "map.onnx", noise_map=True)
-    denoiser = Denoiser(path, threads=1, noise_sigma="model", strength=1.5)
+    denoiser = OnnxDenoiser(path, threads=1, noise_sigma="model", strength=1.5)
     windows = np.random.default_rng(4).uniform(-50, NATIVE_HIGH, (2, 1, 6, 7)).astype(np.float32)
     x = np.clip(windows / NATIVE_HIGH, 0, 1)
     expected = 1.5 * NATIVE_HIGH * np.sqrt(TRAINING_NOISE["gain"] * x + TRAINING_NOISE["read"] ** 2)
@@ -166,7 +166,7 @@ def test_noise_map_from_the_training_noise_model(tmp_path):
     image = windows[0].transpose(1, 2, 0)
     np.testing.assert_allclose(denoiser.run(image, as_float=True), denoiser.run_whole(image), atol=1e-3)
     with pytest.raises(ConfigError, match="no noise model"):
-        Denoiser(build_conv_model(tmp_path / "plain.onnx", noise_map=True, metadata=True, seed=1),
+        OnnxDenoiser(build_conv_model(tmp_path / "plain.onnx", noise_map=True, metadata=True, seed=1),
                  noise_sigma="model", spec=ModelSpec(receptive_field=9))
 
 
@@ -174,7 +174,7 @@ def test_noise_map_from_the_training_noise_model(tmp_path):
 def test_self_ensemble_is_the_mean_over_flips_and_rotations(conv_model, members):
     # numpy's own flips and rotations are the reference for the dihedral transforms.
     image = np.random.default_rng(3).uniform(0, NATIVE_HIGH, (18, 26, 1)).astype(np.float32)
-    plain = Denoiser(conv_model, threads=1)
+    plain = OnnxDenoiser(conv_model, threads=1)
     transforms = [
         (lambda a: a, lambda a: a),
         (lambda a: a[:, ::-1], lambda a: a[:, ::-1]),
@@ -186,7 +186,7 @@ def test_self_ensemble_is_the_mean_over_flips_and_rotations(conv_model, members)
         (lambda a: np.rot90(a, 2).transpose(1, 0, 2), lambda a: np.rot90(a.transpose(1, 0, 2), -2)),
     ]
     outputs = [back(plain.run_whole(np.ascontiguousarray(go(image)))) for go, back in transforms]
-    ensemble = Denoiser(conv_model, threads=1, ensemble=members, tile=16)
+    ensemble = OnnxDenoiser(conv_model, threads=1, ensemble=members, tile=16)
     result = ensemble.run(image, as_float=True)
     if members == 8:
         np.testing.assert_allclose(result, np.mean(outputs, axis=0), atol=1e-3)
@@ -198,22 +198,22 @@ def test_self_ensemble_is_the_mean_over_flips_and_rotations(conv_model, members)
 def test_model_without_metadata_is_refused_unless_figures_are_given(tmp_path):
     path = build_conv_model(tmp_path / "bare.onnx", metadata=False)
     with pytest.raises(InputError, match="no grainwright metadata"):
-        Denoiser(path)
-    denoiser = Denoiser(path, threads=1, spec=ModelSpec(receptive_field=7))
+        OnnxDenoiser(path)
+    denoiser = OnnxDenoiser(path, threads=1, spec=ModelSpec(receptive_field=7))
     assert denoiser.spec.margin == 3
     assert denoiser.run(np.zeros((5, 5, 1), np.uint16)).shape == (5, 5, 1)
 
 
 def test_bad_inputs_give_clear_errors(conv_model, tmp_path):
     with pytest.raises(InputError, match="not found"):
-        Denoiser(tmp_path / "missing.onnx")
+        OnnxDenoiser(tmp_path / "missing.onnx")
     junk = tmp_path / "junk.onnx"
     junk.write_bytes(b"not a model")
     with pytest.raises(InputError, match="not a loadable ONNX model"):
-        Denoiser(junk)
+        OnnxDenoiser(junk)
     with pytest.raises(ConfigError, match="ensemble"):
-        Denoiser(conv_model, ensemble=3)
-    denoiser = Denoiser(conv_model, threads=1)
+        OnnxDenoiser(conv_model, ensemble=3)
+    denoiser = OnnxDenoiser(conv_model, threads=1)
     with pytest.raises(InputError, match="3 channel"):
         denoiser.run(np.zeros((8, 8, 3), np.uint16))
     with pytest.raises(InputError, match="NaN"):

@@ -6,7 +6,7 @@ import json
 import numpy as np
 import pytest
 
-from grainwright.inference.scenario import (
+from grainwright.inference.synthetic.scenario import (
     FULL_SCALE,
     SensorModel,
     generate_frame,
@@ -110,7 +110,7 @@ def test_single_frame_poisson_gaussian_fit_recovers_the_sensor(seed):
     # The foundation's single-image fit (after Foi et al. 2008) on a whole scenario frame, textures and edges
     # included, after the row-banding correction (as the demo does), recovers the sensor: gain within 15%, read
     # noise within 15% or 0.2% of the range, whichever is larger (the tolerances the fit was specified with).
-    from grainwright.inference.estimation import correct_fixed_pattern, fit_poisson_gaussian
+    from grainwright.inference.noise.estimation import correct_fixed_pattern, fit_poisson_gaussian
 
     sensor = SensorModel()
     fit = fit_poisson_gaussian(correct_fixed_pattern(generate_frame(384, 384, seed, sensor).noisy))
@@ -120,7 +120,7 @@ def test_single_frame_poisson_gaussian_fit_recovers_the_sensor(seed):
 
 
 def test_frames_report_12_bit_depth():
-    from grainwright.inference.imageio import effective_bit_depth
+    from grainwright.inference.images.imageio import effective_bit_depth
 
     assert effective_bit_depth(generate_frame(128, 128, 9).noisy) == 12
 
@@ -156,8 +156,8 @@ def test_write_scenario_layout_and_rois(tmp_path):
 
 
 def test_rois_file_reads_as_compare_regions(tmp_path):
-    # The compare command's reader (grainwright.inference.detail.load_regions) accepts the scenario's ROI files.
-    from grainwright.inference.detail import load_regions
+    # The compare command's reader (grainwright.inference.evaluation.detail.load_regions) accepts the scenario's ROI files.
+    from grainwright.inference.evaluation.detail import load_regions
 
     write_scenario(tmp_path, n_train=0, n_holdout=2, size=128, seed=5, large_size=None)
     regions = load_regions(tmp_path / "rois.json")
@@ -169,7 +169,7 @@ def test_rois_file_reads_as_compare_regions(tmp_path):
 def test_banding_is_flagged_and_the_correction_clears_it():
     # The foundation's banding flag (robust row offsets of a high-pass residual) sees the scenario's faint row
     # banding on most 256-pixel frames, and the fixed-pattern correction removes it.
-    from grainwright.inference.estimation import analyse_noise, correct_fixed_pattern
+    from grainwright.inference.noise.estimation import analyse_noise, correct_fixed_pattern
 
     before = after = 0
     for seed in range(4):

@@ -5,8 +5,8 @@ import numpy as np
 import pytest
 import torch
 
-from grainwright.inference.errors import ConfigError
-from grainwright.inference.noise import noise_from_dict
+from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.noise.models import noise_from_dict
 from grainwright.trainer.config import defaults
 from grainwright.trainer.schemes.masked import Masked, draw_mask, replace_masked
 from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor, subsample

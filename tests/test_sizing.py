@@ -11,9 +11,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from grainwright.inference.errors import ConfigError, InputError
-from grainwright.inference.machine_profile import PROFILE_FORMAT
-from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.runtime.machine_profile import PROFILE_FORMAT
+from grainwright.inference.runtime.tiling import default_tile, plan_tiles, tile_margin
 from grainwright.trainer import sizing
 
 PROFILE = {"format": PROFILE_FORMAT, "version": 1, "threads": 2,
@@ -117,7 +117,7 @@ def _noisy_data(root):
     import numpy as np
     from skimage import data
 
-    from grainwright.inference.imageio import write_image
+    from grainwright.inference.images.imageio import write_image
 
     rng = np.random.default_rng(0)
     for index, (top, left) in enumerate(((0, 0), (100, 300), (300, 100), (250, 250))):
@@ -131,7 +131,7 @@ def _noisy_data(root):
 def test_train_fits_the_model_to_a_profile(tmp_path, capsys, rungs):
     import tomllib
 
-    from grainwright.inference.cli import main
+    from grainwright.console.cli import main
 
     profile = tmp_path / "plant.json"
     profile.write_text(json.dumps(PROFILE))
@@ -156,7 +156,7 @@ def test_train_fits_the_model_to_a_profile(tmp_path, capsys, rungs):
     (["--fit-to", "plant.json", "--ms-per-frame", "100", "--frame", "64by64"], "--frame"),
 ])
 def test_train_fit_options_refuse_bad_input(tmp_path, capsys, monkeypatch, extra, problem):
-    from grainwright.inference.cli import main
+    from grainwright.console.cli import main
 
     (tmp_path / "plant.json").write_text(json.dumps(PROFILE))
     monkeypatch.chdir(tmp_path)

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import xml.etree.ElementTree as ElementTree
 
-from grainwright.inference.machine_profile import PROFILE_FORMAT
-from grainwright.inference.size_plot import points_from_sweep, predicted_ms, size_plot_svg, write_size_plot
+from grainwright.inference.runtime.machine_profile import PROFILE_FORMAT
+from grainwright.benchmarks.size_plot import points_from_sweep, predicted_ms, size_plot_svg, write_size_plot
 
 SVG = "{http://www.w3.org/2000/svg}"
 PROFILE = {"format": PROFILE_FORMAT, "version": 1, "threads": 2, "seconds_per_gmac": {"fp32": {"16": 0.2, "64": 0.1}},
@@ -49,10 +49,10 @@ def test_compare_report_shows_the_sizes_tried(tmp_path):
     import pytest
     from skimage import data
 
-    from grainwright.inference.cli import main
-    from grainwright.inference.errors import InputError
-    from grainwright.inference.imageio import write_image
-    from grainwright.inference.size_plot import size_search_svg
+    from grainwright.console.cli import main
+    from grainwright.inference.common.errors import InputError
+    from grainwright.inference.images.imageio import write_image
+    from grainwright.benchmarks.size_plot import size_search_svg
 
     def record(depth: int, width: int, psnr: float) -> dict:
         return {"spec": {"case": "gaussian", "hyper": {"depth": depth, "width": width}},

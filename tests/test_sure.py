@@ -13,7 +13,7 @@ import pytest
 from scipy import ndimage as ndi
 from skimage import color, data, restoration, util
 
-from grainwright.inference.sure import psnr_from_mse, sure_mse, sure_mse_stabilized, unclipped_mask
+from grainwright.inference.evaluation.sure import psnr_from_mse, sure_mse, sure_mse_stabilized, unclipped_mask
 
 SIGMA = 20 / 255
 

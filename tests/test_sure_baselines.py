@@ -12,7 +12,7 @@ from skimage import color, data, util
 
 from grainwright.inference.baselines.domains import denoise_in_domain
 from grainwright.inference.baselines.registry import BASELINES
-from grainwright.inference.sure import psnr_from_mse, sure_mse
+from grainwright.inference.evaluation.sure import psnr_from_mse, sure_mse
 
 SIGMA = 25 / 255
 IMAGES = {

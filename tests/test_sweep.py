@@ -1,7 +1,7 @@
 """The recorded quality search: trial composition, the self-ensemble scoring against the runtime's own ensemble,
 and the table that records every trial.
 
-The ensemble members must be the runtime's (``grainwright.inference.runner``): the scores of the search are only
+The ensemble members must be the runtime's (``grainwright.inference.runtime.runner``): the scores of the search are only
 worth something if ``grainwright denoise --ensemble N`` reproduces them.
 """
 from __future__ import annotations
@@ -9,9 +9,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from grainwright.inference.runner import ENSEMBLE_TRANSFORMS, _transform, _untransform
-from grainwright.trainer import sweep
-from grainwright.trainer.bench import ensemble_member
+from grainwright.inference.runtime.runner import ENSEMBLE_TRANSFORMS, _transform, _untransform
+from grainwright.benchmarks import size_search as sweep
+from grainwright.benchmarks.training import ensemble_member
 
 
 def test_trials_are_base_plus_changes():
@@ -48,9 +48,9 @@ def test_ensemble_scores_match_the_runtime_ensemble(tmp_path):
     import onnx
     import torch
 
-    from grainwright.inference.metrics import psnr
-    from grainwright.inference.normalization import Normalization
-    from grainwright.inference.runner import Denoiser, ModelSpec
+    from grainwright.inference.evaluation.metrics import psnr
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
     from grainwright.models.export import export_graph
     from grainwright.models.registry import build_model
 
@@ -62,9 +62,9 @@ def test_ensemble_scores_match_the_runtime_ensemble(tmp_path):
     path = tmp_path / "tiny.onnx"
     onnx.save(export_graph(model, Normalization.for_array(noisy)), str(path))
     spec = ModelSpec(receptive_field=model.receptive_field)
-    scores = sweep.evaluate(Denoiser(path, threads=1, spec=spec), {"crop": (clean, noisy)})
+    scores = sweep.evaluate(OnnxDenoiser(path, threads=1, spec=spec), {"crop": (clean, noisy)})
     for size in sweep.ENSEMBLES:
-        reference = Denoiser(path, threads=1, spec=spec, ensemble=size).run(noisy, as_float=True)
+        reference = OnnxDenoiser(path, threads=1, spec=spec, ensemble=size).run(noisy, as_float=True)
         assert scores["psnr"][str(size)]["crop"] == pytest.approx(psnr(clean, reference, peak=1.0), abs=1e-4)
     assert scores["seconds"]["8"] >= scores["seconds"]["1"] > 0
 

@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from grainwright.inference.runner import Denoiser
-from grainwright.inference.tiling import (
+from grainwright.inference.runtime.runner import OnnxDenoiser
+from grainwright.inference.runtime.tiling import (
     MAX_OVERLAP_COST,
     default_tile,
     overlap_cost,
@@ -26,11 +26,11 @@ _MODEL_DIR = Path(tempfile.mkdtemp(prefix="grainwright-tiling-"))
 
 
 @functools.cache
-def _graph_denoiser(channels: int, pooled: bool, noise_map: bool, per_pixel: bool = False) -> Denoiser:
+def _graph_denoiser(channels: int, pooled: bool, noise_map: bool, per_pixel: bool = False) -> OnnxDenoiser:
     name = f"c{channels}-p{int(pooled)}-m{int(noise_map)}-{int(per_pixel)}.onnx"
     path = build_conv_model(_MODEL_DIR / name, channels=channels, pooled=pooled, noise_map=noise_map,
                             layers=3, width=4, seed=channels)
-    return Denoiser(path, threads=1, noise_sigma="model" if per_pixel else 30.0)
+    return OnnxDenoiser(path, threads=1, noise_sigma="model" if per_pixel else 30.0)
 
 
 @given(extra=st.integers(0, 40), size=st.integers(1, 9))
@@ -122,9 +122,9 @@ TINY_HYPER = {
 
 
 @functools.cache
-def _exported_denoiser(name: str, channels: int, anscombe: bool) -> Denoiser:
+def _exported_denoiser(name: str, channels: int, anscombe: bool) -> OnnxDenoiser:
     """Export a randomly initialised registered architecture (needs torch; the runtime itself does not)."""
-    from grainwright.inference.normalization import Normalization
+    from grainwright.inference.images.normalization import Normalization
     from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
     from grainwright.models.export import export_checkpoint
 
@@ -136,7 +136,7 @@ def _exported_denoiser(name: str, channels: int, anscombe: bool) -> Denoiser:
                              training_noise={"sigma_native": 40.0})
     checkpoint = save_checkpoint(_MODEL_DIR / f"{stem}.pt", payload)
     export_checkpoint(checkpoint, _MODEL_DIR / f"{stem}.onnx", threads=1)
-    return Denoiser(_MODEL_DIR / f"{stem}.onnx", threads=1, noise_sigma="training")
+    return OnnxDenoiser(_MODEL_DIR / f"{stem}.onnx", threads=1, noise_sigma="training")
 
 
 def test_every_registered_architecture_has_a_tiny_size():

@@ -13,9 +13,9 @@ import pytest
 import torch
 from skimage import data
 
-from grainwright.inference.cli import main
-from grainwright.inference.errors import ConfigError, InputError
-from grainwright.inference.imageio import write_image
+from grainwright.console.cli import main
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.images.imageio import write_image
 from grainwright.models.checkpoint import load_checkpoint
 from grainwright.trainer.run import train_command
 
@@ -272,7 +272,7 @@ def test_sigterm_saves_a_resumable_state(tmp_path):
                "--set", "checkpoint.every_minutes=100"]
     for assignment in TINY:
         command += ["--set", assignment]
-    script = f"import sys\nfrom grainwright.inference.cli import main\nsys.exit(main({command!r}))\n"
+    script = f"import sys\nfrom grainwright.console.cli import main\nsys.exit(main({command!r}))\n"
     process = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 60
     while not (run_dir / "checkpoints" / "last.pt").exists() and time.monotonic() < deadline:

@@ -7,8 +7,8 @@ import json
 import numpy as np
 import pytest
 
-from grainwright.inference.errors import ConfigError
-from grainwright.trainer.bench import (ENSEMBLE_LABEL, OPPONENT, TEST_IMAGES, TRAIN_IMAGES, check_targets,
+from grainwright.inference.common.errors import ConfigError
+from grainwright.benchmarks.training import (ENSEMBLE_LABEL, OPPONENT, TEST_IMAGES, TRAIN_IMAGES, check_targets,
                                        render_report, run_bench)
 
 
@@ -38,7 +38,7 @@ def test_held_out_images_are_never_trained_on():
 
 
 def test_half_scale_copies_are_2x2_means_of_the_larger_training_images():
-    from grainwright.trainer.bench import HALF_SCALE_MIN_EDGE, sample_image, training_image, training_labels
+    from grainwright.benchmarks.training import HALF_SCALE_MIN_EDGE, sample_image, training_image, training_labels
 
     labels = training_labels(half_scale=True)
     assert labels[: len(TRAIN_IMAGES)] == list(TRAIN_IMAGES) == training_labels()
@@ -92,7 +92,7 @@ def test_results_of_other_settings_are_not_mixed(tmp_path):
 
 @pytest.mark.slow
 def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
-    from grainwright.trainer import bench
+    from grainwright.benchmarks import training as bench
 
     # Small crops of the same open sample images, one cheap baseline: the plumbing, not the figures.
     original = bench.sample_image
@@ -131,7 +131,7 @@ def test_a_misspelt_model_setting_stops_before_any_work(tmp_path):
 
 @pytest.mark.slow
 def test_throughput_measurement_reports_whole_run_and_step_rates(tmp_path, monkeypatch):
-    from grainwright.trainer import bench
+    from grainwright.benchmarks import training as bench
 
     original = bench.sample_image
     monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())

@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from scipy import special, stats
 
-from grainwright.inference.transforms import (
+from grainwright.inference.images.transforms import (
     anscombe_forward,
     anscombe_inverse_algebraic,
     anscombe_inverse_exact,

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 
 SCHEME_NAMES = ("auto", "supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted")
 

@@ -26,7 +26,7 @@ from pathlib import Path
 
 import numpy as np
 
-from grainwright.inference.errors import InputError
+from grainwright.inference.common.errors import InputError
 
 LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {
     "clean-noisy": ("clean", "noisy"),
@@ -82,7 +82,7 @@ def detect_layout(root: str | Path) -> Layout:
     InputError
         The folder is missing or holds no images, or a pair is missing its partner.
     """
-    from grainwright.inference.imageio import find_images
+    from grainwright.inference.images.imageio import find_images
 
     root = Path(root)
     if not root.is_dir():
@@ -188,7 +188,7 @@ class TrainingData:
 def _read_sample(layout: Layout, sample: tuple[Path, ...]) -> list[dict[str, np.ndarray]] | None:
     """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields, or None (with
     a warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
-    from grainwright.inference.imageio import read_frames
+    from grainwright.inference.images.imageio import read_frames
 
     try:
         arrays = [read_frames(path) for path in sample]

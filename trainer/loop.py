@@ -128,9 +128,9 @@ def evaluate(setup: TrainingSetup) -> dict[str, float]:
     """Score the model on the fixed validation batches.
 
     With ground truth: mean PSNR (dB) and SSIM of the output against the clean patches, in native units scaled
-    to the native range (peak = range), via ``grainwright.inference.metrics``; always: the scheme's own loss.
+    to the native range (peak = range), via ``grainwright.inference.evaluation.metrics``; always: the scheme's own loss.
     """
-    from grainwright.inference.metrics import psnr, ssim
+    from grainwright.inference.evaluation.metrics import psnr, ssim
 
     model, scheme, norm = setup.model, setup.scheme, setup.normalization
     scores: dict[str, list[float]] = {"loss": [], "psnr": [], "ssim": []}

@@ -21,8 +21,8 @@ from typing import Any, Callable
 import numpy as np
 import torch
 
-from grainwright.inference.atomic import write_text_atomic
-from grainwright.inference.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
@@ -55,7 +55,7 @@ def physical_cores() -> int:
 
 
 def _noise_description(config: dict[str, Any], root: Path) -> tuple[Any, Path | None]:
-    from grainwright.inference.noise import load_noise
+    from grainwright.inference.noise.models import load_noise
 
     given = config["noise"]["file"]
     path = Path(given) if given else root / "noise.toml"
@@ -81,7 +81,7 @@ class NoiseFindings:
 
 
 def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFindings:
-    from grainwright.inference.estimation import analyse_noise
+    from grainwright.inference.noise.estimation import analyse_noise
 
     step = max(1, len(images) // MAX_ANALYSED)
     analyses = [analyse_noise(image, normalization.low, normalization.high) for image in images[::step][:MAX_ANALYSED]]
@@ -94,7 +94,7 @@ def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFinding
 
 
 def _correct_fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> None:
-    from grainwright.inference.estimation import correct_fixed_pattern
+    from grainwright.inference.noise.estimation import correct_fixed_pattern
 
     for item in images:
         for role in roles:
@@ -108,7 +108,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     Returns the setup, the layout found and the noise model used (or None). Raises ``GrainwrightError`` on any
     problem with the data or the config; nothing is written.
     """
-    from grainwright.inference.normalization import Normalization
+    from grainwright.inference.images.normalization import Normalization
 
     data_cfg = config["data"]
     layout = detect_layout(data_cfg["folder"])
@@ -263,8 +263,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
 
 def _create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFolder:
     """Write ``config.toml`` and ``noise.toml`` into a temporary folder beside ``out`` and rename it into place."""
-    from grainwright.inference.noise import save_noise
-    from grainwright.inference.tomlio import write_toml
+    from grainwright.inference.noise.models import save_noise
+    from grainwright.inference.common.tomlio import write_toml
 
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise InputError(out, "run folder exists and is not empty (choose another --out, or --resume it)")

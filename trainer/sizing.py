@@ -9,7 +9,7 @@ a machine is
     per frame = network x ensemble members + runtime
 
 where "pixels the tiles compute" follows the runtime's own tile plan at its default tile size, so the overlap
-of the tiles is counted exactly. The profile comes from :mod:`grainwright.inference.machine_profile`
+of the tiles is counted exactly. The profile comes from :mod:`grainwright.inference.runtime.machine_profile`
 (``grainwright bench runtime MODEL --profile-out PROFILE.json`` on the target machine). The picker returns the
 largest rung whose prediction stays within the target; ``grainwright bench sizes --check-prediction`` compares
 predictions with measured ``denoise`` times.
@@ -21,9 +21,9 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
-from grainwright.inference.errors import ConfigError
-from grainwright.inference.machine_profile import seconds_per_gmac_for
-from grainwright.inference.tiling import default_tile, plan_tiles, tile_margin
+from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.runtime.machine_profile import seconds_per_gmac_for
+from grainwright.inference.runtime.tiling import default_tile, plan_tiles, tile_margin
 
 
 @dataclass(frozen=True)
@@ -130,7 +130,7 @@ def fit_assignments(profile_path: str | None, ms_per_frame: float, frame_text: s
                     announce: Callable[[str], None] = print) -> list[str]:
     """For ``grainwright train --fit-to``: pick the rung, say which and its predicted time, and return the
     ``--set`` assignments that train it. Without a profile file, this machine's is measured first."""
-    from grainwright.inference.machine_profile import load_profile, measure_profile
+    from grainwright.inference.runtime.machine_profile import load_profile, measure_profile
 
     frame = parse_frame(frame_text)
     if profile_path:
@@ -182,11 +182,11 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
     import onnx
     import torch
 
-    from grainwright.inference.imageio import write_image
-    from grainwright.inference.machine_profile import REFERENCE_DEPTH, measure_profile, seconds_per_gmac
-    from grainwright.inference.normalization import Normalization
-    from grainwright.inference.runner import Denoiser, ModelSpec
-    from grainwright.inference.runtime_batch import denoise_files
+    from grainwright.inference.images.imageio import write_image
+    from grainwright.inference.runtime.machine_profile import REFERENCE_DEPTH, measure_profile, seconds_per_gmac
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
+    from grainwright.inference.runtime.batch import denoise_files
     from grainwright.models.export import export_graph
     from grainwright.models.registry import build_model
 
@@ -210,7 +210,7 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
             model = build_model(item.architecture, 1, **item.hyper)
             path = folder / f"{item.label.replace(' ', '-')}.onnx"
             onnx.save(export_graph(model, normalization), str(path))
-            denoiser = Denoiser(path, threads=threads, spec=ModelSpec(receptive_field=item.receptive_field,
+            denoiser = OnnxDenoiser(path, threads=threads, spec=ModelSpec(receptive_field=item.receptive_field,
                                                                       alignment=item.alignment))
             denoiser.run(image[:64, :64])  # warm-up
             rows.append({"target_ms": target, "rung": item.label, "macs_per_pixel": item.macs_per_pixel,

@@ -4,14 +4,14 @@ Gaussian with a known sigma, denoise there, and come back.
 - Gaussian: nothing to do.
 - Poisson and Poisson-Gaussian (variance ``gain * signal + read^2``): the generalized Anscombe transform gives
   unit variance (Murtagh, Starck and Bijaoui 1995); back through the closed-form approximation of the exact
-  unbiased inverse (Makitalo and Foi 2011, 2013). Both from ``grainwright.inference.transforms``.
+  unbiased inverse (Makitalo and Foi 2011, 2013). Both from ``grainwright.inference.images.transforms``.
 - Multiplicative speckle: the log transform makes it additive with constant variance, ``polygamma(1, L)`` for
   intensity speckle with ``L`` looks (Gamma distributed), ``pi^2 / 24`` for single-look Rayleigh amplitude.
   The log of the noise has a non-zero mean, ``digamma(L) - log(L)`` for Gamma speckle, which is removed
   before going back so that the result estimates the signal's mean rather than its geometric mean.
 
 The noise is given as a number or per-channel array (Gaussian sigma), a noise model from
-``grainwright.inference.noise`` or its ``to_dict()`` form, e.g. ``{"kind": "poisson-gaussian", "gain": 0.01,
+``grainwright.inference.noise.models`` or its ``to_dict()`` form, e.g. ``{"kind": "poisson-gaussian", "gain": 0.01,
 "read": 0.02}``; parameters in working units.
 """
 from __future__ import annotations
@@ -23,9 +23,9 @@ from typing import Any, Callable
 import numpy as np
 from scipy.special import digamma, polygamma
 
-from grainwright.inference import transforms
+from grainwright.inference.images import transforms
 from grainwright.inference.baselines.registry import denoise
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 
 # Log-domain offset keeping zero pixels finite, in working units (the value Normalization.with_log uses).
 LOG_EPSILON = 1.0 / 256.0

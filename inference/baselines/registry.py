@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from grainwright.inference.baselines.base import Baseline
-from grainwright.inference.errors import ConfigError, InputError
+from grainwright.inference.common.errors import ConfigError, InputError
 
 FAMILIES = ("local", "tv", "wavelet", "nlm", "bm3d")
 

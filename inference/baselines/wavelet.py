@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 from grainwright.inference.baselines.base import Baseline, Parameter
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 
 RULES = {"bayes": "BayesShrink", "visu": "VisuShrink"}
 

@@ -5,7 +5,7 @@ it in ``SCHEMES`` below (see DEVELOPERS.md, "A training scheme").
 """
 from __future__ import annotations
 
-from grainwright.inference.errors import ConfigError
+from grainwright.inference.common.errors import ConfigError
 from grainwright.trainer.data import LAYOUT_TEXT
 from grainwright.trainer.schemes.base import Scheme
 from grainwright.trainer.schemes.masked import Masked

@@ -1,0 +1,1 @@
+"""One module per ``grainwright`` sub-command; see ``grainwright.console.cli``."""

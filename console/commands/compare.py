@@ -1,0 +1,76 @@
+"""``grainwright compare``: rank learned models and classical filters on your images, with a detail-loss check."""
+from __future__ import annotations
+
+import argparse
+import sys
+
+from grainwright.inference.evaluation.compare import NOISE_CHOICES, CompareOptions, run_comparison
+from grainwright.inference.common.errors import ConfigError
+from grainwright.benchmarks.size_plot import size_search_svg
+
+HELP = "compare ONNX models and classical filters on your images (with or without clean references)"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--noisy", required=True, metavar="DIR", help="folder of noisy images (PNG, TIFF, .npy)")
+    parser.add_argument("--clean", metavar="DIR",
+                        help="clean images matched to the noisy ones by file name (enables PSNR, SSIM, MS-SSIM and "
+                             "parameters tuned on ground truth)")
+    parser.add_argument("--methods", required=True, action="append", metavar="LIST",
+                        help="comma-separated .onnx files and baseline names, or all-classical (repeatable)")
+    parser.add_argument("-o", "--out", required=True, metavar="REPORT_DIR",
+                        help="report folder: results.csv, results.json, index.html")
+    parser.add_argument("--rois", metavar="FILE.json",
+                        help='regions of interest: {"image.png": {"name": {"feature": [x, y, w, h], '
+                             '"background": [x, y, w, h]}}}; without it regions are found automatically')
+    parser.add_argument("--quick", action="store_true",
+                        help="small parameter grids and crops, for demos and a first look")
+    parser.add_argument("--noise", choices=NOISE_CHOICES, default="auto",
+                        help="noise model for SURE and the classical filters (default: auto, from the data)")
+    parser.add_argument("--threads", type=int, metavar="N", help="ONNX Runtime threads (default: all cores)")
+    parser.add_argument("--sure-probes", type=int, default=1, metavar="N",
+                        help="Monte-Carlo SURE probes per method and image (default 1)")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    sizes = parser.add_argument_group("model sizes tried (from 'grainwright bench sizes --sweep')")
+    sizes.add_argument("--size-search", metavar="RESULTS.json", help="add a quality-versus-time plot of the sizes "
+                       "in this size-search results file")
+    sizes.add_argument("--profile", metavar="PROFILE.json", help="machine profile for the predicted times "
+                       "('grainwright bench runtime --profile-out')")
+    sizes.add_argument("--frame", default="1024x1024", metavar="WxH", help="frame size for the predicted times")
+    sizes.add_argument("--ms-per-frame", type=float, metavar="T",
+                       help="cycle-time target: drawn on the plot, and the chosen size is the best under it")
+
+
+def run(args: argparse.Namespace) -> int:
+    size_plot = None
+    if args.size_search:
+        if not args.profile:
+            raise ConfigError("--size-search needs --profile PROFILE.json (the machine the times are predicted for)")
+        size_plot = size_search_svg(args.size_search, args.profile, args.frame, args.ms_per_frame)
+    options = CompareOptions(
+        quick=args.quick,
+        noise=args.noise,
+        threads=args.threads,
+        sure_probes=max(1, args.sure_probes),
+        overwrite=args.overwrite,
+        size_plot=size_plot,
+    )
+    result = run_comparison(
+        args.noisy,
+        args.methods,
+        args.out,
+        clean_dir=args.clean,
+        rois=args.rois,
+        options=options,
+        log=lambda line: print(line, file=sys.stderr),
+    )
+    key, label = ("psnr", "PSNR") if result.ground_truth else ("sure_psnr", "SURE estimated PSNR")
+    print(f"{'rank':>4}  {'method':<24} {label:>20}  {'s/MP':>8}  parameter choice")
+    for entry in result.ranking:
+        quality = "unusable" if entry[key] is None else f"{entry[key]:.2f} dB"
+        print(f"{entry['rank']:>4}  {entry['method']:<24} {quality:>20}  "
+              f"{entry['seconds_per_megapixel']:>8.3f}  {entry['parameter_choice']}")
+    for finding in result.findings:
+        print(f"- {finding}")
+    print(f"report: {result.report_dir / 'index.html'}")
+    return 0

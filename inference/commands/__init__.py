@@ -1,1 +1,0 @@
-"""One module per ``grainwright`` sub-command; see ``grainwright.inference.cli``."""

@@ -1,0 +1,1 @@
+"""Evaluation: metrics, no-reference figures, SURE, detail checks, baseline tuning, the compare report."""

@@ -1,0 +1,336 @@
+"""The analysis behind ``grainwright inspect``: per-image facts and noise, a folder summary, and a
+plain-language recommendation of training scheme, transform and corrections.
+
+Torch-free. The folder layouts recognised are the trainer's (see README, "Data layouts"): ``clean/`` +
+``noisy/`` (clean/noisy pairs), ``noisy-a/`` + ``noisy-b/`` (two noisy shots), ``noisy-stacks/`` (multi-frame
+files of a static scene), ``clean/`` alone, ``noisy/`` alone or images directly in the folder.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.inference.noise.estimation import MIN_ANALYSED_SIDE, NoiseAnalysis, analyse_noise, estimate_sigma
+from grainwright.inference.images.imageio import find_images, read_frames
+from grainwright.inference.noise.models import GammaSpeckle, GaussianNoise, NoiseModel, PoissonGaussianNoise
+from grainwright.inference.images.normalization import Normalization
+
+# Folder layouts, in the order they are tried (same names as the trainer's).
+LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {
+    "clean-noisy": ("clean", "noisy"),
+    "noisy-pairs": ("noisy-a", "noisy-b"),
+    "noisy-stacks": ("noisy-stacks",),
+    "clean-only": ("clean",),
+    "noisy-only": ("noisy",),
+}
+# Images larger than this are analysed on their central crop, to bound time and memory.
+MAX_ANALYSED_SIDE = 2048
+# Below this noise level (percent of the full range) an image is treated as clean.
+CLEAN_SIGMA_PERCENT = 0.2
+
+
+@dataclass
+class ImageReport:
+    """What ``inspect`` found for one file."""
+
+    path: str
+    role: str
+    frames: int
+    shape: list[int]
+    dtype: str
+    bit_depth: int | None
+    low: float
+    high: float
+    minimum: float
+    maximum: float
+    analysis: NoiseAnalysis
+    static_stack: bool | None = None
+    pair_sigma: list[float] | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        data = {k: v for k, v in self.__dict__.items() if k != "analysis"}
+        data["noise"] = self.analysis.to_dict()
+        return data
+
+
+@dataclass
+class InspectionReport:
+    layout: str
+    images: list[ImageReport] = field(default_factory=list)
+    failures: list[dict[str, str]] = field(default_factory=list)
+    summary: dict[str, Any] = field(default_factory=dict)
+    recommendation: dict[str, Any] = field(default_factory=dict)
+    model: NoiseModel | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "layout": self.layout,
+            "images": [image.to_dict() for image in self.images],
+            "failures": self.failures,
+            "summary": self.summary,
+            "noise_model": None if self.model is None else self.model.to_dict(),
+            "recommendation": self.recommendation,
+        }
+
+
+# ------------------------------------------------------------------------------------------- gathering
+def find_layout(paths: list[str | Path], recursive: bool = False) -> tuple[str, dict[str, list[Path]]]:
+    """Decide the data layout and list files per role (``clean``, ``noisy``, ``noisy_b``, ``stacks``).
+
+    One folder holding the trainer's sub-folders gives that layout; anything else (files, globs, plain
+    folders) counts as single noisy images, where multi-frame files are checked for a static scene.
+    """
+    if len(paths) == 1 and Path(paths[0]).is_dir():
+        root = Path(paths[0])
+        for layout, folders in LAYOUT_FOLDERS.items():
+            if all((root / folder).is_dir() for folder in folders):
+                files = {folder: find_images(root / folder, recursive=recursive) for folder in folders}
+                if layout == "clean-noisy":
+                    return layout, {"noisy": files["noisy"], "clean": _matched(files["noisy"], files["clean"])}
+                if layout == "noisy-pairs":
+                    return layout, {"noisy": files["noisy-a"], "noisy_b": _matched(files["noisy-a"], files["noisy-b"])}
+                if layout == "noisy-stacks":
+                    return layout, {"stacks": files["noisy-stacks"]}
+                if layout == "clean-only":
+                    return layout, {"clean_only": files["clean"]}
+                return layout, {"noisy": files["noisy"]}
+    return "noisy-only", {"noisy": find_images(paths, recursive=recursive)}
+
+
+def _matched(first: list[Path], second: list[Path]) -> list[Path | None]:
+    """For each file of ``first``, the file of ``second`` with the same name stem (or None)."""
+    by_stem = {path.stem: path for path in second}
+    return [by_stem.get(path.stem) for path in first]
+
+
+def _central_crop(image: np.ndarray) -> np.ndarray:
+    height, width = image.shape[:2]
+    top = max(0, (height - MAX_ANALYSED_SIDE) // 2)
+    left = max(0, (width - MAX_ANALYSED_SIDE) // 2)
+    return image[top : top + MAX_ANALYSED_SIDE, left : left + MAX_ANALYSED_SIDE]
+
+
+def _is_static(first: np.ndarray, second: np.ndarray) -> bool:
+    """Two frames show the same static scene when their difference is noise alone: its plain RMS (which
+    counts moved edges) is within 25% of its wavelet-MAD noise level (which ignores them)."""
+    difference = second.astype(np.float64) - first.astype(np.float64)
+    difference -= difference.mean(axis=(0, 1), keepdims=True)  # a global brightness change is not motion
+    noise = float(np.mean(estimate_sigma(difference)))
+    rms = float(np.sqrt(np.mean(difference**2)))
+    return noise > 0 and rms <= 1.25 * noise
+
+
+def inspect_file(path: Path, role: str, bit_depth: int | None = None, partner: Path | None = None,
+                 nonfinite: str = "error") -> ImageReport:
+    """Read one file and analyse its first frame (and, for a partner file or a stack, the pair)."""
+    frames = read_frames(path, nonfinite=nonfinite)
+    if min(frames.shape[1:3]) < MIN_ANALYSED_SIDE:
+        raise InputError(path, f"{frames.shape[1]} x {frames.shape[2]} pixels is too small to analyse its noise "
+                               f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
+    norm = Normalization.for_array(frames, bit_depth=bit_depth)
+    image = _central_crop(frames[0])
+    analysis = analyse_noise(image, low=norm.low, high=norm.high)
+    report = ImageReport(
+        path=str(path), role=role, frames=int(frames.shape[0]), shape=list(frames.shape[1:]),
+        dtype=frames.dtype.name, bit_depth=norm.bit_depth, low=norm.low, high=norm.high,
+        minimum=float(frames.min()), maximum=float(frames.max()), analysis=analysis,
+    )
+    if frames.shape[0] > 1:
+        report.static_stack = _is_static(image, _central_crop(frames[1]))
+    if partner is not None:
+        other = read_frames(partner, nonfinite=nonfinite)
+        if other.shape[1:] != frames.shape[1:]:
+            raise InputError(partner, f"shape {other.shape[1:]} does not match {path} {frames.shape[1:]}")
+        difference = _central_crop(other[0]).astype(np.float64) - image.astype(np.float64)
+        spread = difference.reshape(-1, difference.shape[-1]).std(axis=0)
+        # noisy minus clean is the noise itself; the difference of two noisy shots has twice its variance.
+        report.pair_sigma = [float(s) for s in (spread if role == "noisy+clean" else spread / np.sqrt(2.0))]
+    return report
+
+
+def inspect_paths(paths: list[str | Path], recursive: bool = False, bit_depth: int | None = None,
+                  nonfinite: str = "error") -> InspectionReport:
+    """Inspect every image found under ``paths``; unreadable files are recorded in ``failures`` and skipped."""
+    layout, files = find_layout(list(paths), recursive=recursive)
+    report = InspectionReport(layout=layout)
+    jobs: list[tuple[Path, str, Path | None]] = []
+    if "clean" in files:
+        jobs = [(n, "noisy+clean", c) for n, c in zip(files["noisy"], files["clean"])]
+    elif "noisy_b" in files:
+        jobs = [(a, "noisy+noisy", b) for a, b in zip(files["noisy"], files["noisy_b"])]
+    elif "stacks" in files:
+        jobs = [(s, "stack", None) for s in files["stacks"]]
+    elif "clean_only" in files:
+        jobs = [(c, "clean", None) for c in files["clean_only"]]
+    else:
+        jobs = [(n, "noisy", None) for n in files["noisy"]]
+    for path, role, partner in jobs:
+        if role in ("noisy+clean", "noisy+noisy") and partner is None:
+            report.failures.append({"path": str(path), "error": f"{path}: no file with the same name to pair with"})
+            continue
+        try:
+            report.images.append(inspect_file(path, role, bit_depth=bit_depth, partner=partner, nonfinite=nonfinite))
+        except GrainwrightError as error:
+            report.failures.append({"path": str(path), "error": str(error)})
+    if report.images:
+        report.summary, report.model = summarise(report.images)
+        report.recommendation = recommend(report.layout, report.images, report.summary)
+        if len(paths) == 1 and Path(paths[0]).is_dir():
+            report.recommendation["command"] = report.recommendation["command"].replace("DIR", str(paths[0]))
+    return report
+
+
+# ------------------------------------------------------------------------------------ summary and advice
+def summarise(images: list[ImageReport]) -> tuple[dict[str, Any], NoiseModel]:
+    """Folder figures and one noise model for the whole set (medians over images, working units)."""
+    analyses = [image.analysis for image in images]
+    kinds = [a.kind.split("+")[0] for a in analyses]
+    main_kind = max(set(kinds), key=kinds.count)
+    chosen = [a for a, k in zip(analyses, kinds) if k == main_kind]
+    sigma_working = float(np.median([np.mean(a.sigma) / (a.high - a.low) for a in analyses]))
+    if main_kind == "poisson-gaussian":
+        fits = [a.working_fit() for a in chosen]
+        model: NoiseModel = PoissonGaussianNoise(
+            gain=float(np.median([f["gain"] for f in fits])), read=float(np.median([f["read"] for f in fits]))
+        )
+    elif main_kind == "speckle-gamma":
+        model = GammaSpeckle(looks=float(np.median([a.model.components[0].looks if hasattr(a.model, "components")
+                                                    else a.model.looks for a in chosen])))
+    else:
+        model = GaussianNoise(sigma=sigma_working)
+    summary = {
+        "images": len(images),
+        "dtypes": sorted({image.dtype for image in images}),
+        "bit_depths": sorted({image.bit_depth for image in images if image.bit_depth is not None}),
+        "shapes": sorted({tuple(image.shape) for image in images}),
+        "median_sigma_percent": 100.0 * sigma_working,
+        "noise_kind": main_kind,
+        "confident_images": sum(a.confident for a in chosen),
+        "confident": sum(a.confident for a in chosen) * 2 > len(chosen),
+        "signal_dependent_images": sum(a.signal_dependent for a in analyses),
+        "impulse_images": sum(a.impulse.flagged for a in analyses),
+        "banding_images": sum(a.banding.flagged for a in analyses),
+        "correlated_images": sum(a.correlation.flagged for a in analyses),
+        "static_stacks": sum(bool(image.static_stack) for image in images),
+        "stacks": sum(image.frames > 1 for image in images),
+        "looks_clean": 100.0 * sigma_working < CLEAN_SIGMA_PERCENT,
+    }
+    summary["shapes"] = [list(shape) for shape in summary["shapes"]]
+    return summary, model
+
+
+def recommend(layout: str, images: list[ImageReport], summary: dict[str, Any]) -> dict[str, Any]:
+    """Training scheme, transform and corrections for the data found, each with its reason in plain words."""
+    kind = summary["noise_kind"]
+    transform = {"poisson-gaussian": "anscombe", "speckle-gamma": "log"}.get(kind)
+    cautions: list[str] = []
+    if layout == "clean-noisy":
+        scheme, why = "supervised", "clean/noisy pairs were found: train on them directly"
+    elif layout in ("noisy-pairs",) or (summary["stacks"] and summary["static_stacks"] == summary["images"]):
+        scheme, why = "noise2noise", (
+            "two independent noisy shots of each scene were found: Noise2Noise learns from them as if one were "
+            "clean"
+        )
+    elif layout == "clean-only" or summary["looks_clean"]:
+        scheme = "supervised"
+        why = ("the images look clean (noise below {:.1f}% of the range): train supervised with fresh synthetic "
+               "noise from a noise.toml (write it from noisy images of the same sensor with "
+               "'grainwright inspect NOISY --save-noise noise.toml', or by hand)").format(CLEAN_SIGMA_PERCENT)
+    elif summary["confident"] and not summary["correlated_images"] and not summary["impulse_images"]:
+        scheme = "recorrupted"
+        why = ("single noisy images whose noise model is estimated confidently: Recorrupted-to-Recorrupted "
+               "trains on every pixel with noise drawn from that model")
+    else:
+        scheme = "neighbor2neighbor"
+        why = ("single noisy images, and the noise model is not certain enough for Recorrupted-to-Recorrupted: "
+               "Neighbor2Neighbor needs only pixel-independent, zero-mean noise")
+    if layout == "noisy-stacks" and summary["static_stacks"] < summary["images"]:
+        cautions.append("some stacks do not look like a static scene (frames differ by more than noise); "
+                        "Noise2Noise on them would learn to blur motion")
+    corrections = []
+    if summary["banding_images"]:
+        corrections.append("fixed-pattern correction (row/column banding found): the trainer applies it when "
+                           "the flag is raised; Noise2Noise cannot remove a pattern present in both shots")
+    if summary["impulse_images"]:
+        corrections.append("impulse noise found (isolated spikes): mask or median-filter those pixels first")
+    if summary["correlated_images"]:
+        cautions.append("noise is correlated between neighbouring pixels (demosaicing, sharpening, compression "
+                        "or binning): self-supervised schemes assume pixel-independent noise and will leave "
+                        "part of it; pairs (supervised or Noise2Noise) or raw data avoid this")
+    if transform == "anscombe":
+        transform_why = "noise grows with the signal: the generalized Anscombe transform makes it unit-variance Gaussian"
+    elif transform == "log":
+        transform_why = "multiplicative speckle: the log transform makes it additive with constant variance"
+    else:
+        transform_why = "noise level does not depend on the signal: no transform needed"
+    return {
+        "scheme": scheme,
+        "why": why,
+        "transform": transform,
+        "transform_why": transform_why,
+        "corrections": corrections,
+        "cautions": cautions,
+        "command": f"grainwright train --data DIR --scheme {scheme}",
+    }
+
+
+# ------------------------------------------------------------------------------------------------ text
+def format_text(report: InspectionReport) -> str:
+    """The human-readable report."""
+    lines: list[str] = []
+    for image in report.images:
+        a = image.analysis
+        depth = f"{image.bit_depth}-bit" if image.bit_depth is not None else "float"
+        frames = f", {image.frames} frames" if image.frames > 1 else ""
+        lines.append(f"{image.path}  [{image.role}]")
+        lines.append(
+            f"  image     {'x'.join(str(s) for s in image.shape)} {image.dtype}, {depth} "
+            f"(full range {image.low:g}..{image.high:g}), values {image.minimum:g}..{image.maximum:g}{frames}"
+        )
+        sigmas = ", ".join(f"{s:.3g}" for s in a.sigma)
+        percents = ", ".join(f"{p:.2f}%" for p in a.sigma_percent)
+        lines.append(f"  noise     sigma {sigmas} ({percents} of range), wavelet MAD")
+        fit = a.fit
+        lines.append(
+            f"  model     variance = {fit.gain:.4g} x signal + {fit.intercept:.4g} (native units; read "
+            f"{fit.read:.3g}), {'confident' if fit.confident else 'uncertain'} fit over {len(fit.levels)} levels; "
+            f"signal-dependent: {'yes' if fit.signal_dependent else 'no'}"
+        )
+        lines.append(
+            f"  flags     impulses {_yes(a.impulse.flagged)} ({100 * a.impulse.fraction:.3f}% spikes), banding "
+            f"{_yes(a.banding.flagged)} (rows {a.banding.row_ratio:.1f}x, columns {a.banding.column_ratio:.1f}x "
+            f"noise), correlation {_yes(a.correlation.flagged)} ({a.correlation.horizontal:.2f} horizontal, "
+            f"{a.correlation.vertical:.2f} vertical)"
+        )
+        lines.append(f"  suggests  {a.model.describe()} in working units, transform: {a.transform or 'none'}")
+        if image.static_stack is not None:
+            lines.append(f"  stack     consecutive frames {'show a static scene' if image.static_stack else 'differ by more than noise'}")
+        if image.pair_sigma is not None:
+            what = "noisy minus clean" if image.role == "noisy+clean" else "difference of the two shots / sqrt(2)"
+            lines.append(f"  pair      measured noise sigma {', '.join(f'{s:.3g}' for s in image.pair_sigma)} ({what})")
+    for failure in report.failures:
+        lines.append(f"FAILED {failure['error']}")
+    if report.images:
+        s, r = report.summary, report.recommendation
+        lines.append("")
+        lines.append(f"Summary: {s['images']} image(s), layout '{report.layout}', {', '.join(s['dtypes'])}, "
+                     f"median noise {s['median_sigma_percent']:.2f}% of range, mostly {s['noise_kind']} "
+                     f"({s['confident_images']} confident), flags: impulses {s['impulse_images']}, banding "
+                     f"{s['banding_images']}, correlation {s['correlated_images']}")
+        lines.append(f"Noise model for the set: {report.model.describe()} (working units: fractions of the range)")
+        lines.append(f"Recommended scheme: {r['scheme']} - {r['why']}")
+        lines.append(f"Transform: {r['transform'] or 'none'} - {r['transform_why']}")
+        for item in r["corrections"]:
+            lines.append(f"Correction: {item}")
+        for item in r["cautions"]:
+            lines.append(f"Caution: {item}")
+        lines.append(f"Next: {r['command']}")
+    return "\n".join(lines)
+
+
+def _yes(flag: bool) -> str:
+    return "YES" if flag else "no"

@@ -1,0 +1,351 @@
+"""Denoise a batch of files safely: mirrored output names, resumable, traceable, never losing data.
+
+:func:`denoise_files` is the generator behind ``grainwright denoise``. For each input it yields a
+:class:`FileResult` (done, skipped or failed). Rules:
+
+- outputs mirror the input names under the output folder (a folder argument keeps its sub-folders), in the
+  input's format, dtype and channel count unless told otherwise;
+- nothing is written into an input's folder unless asked, nothing overwrites an input ever, and nothing
+  overwrites an existing output without ``overwrite``; every output is written under a temporary name in its
+  folder and renamed when complete;
+- each output carries a JSON record (model SHA-256 and settings) in its TIFF ImageDescription, PNG text chunk or
+  ``.npy.json`` sidecar; an existing output with the same record is skipped (so a killed batch resumes), and a
+  batch whose model or settings changed refuses to start unless the caller allows mixing or overwriting;
+- a file that cannot be processed is reported and skipped; the batch goes on.
+"""
+from __future__ import annotations
+
+import json
+import math
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from tqdm import tqdm
+
+from grainwright.inference import __version__
+from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.inference.noise.estimation import correct_fixed_pattern, detect_banding, estimate_sigma
+from grainwright.inference.images.imageio import (
+    SUPPORTED_SUFFIXES,
+    effective_bit_depth,
+    find_images,
+    read_frames,
+    read_text,
+    write_image,
+)
+from grainwright.inference.images.large_tiff import WRITABLE_COMPRESSION, TiffRowReader, can_stream, write_tiled_tiff
+from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256, to_dtype
+from grainwright.inference.runtime.tiling import TIFF_TILE_MULTIPLE, reflect_indices
+
+RECORD_TOOL = "grainwright denoise"
+# Warn when an input's noise level or full-scale range differs from the training data by more than this factor.
+DOMAIN_FACTOR = 2.0
+# Edge of the central crop a streamed frame's noise level and bit depth are estimated on (pixels).
+SAMPLE_EDGE = 1024
+# Below this edge (pixels) the wavelet MAD estimate has too few coefficients to be worth a warning.
+MIN_ESTIMATE_EDGE = 16
+# When to remove row/column banding before the model sees a frame (the trainer does the same before training).
+FIXED_PATTERN_MODES = ("auto", "always", "never")
+
+
+@dataclass
+class FileResult:
+    """What happened to one input file."""
+
+    source: Path
+    output: Path | None
+    status: str  # "done", "skipped" or "failed"
+    message: str = ""
+    megapixels: float = 0.0
+    seconds: float = 0.0
+    warnings: list[str] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class Job:
+    source: Path
+    output: Path
+
+
+def plan_jobs(
+    inputs: list[str | Path], out_dir: Path, *, recursive: bool = False, suffix: str | None = None
+) -> list[Job]:
+    """Pair each input file with its output path under ``out_dir`` (``suffix`` replaces the input's)."""
+    jobs: dict[Path, Job] = {}
+    out_resolved = out_dir.resolve()
+    for entry in inputs:
+        entry = Path(entry)
+        # An output folder inside an input folder holds earlier outputs, not inputs.
+        nested = entry.is_dir() and entry.resolve() in out_resolved.parents
+        for source in find_images([entry], recursive=recursive):
+            if nested and out_resolved in source.resolve().parents:
+                continue
+            relative = source.relative_to(entry) if entry.is_dir() else Path(source.name)
+            output = out_dir / relative
+            if suffix is not None:
+                output = output.with_suffix(suffix)
+            if output in jobs and jobs[output].source != source:
+                raise InputError(source, f"has the same output name as {jobs[output].source} ({output})")
+            jobs.setdefault(output, Job(source, output))
+    return list(jobs.values())
+
+
+def read_record(path: Path) -> dict[str, Any] | None:
+    """The grainwright record stored in an output, or None when there is none."""
+    try:
+        text = read_text(path)
+        record = json.loads(text) if text else None
+    except (OSError, ValueError, InputError):
+        return None
+    return record if isinstance(record, dict) and record.get("tool") == RECORD_TOOL else None
+
+
+def _same_run(record: dict[str, Any], expected: dict[str, Any]) -> bool:
+    return record.get("model_sha256") == expected["model_sha256"] and record.get("settings") == expected["settings"]
+
+
+def domain_warnings(denoiser: OnnxDenoiser, sample: np.ndarray) -> list[str]:
+    """Compare an input's noise level (MAD estimate, Donoho & Johnstone 1994) and effective bit depth with what
+    the model saw in training; one line per figure off by more than ``DOMAIN_FACTOR``. ``sample`` is the
+    central ``SAMPLE_EDGE`` square (or all) of a file's first frame."""
+    spec, notes = denoiser.spec, []
+    if spec.training_sigma and min(sample.shape[:2]) >= MIN_ESTIMATE_EDGE:
+        sigma = float(np.mean(estimate_sigma(sample)))
+        ratio = sigma / spec.training_sigma
+        if not 1 / DOMAIN_FACTOR <= ratio <= DOMAIN_FACTOR:
+            notes.append(f"noise level {sigma:.3g} is {ratio:.2g}x the training level {spec.training_sigma:.3g} "
+                         "(native units); results may be poor")
+    bits = effective_bit_depth(sample)
+    if bits is not None and spec.training_bit_depth:
+        ratio = 2.0 ** (bits - spec.training_bit_depth)
+        if not 1 / DOMAIN_FACTOR <= ratio <= DOMAIN_FACTOR:
+            notes.append(f"effective bit depth {bits} differs from the training data's {spec.training_bit_depth}")
+    return notes
+
+
+def _noise_note(denoiser: OnnxDenoiser) -> str | None:
+    return "per pixel from the training noise model" if denoiser.noise_model is not None else None
+
+
+def _central_crop(height: int, width: int) -> tuple[int, int, int, int]:
+    y0, x0 = max(0, (height - SAMPLE_EDGE) // 2), max(0, (width - SAMPLE_EDGE) // 2)
+    return y0, min(height, y0 + SAMPLE_EDGE), x0, min(width, x0 + SAMPLE_EDGE)
+
+
+def denoise_files(
+    denoiser: OnnxDenoiser,
+    inputs: list[str | Path],
+    out_dir: str | Path,
+    *,
+    recursive: bool = False,
+    out_format: str | None = None,
+    as_float: bool = False,
+    overwrite: bool = False,
+    keep_mixed: bool = False,
+    into_input_folder: bool = False,
+    fixed_pattern: str = "auto",
+    progress: bool = False,
+) -> Iterator[FileResult]:
+    """Denoise files into ``out_dir``, yielding one :class:`FileResult` per input.
+
+    Parameters
+    ----------
+    denoiser : OnnxDenoiser
+        The model and its settings.
+    inputs : list of paths
+        Files, folders and glob patterns.
+    out_dir : path
+        Output folder (created when missing).
+    recursive : bool
+        Descend into sub-folders of folder inputs; outputs keep the sub-folder layout.
+    out_format : {"tif", "png", "npy"}, optional
+        Write this format instead of the input's.
+    as_float : bool
+        Write float32 native values (unclipped) instead of the input's dtype (TIFF and npy only).
+    overwrite : bool
+        Redo and replace existing outputs (inputs are never overwritten).
+    keep_mixed : bool
+        Let a batch go on although existing outputs were made with another model or settings (they are kept).
+    into_input_folder : bool
+        Allow ``out_dir`` to be an input's own folder.
+    fixed_pattern : {"auto", "always", "never"}
+        Remove row/column banding (``estimation.correct_fixed_pattern``) before denoising: ``auto`` when
+        ``estimation.detect_banding`` flags the frame. Self-supervised models cannot remove a fixed pattern
+        themselves. Streamed (tiled or striped) TIFFs are never corrected, since the estimate needs whole rows
+        and columns; their result carries a note when a correction was asked for.
+    progress : bool
+        Show tqdm bars over files and tiles.
+
+    Raises
+    ------
+    GrainwrightError
+        Before anything is written: no inputs, output folder is an input folder, or existing outputs made with
+        another model or settings (unless ``overwrite`` or ``keep_mixed``).
+    """
+    if fixed_pattern not in FIXED_PATTERN_MODES:
+        raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
+                               f"got {fixed_pattern!r}")
+    out_dir = Path(out_dir)
+    suffix = None if out_format is None else "." + out_format.lower().lstrip(".")
+    if suffix is not None and suffix not in SUPPORTED_SUFFIXES:
+        raise GrainwrightError(f"--format must be one of {', '.join(s[1:] for s in SUPPORTED_SUFFIXES)}")
+    jobs = plan_jobs(inputs, out_dir, recursive=recursive, suffix=suffix)
+    if not jobs:
+        raise GrainwrightError("no input images found (supported: " + ", ".join(SUPPORTED_SUFFIXES) + ")")
+    if not into_input_folder:
+        for job in jobs:
+            if job.output.parent.resolve() == job.source.parent.resolve():
+                raise GrainwrightError(f"output folder {job.output.parent} holds the input {job.source}; choose "
+                                       "another -o folder, or allow it with --into-input-folder")
+    expected = {
+        "model_sha256": file_sha256(denoiser.path),
+        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float,
+                     "fixed_pattern": fixed_pattern},
+    }
+    if not overwrite and not keep_mixed:
+        changed = [job.output for job in jobs if job.output.exists()
+                   and (record := read_record(job.output)) is not None and not _same_run(record, expected)]
+        if changed:
+            raise GrainwrightError(
+                f"{len(changed)} existing output(s) in {out_dir} were made with another model or other settings "
+                f"(first: {changed[0]}); use --overwrite to redo them, --keep-mixed to keep them and go on, or "
+                "another -o folder")
+
+    files_bar = tqdm(total=len(jobs), unit="file", disable=not progress, position=0)
+    tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)
+    try:
+        for job in jobs:
+            result = _process(denoiser, job, expected, overwrite=overwrite, as_float=as_float,
+                              fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
+            files_bar.update(1)
+            yield result
+    finally:
+        tiles_bar.close()
+        files_bar.close()
+
+
+def _process(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, overwrite: bool, as_float: bool,
+             fixed_pattern: str, tiles_bar: tqdm) -> FileResult:
+    start = time.perf_counter()
+    source, output = job.source, job.output
+    try:
+        if output.exists() and output.resolve() == source.resolve():
+            raise InputError(source, "output would overwrite this input; choose another -o folder")
+        if output.exists() and not overwrite:
+            record = read_record(output)
+            if record is not None and _same_run(record, expected):
+                return FileResult(source, output, "skipped", "already done with this model and settings")
+            if record is None:
+                raise InputError(output, "exists and was not written by grainwright denoise (use --overwrite)")
+            return FileResult(source, output, "skipped", "kept (made with another model or settings)")
+        output.parent.mkdir(parents=True, exist_ok=True)
+        record = {
+            "tool": RECORD_TOOL,
+            "version": __version__,
+            "model": denoiser.path.name,
+            **expected,
+            "architecture": denoiser.spec.architecture,
+            "tile": denoiser.tile,
+            "margin": denoiser.spec.margin,
+            "source": source.name,
+            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        }
+        streamed = output.suffix.lower() in (".tif", ".tiff") and source.suffix.lower() in (".tif", ".tiff") \
+            and can_stream(source)
+        if streamed:
+            megapixels, notes = _stream_tiff(denoiser, source, output, record, overwrite=overwrite,
+                                             as_float=as_float, tiles_bar=tiles_bar)
+            if fixed_pattern != "never":
+                notes.append("fixed-pattern correction is not applied to streamed TIFFs (it needs whole rows)")
+        else:
+            megapixels, notes = _in_memory(denoiser, source, output, record, overwrite=overwrite,
+                                           as_float=as_float, fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
+    except GrainwrightError as error:
+        return FileResult(source, None, "failed", str(error), seconds=time.perf_counter() - start)
+    except MemoryError:
+        return FileResult(source, None, "failed", f"{source}: not enough memory", seconds=time.perf_counter() - start)
+    return FileResult(source, output, "done", "", megapixels, time.perf_counter() - start, notes)
+
+
+def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
+               as_float: bool, fixed_pattern: str, tiles_bar: tqdm) -> tuple[float, list[str]]:
+    frames = read_frames(source)
+    count, height, width, channels = frames.shape
+    denoiser.check_channels(channels, source)
+    y0, y1, x0, x1 = _central_crop(height, width)
+    notes = domain_warnings(denoiser, frames[0, y0:y1, x0:x1])
+    if height * width >= 4_000_000:
+        needed = frames.nbytes + count * height * width * channels * 4 * 3
+        notes.append(f"decoded whole (not a tiled or striped TIFF): needs about {needed / 2**20:.0f} MiB")
+    plan = denoiser.plan(height, width)
+    tiles_bar.reset(total=len(plan.tiles) * count)
+    levels, results, corrected = [], [], []
+    for frame in frames:
+        correct = fixed_pattern == "always" or (fixed_pattern == "auto" and detect_banding(frame).flagged)
+        corrected.append(correct)
+        model_input = correct_fixed_pattern(frame) if correct else frame
+        level = denoiser.sigma_for(model_input)
+        levels.append(level)
+        values = denoiser.run(model_input, sigma=level, as_float=True, progress=tiles_bar.update)
+        results.append(values if as_float else to_dtype(values, frames.dtype, denoiser.spec))
+    record["fixed_pattern_corrected"] = corrected
+    if any(corrected):
+        notes.append(f"row/column banding removed before denoising in {sum(corrected)} of {count} frame(s)")
+    record["noise_sigma_used"] = _noise_note(denoiser) or (levels if denoiser.spec.takes_noise_map else None)
+    stack = np.stack(results)
+    try:
+        write_image(output, stack[0] if count == 1 else stack, text=json.dumps(record), overwrite=overwrite)
+    except ValueError as error:
+        raise InputError(output, f"cannot write: {error}") from None
+    return count * height * width / 1e6, notes
+
+
+def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
+                 as_float: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
+    with TiffRowReader(source) as reader:
+        height, width, channels = reader.shape
+        denoiser.check_channels(channels, source)
+        y0, y1, x0, x1 = _central_crop(height, width)
+        notes = domain_warnings(denoiser, reader.read_rows(0, y0, y1)[:, x0:x1])
+        # The kept rectangle is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
+        plan = denoiser.plan(height, width, step=math.lcm(TIFF_TILE_MULTIPLE, denoiser.spec.alignment))
+        rows = reflect_indices(plan.padded_height, height)
+        cols = reflect_indices(plan.padded_width, width)
+        identity_cols = plan.padded_width == width
+        out_dtype = np.dtype(np.float32) if as_float else reader.dtype
+        tiles_bar.reset(total=len(plan.tiles) * reader.frames)
+
+        def frame_tiles(frame: int) -> Iterator[np.ndarray]:
+            def read_padded_rows(top: int, bottom: int) -> np.ndarray:
+                # Copies only where the padding reflects rows or columns: a band of a wide image is large.
+                wanted = rows[top:bottom]
+                first, last = int(wanted.min()), int(wanted.max()) + 1
+                band = reader.read_rows(frame, first, last)
+                if not np.array_equal(wanted, np.arange(first, last)):
+                    band = band[wanted - first]
+                return band if identity_cols else band[:, cols]
+
+            crop = reader.read_rows(frame, y0, y1)[:, x0:x1] if denoiser.spec.takes_noise_map else None
+            level = denoiser.sigma_for(crop)
+            for _, kept in denoiser.kept_tiles(plan, read_padded_rows, level, tiles_bar.update):
+                yield kept if as_float else to_dtype(kept, out_dtype, denoiser.spec)
+
+        if not denoiser.spec.takes_noise_map or denoiser.noise_sigma == "model":
+            record["noise_sigma_used"] = _noise_note(denoiser)
+        elif denoiser.noise_sigma == "estimate":
+            # The record is written with the first page, before later frames are read: name the method instead.
+            record["noise_sigma_used"] = f"estimated per frame on the central {y1 - y0} x {x1 - x0} pixels"
+            notes.append(record["noise_sigma_used"])
+        else:
+            record["noise_sigma_used"] = denoiser.sigma_for(None)
+        write_tiled_tiff(
+            output, (frame_tiles(frame) for frame in range(reader.frames)),
+            shape=(height, width, channels), dtype=out_dtype, tile=plan.tile, description=json.dumps(record),
+            compression=WRITABLE_COMPRESSION.get(reader.compression), count=reader.frames, overwrite=overwrite,
+        )
+        return reader.frames * height * width / 1e6, notes

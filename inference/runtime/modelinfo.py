@@ -1,0 +1,140 @@
+"""Read and show the description an exported grainwright model carries (torch-free).
+
+Every exported ONNX file holds one JSON document under the ``metadata_props`` key ``grainwright``, with
+``format = "grainwright-model"`` and a ``format_version``. Its keys are listed in the README, section "export"
+(written by ``grainwright.models.export.build_metadata``).
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import onnxruntime as ort
+
+from grainwright.inference.common.errors import InputError
+
+METADATA_KEY = "grainwright"
+METADATA_FORMAT = "grainwright-model"
+METADATA_VERSION = 1
+
+
+def _session(path: Path) -> ort.InferenceSession:
+    if not path.exists():
+        raise InputError(path, "no such model file")
+    if path.is_dir():
+        raise InputError(path, "is a folder, not an ONNX model file")
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = 1
+    options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL  # reading, not running
+    try:
+        return ort.InferenceSession(str(path), options, providers=["CPUExecutionProvider"])
+    except Exception as error:  # ONNX Runtime raises several types for files it cannot parse
+        first = str(error).strip().splitlines()[0] if str(error).strip() else type(error).__name__
+        raise InputError(path, f"not a readable ONNX model ({first})") from None
+
+
+def check_metadata(metadata: Any, path: str | Path | None = None) -> dict[str, Any]:
+    """Validate the document's format name and version; return it."""
+    if not isinstance(metadata, dict) or metadata.get("format") != METADATA_FORMAT:
+        raise InputError(path, f"the '{METADATA_KEY}' metadata is not a grainwright model description")
+    version = metadata.get("format_version")
+    if not isinstance(version, int) or version < 1:
+        raise InputError(path, f"bad model description format version {version!r}")
+    if version > METADATA_VERSION:
+        raise InputError(path, f"model description format version {version} is newer than this grainwright reads "
+                               f"({METADATA_VERSION}); update grainwright")
+    return metadata
+
+
+def read_model_metadata(path: str | Path) -> dict[str, Any]:
+    """The grainwright JSON document of an exported model.
+
+    Raises
+    ------
+    InputError
+        Missing or unreadable file, no grainwright metadata (e.g. a model from elsewhere), invalid JSON, or a
+        format version newer than this grainwright reads.
+    """
+    path = Path(path)
+    text = _session(path).get_modelmeta().custom_metadata_map.get(METADATA_KEY)
+    if text is None:
+        raise InputError(path, f"has no '{METADATA_KEY}' metadata: export it with 'grainwright export', or give "
+                               "the receptive field, alignment and normalisation by hand")
+    try:
+        metadata = json.loads(text)
+    except json.JSONDecodeError as error:
+        raise InputError(path, f"the '{METADATA_KEY}' metadata is not valid JSON ({error})") from None
+    return check_metadata(metadata, path)
+
+
+def model_io(path: str | Path) -> dict[str, list[tuple[str, str, list[Any]]]]:
+    """Inputs and outputs of the graph as ``(name, type, shape)``; dynamic axes appear by name."""
+    session = _session(Path(path))
+    return {
+        "inputs": [(i.name, i.type, list(i.shape)) for i in session.get_inputs()],
+        "outputs": [(o.name, o.type, list(o.shape)) for o in session.get_outputs()],
+    }
+
+
+def _figure(value: Any) -> str:
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    if isinstance(value, dict):
+        return ", ".join(f"{k}={_figure(v)}" for k, v in value.items())
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_figure(v) for v in value) + "]"
+    return "-" if value is None else str(value)
+
+
+def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None) -> str:
+    """A readable multi-line text of the model description (what ``grainwright info`` prints)."""
+    architecture = metadata.get("architecture") or {}
+    lines = [
+        f"architecture      {architecture.get('name', '-')} ({_figure(architecture.get('hyper'))})",
+        f"precision         {metadata.get('precision', '-')}",
+        f"channels          {metadata.get('channels', '-')}",
+        f"parameters        {metadata.get('parameters', '-'):,}" if isinstance(metadata.get("parameters"), int)
+        else f"parameters        {_figure(metadata.get('parameters'))}",
+        f"MACs per pixel    {_figure(metadata.get('macs_per_pixel'))}",
+        f"receptive field   {metadata.get('receptive_field', '-')} px",
+        f"alignment         {metadata.get('alignment', '-')} px",
+        f"tile margin       {metadata.get('tile_margin', '-')} px",
+        f"noise map input   {'yes' if metadata.get('takes_noise_map') else 'no'}",
+    ]
+    if io:
+        for kind in ("inputs", "outputs"):
+            for name, type_name, shape in io[kind]:
+                lines.append(f"{kind[:-1]:<17} {name}: {type_name} {_figure(shape)}")
+    normalization = metadata.get("normalization") or {}
+    lines += [
+        f"normalisation     {normalization.get('dtype', '-')}, bit depth {_figure(normalization.get('bit_depth'))}, "
+        f"native range {_figure(normalization.get('low'))}..{_figure(normalization.get('high'))}, "
+        f"{normalization.get('channel_order', '-')}",
+        f"transform         {_figure(normalization.get('transform'))}",
+        f"noise (training)  {_figure(metadata.get('noise'))}",
+        f"noise level seen  {_figure(metadata.get('training_noise'))}",
+        f"scheme            {_figure(metadata.get('scheme'))}",
+        f"data fingerprint  {_figure(metadata.get('data_fingerprint'))}",
+        f"training summary  {_figure(metadata.get('training_summary'))}",
+    ]
+    parity = metadata.get("parity") or {}
+    for name in ("random", "calibration"):
+        entry = parity.get(name)
+        if entry:
+            where = entry.get("file", "random input")
+            lines.append(f"parity ({name:<11}) max |ONNX Runtime - torch| = {_figure(entry.get('max_abs_diff'))} of "
+                         f"the range on {where} {_figure(entry.get('shape'))} (limit {_figure(parity.get('tolerance'))})")
+    int8 = metadata.get("int8")
+    if int8:
+        lines.append(f"INT8              {_figure(int8.get('psnr_vs_fp32_db'))} dB vs FP32 on "
+                     f"{int8.get('held_out_patches')} held-out patches, {_figure(int8.get('speed_ratio_vs_fp32'))}x "
+                     "FP32 speed")
+    lines += [
+        f"created           {metadata.get('created', '-')} by grainwright {metadata.get('tool_version', '-')}, "
+        f"opset {metadata.get('opset', '-')}, description format {metadata.get('format_version')}",
+        f"tiling rule       {metadata.get('tiling_rule', '-')}",
+    ]
+    if metadata.get("caution"):
+        lines.append(f"caution           {metadata['caution']}")
+    return "\n".join(lines)

@@ -1,0 +1,1 @@
+"""Generated data: the demo scenario (procedural frames with known clean versions)."""
