@@ -17,8 +17,11 @@ from typing import Any
 
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import ConfigError, InputError
-from grainwright.inference.runtime.machine_profile import load_profile, seconds_per_gmac_for
 from grainwright.inference.evaluation.svgplot import log_scatter_svg
+from grainwright.inference.runtime.machine_profile import (
+    load_profile,
+    seconds_per_gmac_for,
+)
 from grainwright.inference.runtime.tiling import default_tile, plan_tiles, tile_margin
 
 

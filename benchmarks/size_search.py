@@ -31,11 +31,15 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
+from grainwright.benchmarks.training import (
+    ENSEMBLES,
+    SEARCH_BASELINES,
+    evaluate,
+    opponent,
+    runtime_denoiser,
+)
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import ConfigError
-from grainwright.benchmarks.training import (ENSEMBLES, SEARCH_BASELINES, evaluate, opponent,
-                                       runtime_denoiser)
 
 TEST_EDGE = 256
 BUDGET_CPU_SECONDS = 1200.0  # 10 minutes on 2 cores
@@ -109,7 +113,6 @@ def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> tuple[float, boo
     ``PROBE_STEPS`` after one warm-up step), in the tensor layout and precision the trainer would pick
     (:func:`grainwright.trainer.loop.fastest_step`); returns the seconds, the layout and the precision."""
     import torch
-
     from grainwright.models.registry import build_model, hyper_defaults
     from grainwright.trainer.loop import fastest_step, step_precision
     from grainwright.trainer.schemes.base import apply_model

@@ -31,7 +31,6 @@ from typing import Any
 
 import numpy as np
 import torch
-
 from grainwright.inference.common.errors import ConfigError
 
 TEST_IMAGES = ("camera", "coins", "moon")
@@ -229,7 +228,12 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
     import copy
 
     from grainwright.trainer.config import load_config
-    from grainwright.trainer.loop import make_optimizer, step_precision, to_tensors, train
+    from grainwright.trainer.loop import (
+        make_optimizer,
+        step_precision,
+        to_tensors,
+        train,
+    )
     from grainwright.trainer.run import _create_run_folder, physical_cores, prepare
 
     threads = args.threads or physical_cores()

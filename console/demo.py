@@ -26,10 +26,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
-from grainwright.inference.synthetic import scenario
-from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.console.torch_needed import require_torch
+from grainwright.inference.common.atomic import write_json_atomic
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.synthetic import scenario
 
 DEFAULT_MINUTES = 4.0
 DEFAULT_OUT = "grainwright-demo"
@@ -134,12 +134,6 @@ def prepare_out_dir(out: str | Path) -> Path:
     return out
 
 
-def _write_json(path: Path, document: dict) -> None:
-    temporary = path.with_name(f".{path.name}.partial")
-    temporary.write_text(json.dumps(document, indent=2, default=_plain) + "\n")
-    os.replace(temporary, path)
-
-
 def _plain(value: Any) -> Any:
     """JSON fallback for numpy scalars, arrays and paths."""
     if isinstance(value, np.generic):
@@ -170,7 +164,7 @@ def run_demo(out: str | Path, settings: DemoSettings | None = None, echo: Callab
     out = prepare_out_dir(out)
     started = time.perf_counter()
     summary: dict[str, Any] = {"kind": MARKER_KIND, "status": "running", "settings": asdict(settings)}
-    _write_json(out / MARKER_FILE, summary)  # marks the folder as a demo folder from the start
+    write_json_atomic(out / MARKER_FILE, summary, default=_plain)  # marks the folder as a demo folder from the start
 
     def step(number: int, text: str) -> None:
         echo(f"[{number}/6 {time.perf_counter() - started:5.0f} s] {text}")
@@ -199,7 +193,7 @@ def run_demo(out: str | Path, settings: DemoSettings | None = None, echo: Callab
 
     summary["status"] = "finished"
     summary["seconds"] = round(time.perf_counter() - started, 1)
-    _write_json(out / MARKER_FILE, summary)
+    write_json_atomic(out / MARKER_FILE, summary, default=_plain)
     for line in headline(summary, out):
         echo(line)
     return summary
@@ -219,9 +213,9 @@ def inspect_and_correct(out: Path, echo: Callable[[str], Any]) -> dict:
     """Inspect the noisy training frames (what ``grainwright inspect`` reports), correct the row banding of
     every noisy frame into ``corrected/``, inspect the corrected training frames, and save their noise model
     beside them as ``noise.toml`` (what ``grainwright inspect --save-noise`` writes)."""
-    from grainwright.inference.noise.estimation import correct_fixed_pattern
     from grainwright.inference.images.imageio import read_image, write_image
     from grainwright.inference.noise.analysis import inspect_paths
+    from grainwright.inference.noise.estimation import correct_fixed_pattern
     from grainwright.inference.noise.models import save_noise
 
     source, target = out / SCENARIO_DIR, out / CORRECTED_DIR
@@ -261,7 +255,8 @@ def inspect_and_correct(out: Path, echo: Callable[[str], Any]) -> dict:
         "sensor": asdict(sensor),
         "recommended_scheme": after.recommendation["scheme"],
     }
-    _write_json(out / INSPECT_FILE, {"before_correction": before.to_dict(), "after_correction": after.to_dict()})
+    write_json_atomic(out / INSPECT_FILE, {"before_correction": before.to_dict(), "after_correction": after.to_dict()},
+                      default=_plain)
     return inspection
 
 
@@ -290,8 +285,8 @@ def export_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) 
 
 
 def denoise_large_frame(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
-    from grainwright.inference.images.imageio import read_image, write_image
     from grainwright.inference.evaluation.metrics import psnr
+    from grainwright.inference.images.imageio import read_image, write_image
     from grainwright.inference.runtime.runner import OnnxDenoiser
 
     path = _frames(out / CORRECTED_DIR / "large")[0]

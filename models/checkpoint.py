@@ -41,16 +41,14 @@ from __future__ import annotations
 
 import datetime
 import hashlib
-import os
 import pickle
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 import torch
-
 from grainwright.inference import __version__
+from grainwright.inference.common.atomic import atomic_path
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.registry import architecture, build_model
@@ -179,16 +177,8 @@ def save_checkpoint(path: str | Path, payload: Mapping[str, Any]) -> Path:
     if missing:
         raise ValueError(f"checkpoint payload lacks {missing}")
     path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            torch.save(dict(payload), stream)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
+    with atomic_path(path, durable=True) as temporary:
+        torch.save(dict(payload), temporary)
     return path
 
 

@@ -20,8 +20,6 @@ from __future__ import annotations
 import datetime
 import io
 import json
-import os
-import tempfile
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,16 +29,34 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import torch
-from torch import nn
-
 from grainwright.inference import __version__
-from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
-from grainwright.inference.runtime.modelinfo import METADATA_FORMAT, METADATA_KEY, METADATA_VERSION
+from grainwright.inference.common.atomic import write_bytes_atomic
+from grainwright.inference.common.errors import (
+    ConfigError,
+    GrainwrightError,
+    InputError,
+)
 from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.runtime.modelinfo import (
+    METADATA_FORMAT,
+    METADATA_KEY,
+    METADATA_VERSION,
+)
 from grainwright.models.base import DenoisingNetwork
-from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint, resolve_checkpoint
-from grainwright.models.onnx_io import centre_crop, pad_to_alignment, read_calibration, run_session, session_for
+from grainwright.models.checkpoint import (
+    load_checkpoint,
+    model_from_checkpoint,
+    resolve_checkpoint,
+)
+from grainwright.models.onnx_io import (
+    centre_crop,
+    pad_to_alignment,
+    read_calibration,
+    run_session,
+    session_for,
+)
 from grainwright.models.working_range import WorkingRange
+from torch import nn
 
 OPSET = 17
 # Largest ONNX Runtime vs torch difference accepted, in fractions of the native range (high - low).
@@ -207,17 +223,7 @@ def write_model(proto: onnx.ModelProto, path: Path, overwrite: bool = False) -> 
     if path.exists() and not overwrite:
         raise InputError(path, "already exists; pass --overwrite to replace it")
     path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            stream.write(proto.SerializeToString())
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
-    return path
+    return write_bytes_atomic(path, proto.SerializeToString(), durable=True)
 
 
 @dataclass

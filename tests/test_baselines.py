@@ -8,16 +8,24 @@ import math
 
 import numpy as np
 import pytest
-from scipy import ndimage, stats
-from skimage import data
-
 from grainwright.inference.baselines.base import Baseline
 from grainwright.inference.baselines.domains import denoise_in_domain, gaussian_domain
 from grainwright.inference.baselines.local import bilateral
-from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline, resolve_params
+from grainwright.inference.baselines.registry import (
+    BASELINES,
+    denoise,
+    get_baseline,
+    resolve_params,
+)
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.evaluation.metrics import psnr
-from grainwright.inference.noise.models import GammaSpeckle, PoissonGaussianNoise, RayleighSpeckle
+from grainwright.inference.noise.models import (
+    GammaSpeckle,
+    PoissonGaussianNoise,
+    RayleighSpeckle,
+)
+from scipy import ndimage, stats
+from skimage import data
 
 NAMES = ["mean", "median", "gaussian", "bilateral", "tv", "wavelet", "nlm", "bm3d"]
 

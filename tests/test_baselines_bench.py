@@ -5,10 +5,9 @@ import argparse
 import json
 
 import pytest
-
-from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL
 from grainwright.console.commands import bench_baselines
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL
 
 
 def _args(*argv: str) -> argparse.Namespace:

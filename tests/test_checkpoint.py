@@ -5,7 +5,6 @@ import os
 
 import pytest
 import torch
-
 from grainwright.inference.common.errors import InputError
 from grainwright.models.checkpoint import (
     FORMAT_VERSION,

@@ -5,9 +5,15 @@ import re
 from pathlib import Path
 
 import pytest
-
 from grainwright.inference.common.errors import ConfigError
-from grainwright.trainer.config import SCHEMA, defaults, load_config, parse_assignment, schema_markdown, validate
+from grainwright.trainer.config import (
+    SCHEMA,
+    defaults,
+    load_config,
+    parse_assignment,
+    schema_markdown,
+    validate,
+)
 
 SHIPPED = ("clean-synthetic", "pairs", "noisy-pairs", "noisy-only", "fast-cpu")
 

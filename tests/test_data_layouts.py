@@ -3,10 +3,15 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.imageio import write_image
-from grainwright.trainer.data import PatchSource, detect_layout, read_layout, split_by_image, split_single_image
+from grainwright.trainer.data import (
+    PatchSource,
+    detect_layout,
+    read_layout,
+    split_by_image,
+    split_single_image,
+)
 
 
 def _image(seed: int, size: int = 40, channels: int = 1) -> np.ndarray:

@@ -7,8 +7,13 @@ import subprocess
 import sys
 
 import pytest
-
-from grainwright.console.demo import MARKER_FILE, MARKER_KIND, DemoSettings, prepare_out_dir, run_demo
+from grainwright.console.demo import (
+    MARKER_FILE,
+    MARKER_KIND,
+    DemoSettings,
+    prepare_out_dir,
+    run_demo,
+)
 from grainwright.inference.common.errors import ConfigError, InputError
 
 

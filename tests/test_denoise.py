@@ -9,13 +9,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
-
 from grainwright.console.cli import main
 from grainwright.inference.images.imageio import read_frames, read_text, write_image
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256
-from test_runner import NATIVE_HIGH, build_conv_model
-
 from no_torch import BLOCK_TORCH
+from test_runner import NATIVE_HIGH, build_conv_model
 
 
 @pytest.fixture
@@ -171,7 +169,10 @@ def test_denoise_runs_with_torch_blocked(batch, tmp_path, architecture):
 def test_row_banding_is_removed_before_denoising_when_flagged(tmp_path, capsys):
     # A smooth ramp with independent row offsets (fixed-pattern noise) and white noise: the banding flag and
     # correction are the foundation's (estimation.detect_banding / correct_fixed_pattern), as in training.
-    from grainwright.inference.noise.estimation import correct_fixed_pattern, detect_banding
+    from grainwright.inference.noise.estimation import (
+        correct_fixed_pattern,
+        detect_banding,
+    )
 
     rng = np.random.default_rng(3)
     ramp = np.linspace(300, 800, 96)[None, :] * np.ones((96, 1))

@@ -7,20 +7,28 @@ from __future__ import annotations
 
 import json
 
+import grainwright.models.export as export_module
 import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
 import tifffile
 import torch
-from skimage import data
-
-import grainwright.models.export as export_module
 from grainwright.console.cli import main
-from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.common.errors import (
+    ConfigError,
+    GrainwrightError,
+    InputError,
+)
 from grainwright.inference.images.normalization import Normalization
-from grainwright.models.checkpoint import FORMAT_VERSION, RunFolder, new_checkpoint, save_checkpoint
+from grainwright.models.checkpoint import (
+    FORMAT_VERSION,
+    RunFolder,
+    new_checkpoint,
+    save_checkpoint,
+)
 from grainwright.models.export import export_checkpoint, int8_path_for, reference_output
+from skimage import data
 
 torch.set_num_threads(1)
 

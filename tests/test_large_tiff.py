@@ -6,12 +6,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
-
-from grainwright.inference.images import large_tiff
 from grainwright.inference.common.errors import InputError
-from grainwright.inference.images.large_tiff import TiffRowReader, can_stream, write_tiled_tiff
-from grainwright.inference.runtime.runner import OnnxDenoiser
+from grainwright.inference.images import large_tiff
+from grainwright.inference.images.large_tiff import (
+    TiffRowReader,
+    can_stream,
+    write_tiled_tiff,
+)
 from grainwright.inference.runtime.batch import denoise_files
+from grainwright.inference.runtime.runner import OnnxDenoiser
 from test_runner import NATIVE_HIGH, build_conv_model
 
 LAYOUTS = [

@@ -5,9 +5,9 @@ import math
 
 import numpy as np
 import pytest
-from skimage import data, metrics as skmetrics
-
 from grainwright.inference.evaluation.metrics import psnr, ssim
+from skimage import data
+from skimage import metrics as skmetrics
 
 RNG = np.random.default_rng(11)
 

@@ -3,9 +3,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from grainwright.inference.common.errors import ConfigError
-from grainwright.inference.noise.models import NOISE_MODELS, load_noise, noise_from_dict, save_noise
+from grainwright.inference.noise.models import (
+    NOISE_MODELS,
+    load_noise,
+    noise_from_dict,
+    save_noise,
+)
 
 
 def test_registry_holds_the_documented_kinds():

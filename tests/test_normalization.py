@@ -5,7 +5,6 @@ import json
 
 import numpy as np
 import pytest
-
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.normalization import Normalization
 

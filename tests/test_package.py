@@ -7,7 +7,6 @@ import sys
 
 import grainwright.console
 import grainwright.inference
-
 from no_torch import BLOCK_TORCH
 
 

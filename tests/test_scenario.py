@@ -5,7 +5,6 @@ import json
 
 import numpy as np
 import pytest
-
 from grainwright.inference.synthetic.scenario import (
     FULL_SCALE,
     SensorModel,
@@ -110,7 +109,10 @@ def test_single_frame_poisson_gaussian_fit_recovers_the_sensor(seed):
     # The foundation's single-image fit (after Foi et al. 2008) on a whole scenario frame, textures and edges
     # included, after the row-banding correction (as the demo does), recovers the sensor: gain within 15%, read
     # noise within 15% or 0.2% of the range, whichever is larger (the tolerances the fit was specified with).
-    from grainwright.inference.noise.estimation import correct_fixed_pattern, fit_poisson_gaussian
+    from grainwright.inference.noise.estimation import (
+        correct_fixed_pattern,
+        fit_poisson_gaussian,
+    )
 
     sensor = SensorModel()
     fit = fit_poisson_gaussian(correct_fixed_pattern(generate_frame(384, 384, seed, sensor).noisy))
@@ -169,7 +171,10 @@ def test_rois_file_reads_as_compare_regions(tmp_path):
 def test_banding_is_flagged_and_the_correction_clears_it():
     # The foundation's banding flag (robust row offsets of a high-pass residual) sees the scenario's faint row
     # banding on most 256-pixel frames, and the fixed-pattern correction removes it.
-    from grainwright.inference.noise.estimation import analyse_noise, correct_fixed_pattern
+    from grainwright.inference.noise.estimation import (
+        analyse_noise,
+        correct_fixed_pattern,
+    )
 
     before = after = 0
     for seed in range(4):

@@ -4,7 +4,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
-
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.noise.models import noise_from_dict
 from grainwright.trainer.config import defaults
@@ -12,7 +11,11 @@ from grainwright.trainer.schemes.masked import Masked, draw_mask, replace_masked
 from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor, subsample
 from grainwright.trainer.schemes.noise2noise import Noise2Noise
 from grainwright.trainer.schemes.recorrupted import Recorrupted
-from grainwright.trainer.schemes.registry import SCHEMES, check_scheme_fits, choose_scheme
+from grainwright.trainer.schemes.registry import (
+    SCHEMES,
+    check_scheme_fits,
+    choose_scheme,
+)
 from grainwright.trainer.schemes.supervised import Supervised
 
 torch.set_num_threads(1)

@@ -4,8 +4,13 @@ from __future__ import annotations
 
 import xml.etree.ElementTree as ElementTree
 
+from grainwright.benchmarks.size_plot import (
+    points_from_sweep,
+    predicted_ms,
+    size_plot_svg,
+    write_size_plot,
+)
 from grainwright.inference.runtime.machine_profile import PROFILE_FORMAT
-from grainwright.benchmarks.size_plot import points_from_sweep, predicted_ms, size_plot_svg, write_size_plot
 
 SVG = "{http://www.w3.org/2000/svg}"
 PROFILE = {"format": PROFILE_FORMAT, "version": 1, "threads": 2, "seconds_per_gmac": {"fp32": {"16": 0.2, "64": 0.1}},
@@ -47,12 +52,11 @@ def test_compare_report_shows_the_sizes_tried(tmp_path):
 
     import numpy as np
     import pytest
-    from skimage import data
-
+    from grainwright.benchmarks.size_plot import size_search_svg
     from grainwright.console.cli import main
     from grainwright.inference.common.errors import InputError
     from grainwright.inference.images.imageio import write_image
-    from grainwright.benchmarks.size_plot import size_search_svg
+    from skimage import data
 
     def record(depth: int, width: int, psnr: float) -> dict:
         return {"spec": {"case": "gaussian", "hyper": {"depth": depth, "width": width}},

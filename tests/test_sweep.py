@@ -8,10 +8,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
-from grainwright.inference.runtime.runner import ENSEMBLE_TRANSFORMS, _transform, _untransform
 from grainwright.benchmarks import size_search as sweep
 from grainwright.benchmarks.training import ensemble_member
+from grainwright.inference.runtime.runner import (
+    ENSEMBLE_TRANSFORMS,
+    _transform,
+    _untransform,
+)
 
 
 def test_trials_are_base_plus_changes():
@@ -47,10 +50,9 @@ def test_ensemble_scores_match_the_runtime_ensemble(tmp_path):
     pytest.importorskip("torch")
     import onnx
     import torch
-
     from grainwright.inference.evaluation.metrics import psnr
     from grainwright.inference.images.normalization import Normalization
-    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
+    from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser
     from grainwright.models.export import export_graph
     from grainwright.models.registry import build_model
 

@@ -6,10 +6,16 @@ import json
 
 import numpy as np
 import pytest
-
+from grainwright.benchmarks.training import (
+    ENSEMBLE_LABEL,
+    OPPONENT,
+    TEST_IMAGES,
+    TRAIN_IMAGES,
+    check_targets,
+    render_report,
+    run_bench,
+)
 from grainwright.inference.common.errors import ConfigError
-from grainwright.benchmarks.training import (ENSEMBLE_LABEL, OPPONENT, TEST_IMAGES, TRAIN_IMAGES, check_targets,
-                                       render_report, run_bench)
 
 
 def _row(value: float) -> dict[str, float]:
@@ -38,7 +44,12 @@ def test_held_out_images_are_never_trained_on():
 
 
 def test_half_scale_copies_are_2x2_means_of_the_larger_training_images():
-    from grainwright.benchmarks.training import HALF_SCALE_MIN_EDGE, sample_image, training_image, training_labels
+    from grainwright.benchmarks.training import (
+        HALF_SCALE_MIN_EDGE,
+        sample_image,
+        training_image,
+        training_labels,
+    )
 
     labels = training_labels(half_scale=True)
     assert labels[: len(TRAIN_IMAGES)] == list(TRAIN_IMAGES) == training_labels()

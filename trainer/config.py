@@ -10,8 +10,8 @@ from __future__ import annotations
 import copy
 import difflib
 import tomllib
-from importlib import resources
 from dataclasses import dataclass
+from importlib import resources
 from pathlib import Path
 from typing import Any
 

@@ -25,7 +25,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-
 from grainwright.inference.common.errors import InputError
 
 LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {

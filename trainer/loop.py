@@ -23,11 +23,9 @@ from typing import Any
 
 import numpy as np
 import torch
-
 from grainwright.models.checkpoint import RunFolder, checkpoint_payload, save_checkpoint
 from grainwright.trainer.data import PatchSource
 from grainwright.trainer.schemes.base import Scheme, apply_model
-
 
 # TensorBoard scalars are means over this many steps: writing four events every step cost ~1% of a step.
 SCALAR_EVERY_STEPS = 10

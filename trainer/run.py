@@ -20,16 +20,30 @@ from typing import Any, Callable
 
 import numpy as np
 import torch
-
 from grainwright.inference.common.atomic import write_text_atomic
-from grainwright.inference.common.errors import ConfigError, GrainwrightError, InputError
+from grainwright.inference.common.errors import (
+    ConfigError,
+    GrainwrightError,
+    InputError,
+)
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
-from grainwright.trainer.data import LAYOUT_TEXT, Layout, PatchSource, detect_layout, read_layout, split_by_image, \
-    split_single_image
+from grainwright.trainer.data import (
+    LAYOUT_TEXT,
+    Layout,
+    PatchSource,
+    detect_layout,
+    read_layout,
+    split_by_image,
+    split_single_image,
+)
 from grainwright.trainer.loop import TrainingSetup, fastest_step, train
-from grainwright.trainer.schemes.registry import check_scheme_fits, choose_scheme, scheme_class
+from grainwright.trainer.schemes.registry import (
+    check_scheme_fits,
+    choose_scheme,
+    scheme_class,
+)
 
 # Noisy images analysed for the noise model and the flags (evenly spaced over the list), to bound the start-up time.
 MAX_ANALYSED = 12
@@ -263,8 +277,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
 
 def _create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFolder:
     """Write ``config.toml`` and ``noise.toml`` into a temporary folder beside ``out`` and rename it into place."""
-    from grainwright.inference.noise.models import save_noise
     from grainwright.inference.common.tomlio import write_toml
+    from grainwright.inference.noise.models import save_noise
 
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise InputError(out, "run folder exists and is not empty (choose another --out, or --resume it)")

@@ -130,7 +130,10 @@ def fit_assignments(profile_path: str | None, ms_per_frame: float, frame_text: s
                     announce: Callable[[str], None] = print) -> list[str]:
     """For ``grainwright train --fit-to``: pick the rung, say which and its predicted time, and return the
     ``--set`` assignments that train it. Without a profile file, this machine's is measured first."""
-    from grainwright.inference.runtime.machine_profile import load_profile, measure_profile
+    from grainwright.inference.runtime.machine_profile import (
+        load_profile,
+        measure_profile,
+    )
 
     frame = parse_frame(frame_text)
     if profile_path:
@@ -181,12 +184,15 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
     import numpy as np
     import onnx
     import torch
-
     from grainwright.inference.images.imageio import write_image
-    from grainwright.inference.runtime.machine_profile import REFERENCE_DEPTH, measure_profile, seconds_per_gmac
     from grainwright.inference.images.normalization import Normalization
-    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
     from grainwright.inference.runtime.batch import denoise_files
+    from grainwright.inference.runtime.machine_profile import (
+        REFERENCE_DEPTH,
+        measure_profile,
+        seconds_per_gmac,
+    )
+    from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser
     from grainwright.models.export import export_graph
     from grainwright.models.registry import build_model
 

@@ -16,11 +16,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
-from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline
-from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL, tune_on_ground_truth
+from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.evaluation.calibration import (
+    GROUND_TRUTH_LABEL,
+    tune_on_ground_truth,
+)
 from grainwright.inference.evaluation.metrics import psnr
 
 HELP = "baselines: PSNR (defaults and tuned on ground truth) and seconds per megapixel of each classical filter"

@@ -28,13 +28,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.images.large_tiff import write_tiled_tiff
+from grainwright.inference.runtime.batch import denoise_files
 from grainwright.inference.runtime.machine_profile import measure_profile, save_profile
 from grainwright.inference.runtime.runner import OnnxDenoiser
-from grainwright.inference.runtime.batch import denoise_files
 from grainwright.inference.runtime.tiling import pad_to_alignment
 
 HELP = "runtime: bare ONNX Runtime vs file-to-file denoise, tile sizes, FP32 vs INT8, 1-MP frame time, peak memory"

@@ -14,8 +14,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from grainwright.inference.common.errors import ConfigError
 from grainwright.console.torch_needed import require_torch
+from grainwright.inference.common.errors import ConfigError
 
 HELP = "model sizes: predicted vs measured time per frame (--check-prediction), quality search (--sweep)"
 
@@ -53,8 +53,17 @@ def run(args: argparse.Namespace) -> int:
             args.json = "sweep.json"
         return run_search(args)
 
-    from grainwright.inference.runtime.machine_profile import load_profile, measure_profile, save_profile
-    from grainwright.trainer.sizing import check_prediction, default_targets, ladder, parse_frame
+    from grainwright.inference.runtime.machine_profile import (
+        load_profile,
+        measure_profile,
+        save_profile,
+    )
+    from grainwright.trainer.sizing import (
+        check_prediction,
+        default_targets,
+        ladder,
+        parse_frame,
+    )
 
     frame = parse_frame(args.frame)
     profile = load_profile(args.profile) if args.profile else None

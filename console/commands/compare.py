@@ -4,9 +4,13 @@ from __future__ import annotations
 import argparse
 import sys
 
-from grainwright.inference.evaluation.compare import NOISE_CHOICES, CompareOptions, run_comparison
-from grainwright.inference.common.errors import ConfigError
 from grainwright.benchmarks.size_plot import size_search_svg
+from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.evaluation.compare import (
+    NOISE_CHOICES,
+    CompareOptions,
+    run_comparison,
+)
 
 HELP = "compare ONNX models and classical filters on your images (with or without clean references)"
 

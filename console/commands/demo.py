@@ -3,7 +3,12 @@ from __future__ import annotations
 
 import argparse
 
-from grainwright.console.demo import DEFAULT_MINUTES, DEFAULT_OUT, DemoSettings, run_demo
+from grainwright.console.demo import (
+    DEFAULT_MINUTES,
+    DEFAULT_OUT,
+    DemoSettings,
+    run_demo,
+)
 
 HELP = "run the whole job on a generated inspection-camera scenario: inspect, train, export, denoise, compare"
 

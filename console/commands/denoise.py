@@ -5,11 +5,15 @@ import argparse
 import sys
 import time
 
-from tqdm import tqdm
-
 from grainwright.inference.common.errors import ConfigError
-from grainwright.inference.runtime.runner import ENSEMBLE_SIZES, NOISE_SIGMA_MODES, OnnxDenoiser, ModelSpec
 from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES, denoise_files
+from grainwright.inference.runtime.runner import (
+    ENSEMBLE_SIZES,
+    NOISE_SIGMA_MODES,
+    ModelSpec,
+    OnnxDenoiser,
+)
+from tqdm import tqdm
 
 HELP = "denoise images with an exported ONNX model (tiled, bounded memory, resumable; no torch needed)"
 

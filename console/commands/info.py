@@ -4,7 +4,11 @@ from __future__ import annotations
 import argparse
 import json
 
-from grainwright.inference.runtime.modelinfo import model_io, read_model_metadata, render_metadata
+from grainwright.inference.runtime.modelinfo import (
+    model_io,
+    read_model_metadata,
+    render_metadata,
+)
 
 HELP = "show an exported model's description: architecture, sizes, tiling, normalisation, training, parity"
 

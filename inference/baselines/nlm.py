@@ -4,7 +4,6 @@
 from __future__ import annotations
 
 import numpy as np
-
 from grainwright.inference.baselines.base import Baseline, Parameter, by_noise_level
 
 

@@ -31,11 +31,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import ndimage
-
-from grainwright.inference.images import transforms
 from grainwright.inference.baselines.domains import denoise_in_domain
-from grainwright.inference.baselines.registry import ALL_CLASSICAL, BASELINES, get_baseline
+from grainwright.inference.baselines.registry import (
+    ALL_CLASSICAL,
+    BASELINES,
+    get_baseline,
+)
+from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.evaluation.calibration import (
     CALIBRATED_LABEL,
     GROUND_TRUTH_LABEL,
@@ -55,15 +57,31 @@ from grainwright.inference.evaluation.detail import (
     most_detailed_box,
     removed_structure,
 )
-from grainwright.inference.common.errors import ConfigError, InputError
-from grainwright.inference.noise.estimation import estimate_sigma, fit_poisson_gaussian
-from grainwright.inference.images.imageio import effective_bit_depth, find_images, read_image
 from grainwright.inference.evaluation.metrics import psnr, ssim
-from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.evaluation.quality import ms_ssim, no_reference_figures
-from grainwright.inference.evaluation.report import Column, CropSet, ImagePanels, ReportContent, write_report
+from grainwright.inference.evaluation.report import (
+    Column,
+    CropSet,
+    ImagePanels,
+    ReportContent,
+    write_report,
+)
+from grainwright.inference.evaluation.sure import (
+    SureEstimate,
+    sure_mse,
+    sure_mse_stabilized,
+    unclipped_mask,
+)
+from grainwright.inference.images import transforms
+from grainwright.inference.images.imageio import (
+    effective_bit_depth,
+    find_images,
+    read_image,
+)
+from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.noise.estimation import estimate_sigma, fit_poisson_gaussian
 from grainwright.inference.runtime.runner import OnnxDenoiser
-from grainwright.inference.evaluation.sure import SureEstimate, sure_mse, sure_mse_stabilized, unclipped_mask
+from scipy import ndimage
 
 LEARNED_LABEL = "learned (ONNX model as exported)"
 # Regions whose noisy feature-minus-background contrast is under this many standard errors are too faint for

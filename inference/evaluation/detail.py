@@ -21,9 +21,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from scipy import ndimage
-
 from grainwright.inference.common.errors import InputError
+from scipy import ndimage
 
 Box = tuple[int, int, int, int]
 

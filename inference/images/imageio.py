@@ -12,16 +12,13 @@ from __future__ import annotations
 
 import glob
 import json
-import os
 import struct
-import tempfile
 import zlib
 from pathlib import Path
 from typing import Iterable
 
 import numpy as np
-
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import atomic_path, is_temporary, write_text_atomic
 from grainwright.inference.common.errors import InputError
 
 SUPPORTED_SUFFIXES = (".png", ".tif", ".tiff", ".npy")
@@ -73,7 +70,7 @@ def find_images(paths: str | Path | Iterable[str | Path], recursive: bool = Fals
 
 
 def _supported(path: Path) -> bool:
-    return path.suffix.lower() in SUPPORTED_SUFFIXES
+    return path.suffix.lower() in SUPPORTED_SUFFIXES and not is_temporary(path)
 
 
 def read_frames(path: str | Path, nonfinite: str = "error") -> np.ndarray:
@@ -282,9 +279,7 @@ def write_image(
     if data.ndim not in (3, 4) or 0 in data.shape:
         raise InputError(path, f"cannot write an array of shape {np.shape(array)} as an image")
     path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent)
-    os.close(handle)
-    try:
+    with atomic_path(path) as temporary:
         if suffix == ".png":
             _write_png(path, temporary, data, text)
         elif suffix == ".npy":
@@ -294,10 +289,6 @@ def write_image(
             _write_tiff(temporary, data, text)
         if suffix == ".npy" and text is not None:
             write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1))
-        os.replace(temporary, path)
-    finally:
-        if os.path.exists(temporary):
-            os.unlink(temporary)
     return path
 
 

@@ -10,14 +10,12 @@ Pages that cannot be read piecewise (compressed with the whole image in one stri
 """
 from __future__ import annotations
 
-import os
-import tempfile
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import numpy as np
 import tifffile
-
+from grainwright.inference.common.atomic import atomic_path
 from grainwright.inference.common.errors import InputError
 
 # Frames at least this large (pixels) are streamed when they can be; smaller ones are decoded whole, which is
@@ -184,9 +182,7 @@ def write_tiled_tiff(
         raise InputError(path, "already exists (not overwritten without --overwrite)")
     height, width, channels = shape
     layout = tiff_layout(channels, dtype)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    os.close(handle)
-    try:
+    with atomic_path(path) as temporary:
         size = count * height * width * channels * np.dtype(dtype).itemsize
         with tifffile.TiffWriter(temporary, bigtiff=size > 2**31) as tiff:
             for index, tiles in enumerate(frames):
@@ -201,10 +197,6 @@ def write_tiled_tiff(
                     maxworkers=1,  # one tile at a time: parallel compression would buffer hundreds of MB
                     **layout,
                 )
-        os.replace(temporary, path)
-    finally:
-        if os.path.exists(temporary):
-            os.unlink(temporary)
     return path
 
 

@@ -23,9 +23,8 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
-
-from grainwright.inference.images import transforms
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images import transforms
 from grainwright.inference.images.imageio import effective_bit_depth
 
 CHANNEL_ORDERS = {1: "gray", 3: "rgb", 4: "rgba"}

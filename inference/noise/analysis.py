@@ -12,12 +12,21 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-
 from grainwright.inference.common.errors import GrainwrightError, InputError
-from grainwright.inference.noise.estimation import MIN_ANALYSED_SIDE, NoiseAnalysis, analyse_noise, estimate_sigma
 from grainwright.inference.images.imageio import find_images, read_frames
-from grainwright.inference.noise.models import GammaSpeckle, GaussianNoise, NoiseModel, PoissonGaussianNoise
 from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.noise.estimation import (
+    MIN_ANALYSED_SIDE,
+    NoiseAnalysis,
+    analyse_noise,
+    estimate_sigma,
+)
+from grainwright.inference.noise.models import (
+    GammaSpeckle,
+    GaussianNoise,
+    NoiseModel,
+    PoissonGaussianNoise,
+)
 
 # Folder layouts, in the order they are tried (same names as the trainer's).
 LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {

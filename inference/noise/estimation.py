@@ -645,7 +645,13 @@ def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None
     -------
     NoiseAnalysis
     """
-    from grainwright.inference.noise.models import GammaSpeckle, GaussianNoise, ImpulseNoise, MixtureNoise, PoissonGaussianNoise
+    from grainwright.inference.noise.models import (
+        GammaSpeckle,
+        GaussianNoise,
+        ImpulseNoise,
+        MixtureNoise,
+        PoissonGaussianNoise,
+    )
 
     image = _as_hwc(image).astype(np.float64)
     if min(image.shape[:2]) < MIN_ANALYSED_SIDE:

@@ -25,11 +25,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from tqdm import tqdm
-
 from grainwright.inference import __version__
 from grainwright.inference.common.errors import GrainwrightError, InputError
-from grainwright.inference.noise.estimation import correct_fixed_pattern, detect_banding, estimate_sigma
 from grainwright.inference.images.imageio import (
     SUPPORTED_SUFFIXES,
     effective_bit_depth,
@@ -38,9 +35,20 @@ from grainwright.inference.images.imageio import (
     read_text,
     write_image,
 )
-from grainwright.inference.images.large_tiff import WRITABLE_COMPRESSION, TiffRowReader, can_stream, write_tiled_tiff
+from grainwright.inference.images.large_tiff import (
+    WRITABLE_COMPRESSION,
+    TiffRowReader,
+    can_stream,
+    write_tiled_tiff,
+)
+from grainwright.inference.noise.estimation import (
+    correct_fixed_pattern,
+    detect_banding,
+    estimate_sigma,
+)
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256, to_dtype
 from grainwright.inference.runtime.tiling import TIFF_TILE_MULTIPLE, reflect_indices
+from tqdm import tqdm
 
 RECORD_TOOL = "grainwright denoise"
 # Warn when an input's noise level or full-scale range differs from the training data by more than this factor.

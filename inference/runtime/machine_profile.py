@@ -31,7 +31,6 @@ from typing import Any
 
 import numpy as np
 import onnxruntime as ort
-
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import InputError
 
@@ -196,7 +195,7 @@ def seconds_per_gmac(depth: int, width: int, precision: str, threads: int, edge:
                      repeats: int = 3) -> float:
     """Measured seconds per 10^9 MACs of the reference stack run by the runtime (default tiles, batched session
     calls, in memory) on one ``edge`` x ``edge`` image, counting the MACs of every pixel the tiles compute."""
-    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
+    from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser
 
     with tempfile.TemporaryDirectory(prefix="grainwright-profile-") as temp:
         path = Path(temp) / "reference.onnx"
@@ -219,8 +218,8 @@ def runtime_overhead(threads: int, fp32: dict[str, float], edges: tuple[int, int
     compute. The two remainders give the per-frame and per-megapixel costs (a straight line; both clamped at 0).
     """
     from grainwright.inference.images.imageio import write_image
-    from grainwright.inference.runtime.runner import OnnxDenoiser, ModelSpec
     from grainwright.inference.runtime.batch import denoise_files
+    from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser
 
     depth = REFERENCE_DEPTH
     rng = np.random.default_rng(0)

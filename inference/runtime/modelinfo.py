@@ -11,7 +11,6 @@ from pathlib import Path
 from typing import Any
 
 import onnxruntime as ort
-
 from grainwright.inference.common.errors import InputError
 
 METADATA_KEY = "grainwright"

@@ -22,11 +22,10 @@ from typing import Any
 
 import numpy as np
 import onnxruntime as ort
-
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.noise.estimation import estimate_sigma
-from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
+from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
 from grainwright.inference.runtime.tiling import (
     Tile,
     TilePlan,

@@ -16,19 +16,22 @@ the detail and a background box of the same size beside it on the same surface, 
 """
 from __future__ import annotations
 
-import json
 import math
-import os
 import string
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from grainwright.inference.common.atomic import write_json_atomic
+from grainwright.inference.images.imageio import write_image
+from grainwright.inference.noise.models import (
+    BandingNoise,
+    MixtureNoise,
+    NoiseModel,
+    PoissonGaussianNoise,
+)
 from PIL import Image, ImageDraw, ImageFont
 from scipy import ndimage
-
-from grainwright.inference.images.imageio import write_image
-from grainwright.inference.noise.models import BandingNoise, MixtureNoise, NoiseModel, PoissonGaussianNoise
 
 BIT_DEPTH = 12
 FULL_SCALE = 2**BIT_DEPTH - 1
@@ -464,13 +467,6 @@ LARGE_ROIS_FILE = "large-rois.json"
 MANIFEST_FILE = "scenario.json"
 
 
-def _write_json(path: Path, document: dict) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    tmp.write_text(json.dumps(document, indent=2) + "\n")
-    os.replace(tmp, path)
-
-
 def write_scenario(
     out_dir: str | Path,
     n_train: int = 24,
@@ -532,9 +528,9 @@ def write_scenario(
         return rois
 
     emit(n_train, height, width, train_seeds, TRAIN_DIR, TRAIN_CLEAN_DIR, "frame")
-    _write_json(out / ROIS_FILE, emit(n_holdout, height, width, holdout_seeds, HOLDOUT_NOISY_DIR, HOLDOUT_CLEAN_DIR, "holdout"))
+    write_json_atomic(out / ROIS_FILE, emit(n_holdout, height, width, holdout_seeds, HOLDOUT_NOISY_DIR, HOLDOUT_CLEAN_DIR, "holdout"))
     if large_size is not None:
         rois = emit(1, large_size[0], large_size[1], large_seeds, LARGE_NOISY_DIR, LARGE_CLEAN_DIR, "large")
-        _write_json(out / LARGE_ROIS_FILE, rois)
-    _write_json(out / MANIFEST_FILE, manifest)
+        write_json_atomic(out / LARGE_ROIS_FILE, rois)
+    write_json_atomic(out / MANIFEST_FILE, manifest)
     return manifest
