@@ -14,13 +14,14 @@ from typing import Any, Callable
 
 import numpy as np
 import torch
+from skimage import data
+
 from grainwright.inference.images.normalization import Normalization
 from grainwright.models.export import ExportGraph, export_graph
 from grainwright.models.onnx_io import CalibrationImage, run_session, session_for
 from grainwright.models.quantize import quantize_model
 from grainwright.models.registry import MODELS, build_model
 from grainwright.models.working_range import WorkingRange
-from skimage import data
 
 # Targets from the models issue, measured as ratios in one run.
 FP32_OVER_TORCH_TARGET = 1.8

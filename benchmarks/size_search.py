@@ -31,6 +31,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from grainwright.benchmarks.training import (
     ENSEMBLES,
     SEARCH_BASELINES,
@@ -113,6 +114,7 @@ def cpu_seconds_per_step(spec: dict[str, Any], threads: int) -> tuple[float, boo
     ``PROBE_STEPS`` after one warm-up step), in the tensor layout and precision the trainer would pick
     (:func:`grainwright.trainer.loop.fastest_step`); returns the seconds, the layout and the precision."""
     import torch
+
     from grainwright.models.registry import build_model, hyper_defaults
     from grainwright.trainer.loop import fastest_step, step_precision
     from grainwright.trainer.schemes.base import apply_model

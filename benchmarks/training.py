@@ -31,6 +31,7 @@ from typing import Any
 
 import numpy as np
 import torch
+
 from grainwright.inference.common.errors import ConfigError
 
 TEST_IMAGES = ("camera", "coins", "moon")

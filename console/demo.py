@@ -26,6 +26,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from grainwright.console.torch_needed import require_torch
 from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError, InputError

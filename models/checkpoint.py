@@ -47,6 +47,7 @@ from pathlib import Path
 from typing import Any, Iterable, Mapping
 
 import torch
+
 from grainwright.inference import __version__
 from grainwright.inference.common.atomic import atomic_path
 from grainwright.inference.common.errors import GrainwrightError, InputError

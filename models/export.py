@@ -29,6 +29,8 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import torch
+from torch import nn
+
 from grainwright.inference import __version__
 from grainwright.inference.common.atomic import write_bytes_atomic
 from grainwright.inference.common.errors import (
@@ -56,7 +58,6 @@ from grainwright.models.onnx_io import (
     session_for,
 )
 from grainwright.models.working_range import WorkingRange
-from torch import nn
 
 OPSET = 17
 # Largest ONNX Runtime vs torch difference accepted, in fractions of the native range (high - low).

@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 import onnx
 import onnxruntime as ort
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.imageio import find_images, read_frames
 from grainwright.inference.images.normalization import Normalization

@@ -25,6 +25,13 @@ from typing import Any, Callable
 
 import numpy as np
 import onnx
+from onnxruntime.quantization import (
+    CalibrationDataReader,
+    QuantFormat,
+    QuantType,
+    quantize_static,
+)
+
 from grainwright.inference.common.errors import GrainwrightError
 from grainwright.inference.evaluation.metrics import psnr
 from grainwright.inference.images.normalization import Normalization
@@ -34,12 +41,6 @@ from grainwright.models.onnx_io import (
     pad_to_alignment,
     run_session,
     session_for,
-)
-from onnxruntime.quantization import (
-    CalibrationDataReader,
-    QuantFormat,
-    QuantType,
-    quantize_static,
 )
 
 PATCH_EDGE = 128

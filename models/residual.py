@@ -14,8 +14,9 @@ from __future__ import annotations
 import copy
 
 import torch
-from grainwright.models.base import DenoisingNetwork
 from torch import nn
+
+from grainwright.models.base import DenoisingNetwork
 
 
 def conv_stack(in_channels: int, out_channels: int, depth: int, width: int, batch_norm: bool) -> nn.Sequential:

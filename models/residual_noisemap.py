@@ -11,6 +11,7 @@ Denoising", IEEE Transactions on Image Processing 27(9), 2018 (noise level map a
 from __future__ import annotations
 
 import torch
+
 from grainwright.models.residual import ResidualDenoiser
 
 

@@ -14,9 +14,10 @@ MICCAI 2015.
 from __future__ import annotations
 
 import torch
+from torch import nn
+
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.unet_small import UNetSmallDenoiser
-from torch import nn
 
 
 class UNetHalfResDenoiser(DenoisingNetwork):

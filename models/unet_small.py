@@ -14,8 +14,9 @@ Segmentation", MICCAI 2015 (zero-padded 3x3 convolutions here, so output size eq
 from __future__ import annotations
 
 import torch
-from grainwright.models.base import DenoisingNetwork
 from torch import nn
+
+from grainwright.models.base import DenoisingNetwork
 
 
 def _double_conv(in_channels: int, out_channels: int) -> nn.Sequential:

@@ -18,8 +18,9 @@ import math
 from typing import Any
 
 import torch
-from grainwright.inference.images.normalization import Normalization
 from torch import nn
+
+from grainwright.inference.images.normalization import Normalization
 
 ANSCOMBE_MIN_D = 2.0 * math.sqrt(3.0 / 8.0)  # transform of zero counts; the inverse is clamped below it
 SQRT_3_2 = math.sqrt(1.5)

@@ -8,6 +8,9 @@ import math
 
 import numpy as np
 import pytest
+from scipy import ndimage, stats
+from skimage import data
+
 from grainwright.inference.baselines.base import Baseline
 from grainwright.inference.baselines.domains import denoise_in_domain, gaussian_domain
 from grainwright.inference.baselines.local import bilateral
@@ -24,8 +27,6 @@ from grainwright.inference.noise.models import (
     PoissonGaussianNoise,
     RayleighSpeckle,
 )
-from scipy import ndimage, stats
-from skimage import data
 
 NAMES = ["mean", "median", "gaussian", "bilateral", "tv", "wavelet", "nlm", "bm3d"]
 

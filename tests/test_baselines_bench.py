@@ -5,6 +5,7 @@ import argparse
 import json
 
 import pytest
+
 from grainwright.console.commands import bench_baselines
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL

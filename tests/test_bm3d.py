@@ -8,12 +8,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import pywt
+from scipy.fft import dct
+from skimage import color, data
+
 from grainwright.inference.baselines.bm3d import _match, dct_matrix, haar_matrix
 from grainwright.inference.baselines.registry import denoise
 from grainwright.inference.evaluation.calibration import tune_on_ground_truth
 from grainwright.inference.evaluation.metrics import psnr
-from scipy.fft import dct
-from skimage import color, data
 
 SIGMA = 25 / 255
 

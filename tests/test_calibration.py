@@ -7,6 +7,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import ndimage
+from skimage import data
+from skimage.metrics import peak_signal_noise_ratio
+from skimage.restoration import calibrate_denoiser, denoise_tv_chambolle
+
 from grainwright.inference.baselines.registry import denoise, resolve_params
 from grainwright.inference.evaluation.calibration import (
     CALIBRATED_LABEL,
@@ -18,10 +23,6 @@ from grainwright.inference.evaluation.calibration import (
     tune_on_ground_truth,
 )
 from grainwright.inference.noise.models import PoissonGaussianNoise
-from scipy import ndimage
-from skimage import data
-from skimage.metrics import peak_signal_noise_ratio
-from skimage.restoration import calibrate_denoiser, denoise_tv_chambolle
 
 SIGMA = 25 / 255
 

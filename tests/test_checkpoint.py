@@ -5,6 +5,7 @@ import os
 
 import pytest
 import torch
+
 from grainwright.inference.common.errors import InputError
 from grainwright.models.checkpoint import (
     FORMAT_VERSION,

@@ -13,6 +13,11 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
+from onnx import TensorProto, helper, numpy_helper
+from scipy import ndimage
+from skimage import data
+from skimage.metrics import peak_signal_noise_ratio
+
 from grainwright.console.cli import main
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.evaluation.compare import (
@@ -21,10 +26,6 @@ from grainwright.inference.evaluation.compare import (
     run_comparison,
 )
 from grainwright.inference.images.imageio import write_image
-from onnx import TensorProto, helper, numpy_helper
-from scipy import ndimage
-from skimage import data
-from skimage.metrics import peak_signal_noise_ratio
 
 QUICK = CompareOptions(quick=True, threads=1)
 FAST_METHODS = "box.onnx,gaussian,median"

@@ -5,6 +5,7 @@ import re
 from pathlib import Path
 
 import pytest
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.trainer.config import (
     SCHEMA,

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.imageio import write_image
 from grainwright.trainer.data import (

@@ -7,6 +7,7 @@ import subprocess
 import sys
 
 import pytest
+
 from grainwright.console.demo import (
     MARKER_FILE,
     MARKER_KIND,

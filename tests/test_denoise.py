@@ -9,11 +9,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
+from no_torch import BLOCK_TORCH
+from test_runner import NATIVE_HIGH, build_conv_model
+
 from grainwright.console.cli import main
 from grainwright.inference.images.imageio import read_frames, read_text, write_image
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256
-from no_torch import BLOCK_TORCH
-from test_runner import NATIVE_HIGH, build_conv_model
 
 
 @pytest.fixture

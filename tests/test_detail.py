@@ -11,6 +11,9 @@ import math
 
 import numpy as np
 import pytest
+from scipy import ndimage
+from skimage import data, util
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.detail import (
     STRUCTURED_THRESHOLD,
@@ -25,8 +28,6 @@ from grainwright.inference.evaluation.detail import (
     removed_structure,
     structured_residual_map,
 )
-from scipy import ndimage
-from skimage import data, util
 
 SIGMA = 0.05
 LINE = Region("line", feature=(63, 40, 2, 50), background=(55, 40, 4, 50))  # [x, y, w, h]

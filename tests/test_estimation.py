@@ -3,8 +3,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from grainwright.inference.noise.estimation import estimate_sigma
 from skimage import color, data, restoration
+
+from grainwright.inference.noise.estimation import estimate_sigma
 
 RNG = np.random.default_rng(2024)
 
@@ -52,6 +53,8 @@ def test_per_channel_and_units_follow_the_input():
 
 
 # ------------------------------------------------------------------------------- Poisson-Gaussian fit
+from scipy import ndimage  # noqa: E402
+
 from grainwright.inference.noise.estimation import (  # noqa: E402
     analyse_noise,
     correct_fixed_pattern,
@@ -61,7 +64,6 @@ from grainwright.inference.noise.estimation import (  # noqa: E402
     fit_poisson_gaussian,
 )
 from grainwright.inference.noise.models import noise_from_dict  # noqa: E402
-from scipy import ndimage  # noqa: E402
 
 
 def _unit(name: str) -> np.ndarray:

@@ -7,13 +7,15 @@ from __future__ import annotations
 
 import json
 
-import grainwright.models.export as export_module
 import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
 import tifffile
 import torch
+from skimage import data
+
+import grainwright.models.export as export_module
 from grainwright.console.cli import main
 from grainwright.inference.common.errors import (
     ConfigError,
@@ -28,7 +30,6 @@ from grainwright.models.checkpoint import (
     save_checkpoint,
 )
 from grainwright.models.export import export_checkpoint, int8_path_for, reference_output
-from skimage import data
 
 torch.set_num_threads(1)
 

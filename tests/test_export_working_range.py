@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+
 from grainwright.inference.images.normalization import Normalization
 from grainwright.models.working_range import WorkingRange
 

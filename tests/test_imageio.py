@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.imageio import (
     effective_bit_depth,
@@ -48,9 +49,10 @@ def test_png_round_trip(tmp_path, dtype, channels):
 def test_16_bit_colour_png_is_a_valid_png_and_scanline_filters_match_libpng(tmp_path):
     import zlib
 
-    from grainwright.inference.images import imageio
     from PIL import Image
     from skimage import data
+
+    from grainwright.inference.images import imageio
 
     # Our 16-bit colour file is a valid PNG: Pillow (libpng-compatible) opens it, reduced to its high bytes.
     image = _random("uint16", 3, shape=(21, 34))

@@ -7,12 +7,13 @@ import sys
 
 import onnx
 import pytest
+from onnx import TensorProto, helper
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.modelinfo import read_model_metadata, render_metadata
 from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
 from grainwright.models.export import export_checkpoint
-from onnx import TensorProto, helper
 
 BLOCK_TORCH = "import sys; sys.modules['torch'] = None\n"
 

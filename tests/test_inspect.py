@@ -7,11 +7,12 @@ import sys
 
 import numpy as np
 import pytest
+from no_torch import BLOCK_TORCH
+from skimage import color, data
+
 from grainwright.console.cli import main
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.noise.models import load_noise, noise_from_dict
-from no_torch import BLOCK_TORCH
-from skimage import color, data
 
 
 def _astronaut_gray_with_sigma_10(seed: int = 0) -> np.ndarray:

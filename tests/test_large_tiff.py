@@ -6,6 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 import tifffile
+from test_runner import NATIVE_HIGH, build_conv_model
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images import large_tiff
 from grainwright.inference.images.large_tiff import (
@@ -15,7 +17,6 @@ from grainwright.inference.images.large_tiff import (
 )
 from grainwright.inference.runtime.batch import denoise_files
 from grainwright.inference.runtime.runner import OnnxDenoiser
-from test_runner import NATIVE_HIGH, build_conv_model
 
 LAYOUTS = [
     {"tile": (32, 32)},

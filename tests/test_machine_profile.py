@@ -12,10 +12,11 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
-from grainwright.inference.common.errors import InputError
-from grainwright.inference.runtime import machine_profile as mp
 from onnx import numpy_helper
 from scipy.signal import correlate2d
+
+from grainwright.inference.common.errors import InputError
+from grainwright.inference.runtime import machine_profile as mp
 
 
 def _session(proto: bytes) -> ort.InferenceSession:

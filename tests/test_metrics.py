@@ -5,9 +5,10 @@ import math
 
 import numpy as np
 import pytest
-from grainwright.inference.evaluation.metrics import psnr, ssim
 from skimage import data
 from skimage import metrics as skmetrics
+
+from grainwright.inference.evaluation.metrics import psnr, ssim
 
 RNG = np.random.default_rng(11)
 

@@ -3,9 +3,10 @@ from __future__ import annotations
 
 import pytest
 import torch
+from torch.utils.flop_counter import FlopCounterMode
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.models.registry import MODELS, build_model, hyper_defaults
-from torch.utils.flop_counter import FlopCounterMode
 
 torch.set_num_threads(1)
 

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.noise.models import (
     NOISE_MODELS,

@@ -5,6 +5,7 @@ import json
 
 import numpy as np
 import pytest
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.normalization import Normalization
 

@@ -5,9 +5,10 @@ import pkgutil
 import subprocess
 import sys
 
+from no_torch import BLOCK_TORCH
+
 import grainwright.console
 import grainwright.inference
-from no_torch import BLOCK_TORCH
 
 
 def _torch_free_modules() -> list[str]:

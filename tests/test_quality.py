@@ -15,14 +15,15 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import ndimage
+from skimage import color, data, util
+
 from grainwright.inference.evaluation.quality import (
     ms_ssim,
     ms_ssim_scales,
     no_reference_figures,
     residual_autocorrelation,
 )
-from scipy import ndimage
-from skimage import color, data, util
 
 sewar_full_ref = pytest.importorskip(
     "sewar.full_ref", reason="MS-SSIM reference: install the test extra (sewar)"

@@ -7,6 +7,7 @@ import re
 
 import numpy as np
 import pytest
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.report import (
     CAUTION,

@@ -11,9 +11,10 @@ from pathlib import Path
 import numpy as np
 import onnx
 import pytest
+from onnx import TensorProto, helper, numpy_helper
+
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser
-from onnx import TensorProto, helper, numpy_helper
 
 NATIVE_HIGH = 1000.0  # the graphs map 0..1000 native to 0..1 working
 TRAINING_NOISE = {"kind": "poisson-gaussian", "gain": 0.01, "read": 0.02}  # working units

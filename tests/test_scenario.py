@@ -5,6 +5,7 @@ import json
 
 import numpy as np
 import pytest
+
 from grainwright.inference.synthetic.scenario import (
     FULL_SCALE,
     SensorModel,

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.noise.models import noise_from_dict
 from grainwright.trainer.config import defaults

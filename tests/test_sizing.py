@@ -8,12 +8,13 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.runtime.machine_profile import PROFILE_FORMAT
 from grainwright.inference.runtime.tiling import default_tile, plan_tiles, tile_margin
 from grainwright.trainer import sizing
-from hypothesis import given, settings
-from hypothesis import strategies as st
 
 PROFILE = {"format": PROFILE_FORMAT, "version": 1, "threads": 2,
            "seconds_per_gmac": {"fp32": {"16": 0.2, "32": 0.12, "48": 0.09, "64": 0.08},
@@ -114,8 +115,9 @@ def test_fit_assignments_name_a_bad_profile(tmp_path):
 
 def _noisy_data(root):
     import numpy as np
-    from grainwright.inference.images.imageio import write_image
     from skimage import data
+
+    from grainwright.inference.images.imageio import write_image
 
     rng = np.random.default_rng(0)
     for index, (top, left) in enumerate(((0, 0), (100, 300), (300, 100), (250, 250))):

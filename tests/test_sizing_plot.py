@@ -52,11 +52,12 @@ def test_compare_report_shows_the_sizes_tried(tmp_path):
 
     import numpy as np
     import pytest
+    from skimage import data
+
     from grainwright.benchmarks.size_plot import size_search_svg
     from grainwright.console.cli import main
     from grainwright.inference.common.errors import InputError
     from grainwright.inference.images.imageio import write_image
-    from skimage import data
 
     def record(depth: int, width: int, psnr: float) -> dict:
         return {"spec": {"case": "gaussian", "hyper": {"depth": depth, "width": width}},

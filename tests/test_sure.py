@@ -10,14 +10,15 @@ import itertools
 
 import numpy as np
 import pytest
+from scipy import ndimage as ndi
+from skimage import color, data, restoration, util
+
 from grainwright.inference.evaluation.sure import (
     psnr_from_mse,
     sure_mse,
     sure_mse_stabilized,
     unclipped_mask,
 )
-from scipy import ndimage as ndi
-from skimage import color, data, restoration, util
 
 SIGMA = 20 / 255
 

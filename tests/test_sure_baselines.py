@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from skimage import color, data, util
+
 from grainwright.inference.baselines.domains import denoise_in_domain
 from grainwright.inference.baselines.registry import BASELINES
 from grainwright.inference.evaluation.sure import psnr_from_mse, sure_mse
-from skimage import color, data, util
 
 SIGMA = 25 / 255
 IMAGES = {

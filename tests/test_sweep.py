@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from grainwright.benchmarks import size_search as sweep
 from grainwright.benchmarks.training import ensemble_member
 from grainwright.inference.runtime.runner import (
@@ -50,6 +51,7 @@ def test_ensemble_scores_match_the_runtime_ensemble(tmp_path):
     pytest.importorskip("torch")
     import onnx
     import torch
+
     from grainwright.inference.evaluation.metrics import psnr
     from grainwright.inference.images.normalization import Normalization
     from grainwright.inference.runtime.runner import ModelSpec, OnnxDenoiser

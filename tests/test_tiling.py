@@ -7,6 +7,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from test_runner import NATIVE_HIGH, build_conv_model
+
 from grainwright.inference.runtime.runner import OnnxDenoiser
 from grainwright.inference.runtime.tiling import (
     MAX_OVERLAP_COST,
@@ -17,9 +21,6 @@ from grainwright.inference.runtime.tiling import (
     reflect_indices,
     tile_margin,
 )
-from hypothesis import given, settings
-from hypothesis import strategies as st
-from test_runner import NATIVE_HIGH, build_conv_model
 
 _MODEL_DIR = Path(tempfile.mkdtemp(prefix="grainwright-tiling-"))
 

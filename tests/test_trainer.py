@@ -11,12 +11,13 @@ import math
 import numpy as np
 import pytest
 import torch
+from skimage import data
+
 from grainwright.console.cli import main
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.images.imageio import write_image
 from grainwright.models.checkpoint import load_checkpoint
 from grainwright.trainer.run import train_command
-from skimage import data
 
 TINY = ["model.hyper.depth=4", "model.hyper.width=12", "data.patch_size=32", "data.batch_size=8", "threads=1",
         "validation.every_steps=10", "validation.patches=16", "logging.progress=false", "logging.tensorboard=false",

@@ -6,6 +6,7 @@ import json
 
 import numpy as np
 import pytest
+
 from grainwright.benchmarks.training import (
     ENSEMBLE_LABEL,
     OPPONENT,

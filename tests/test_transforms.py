@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import special, stats
+
 from grainwright.inference.images.transforms import (
     anscombe_forward,
     anscombe_inverse_algebraic,
@@ -10,7 +12,6 @@ from grainwright.inference.images.transforms import (
     log_forward,
     log_inverse,
 )
-from scipy import special, stats
 
 RNG = np.random.default_rng(99)
 

@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
 from grainwright.inference.common.errors import InputError
 
 LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {

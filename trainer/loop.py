@@ -23,6 +23,7 @@ from typing import Any
 
 import numpy as np
 import torch
+
 from grainwright.models.checkpoint import RunFolder, checkpoint_payload, save_checkpoint
 from grainwright.trainer.data import PatchSource
 from grainwright.trainer.schemes.base import Scheme, apply_model

@@ -20,6 +20,7 @@ from typing import Any, Callable
 
 import numpy as np
 import torch
+
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import (
     ConfigError,

@@ -184,6 +184,7 @@ def check_prediction(frame: tuple[int, int], targets_ms: list[float], *, threads
     import numpy as np
     import onnx
     import torch
+
     from grainwright.inference.images.imageio import write_image
     from grainwright.inference.images.normalization import Normalization
     from grainwright.inference.runtime.batch import denoise_files

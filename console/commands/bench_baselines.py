@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import ConfigError

@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.images.large_tiff import write_tiled_tiff

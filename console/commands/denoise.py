@@ -5,6 +5,8 @@ import argparse
 import sys
 import time
 
+from tqdm import tqdm
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES, denoise_files
 from grainwright.inference.runtime.runner import (
@@ -13,7 +15,6 @@ from grainwright.inference.runtime.runner import (
     ModelSpec,
     OnnxDenoiser,
 )
-from tqdm import tqdm
 
 HELP = "denoise images with an exported ONNX model (tiled, bounded memory, resumable; no torch needed)"
 

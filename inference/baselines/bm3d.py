@@ -34,10 +34,11 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from grainwright.inference.baselines.base import Baseline, Parameter
-from grainwright.inference.common.errors import ConfigError
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy.fft import dct
+
+from grainwright.inference.baselines.base import Baseline, Parameter
+from grainwright.inference.common.errors import ConfigError
 
 # Opponent colour transform of the paper's colour extension (rows: luminance, two opponent axes); from memory.
 OPPONENT = np.array([[1 / 3, 1 / 3, 1 / 3], [1 / 2, 0.0, -1 / 2], [1 / 4, -1 / 2, 1 / 4]])

@@ -21,10 +21,11 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
+from scipy.special import digamma, polygamma
+
 from grainwright.inference.baselines.registry import denoise
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images import transforms
-from scipy.special import digamma, polygamma
 
 # Log-domain offset keeping zero pixels finite, in working units (the value Normalization.with_log uses).
 LOG_EPSILON = 1.0 / 256.0

@@ -10,14 +10,15 @@ six 128x128 scikit-image sample crops at sigma 5, 10, 25 and 50 (8-bit units); n
 from __future__ import annotations
 
 import numpy as np
+from scipy import ndimage
+from skimage.morphology import disk
+
 from grainwright.inference.baselines.base import (
     Baseline,
     Parameter,
     by_noise_level,
     per_channel,
 )
-from scipy import ndimage
-from skimage.morphology import disk
 
 
 def box_mean(image: np.ndarray, sigma: float, *, radius: int = 1) -> np.ndarray:

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import numpy as np
+
 from grainwright.inference.baselines.base import Baseline, Parameter, by_noise_level
 
 

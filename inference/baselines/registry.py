@@ -18,6 +18,7 @@ import importlib
 from typing import Any
 
 import numpy as np
+
 from grainwright.inference.baselines.base import Baseline
 from grainwright.inference.common.errors import ConfigError, InputError
 

@@ -4,6 +4,7 @@ J. Math. Imaging Vision 2004, via ``skimage.restoration.denoise_tv_chambolle``.
 from __future__ import annotations
 
 import numpy as np
+
 from grainwright.inference.baselines.base import Baseline, Parameter, by_noise_level
 
 

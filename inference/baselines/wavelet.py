@@ -8,6 +8,7 @@ compression", IEEE Trans. Image Processing 2000. Either applied hard (keep or ki
 from __future__ import annotations
 
 import numpy as np
+
 from grainwright.inference.baselines.base import Baseline, Parameter
 from grainwright.inference.common.errors import ConfigError
 

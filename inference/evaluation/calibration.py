@@ -20,6 +20,8 @@ from dataclasses import dataclass, field
 from typing import Any, Callable
 
 import numpy as np
+from scipy import ndimage
+
 from grainwright.inference.baselines.domains import (
     NoiseLike,
     denoise_in_domain,
@@ -28,7 +30,6 @@ from grainwright.inference.baselines.domains import (
 from grainwright.inference.baselines.registry import get_baseline, resolve_params
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.metrics import psnr
-from scipy import ndimage
 
 DEFAULT_LABEL = "defaults"
 GROUND_TRUTH_LABEL = "tuned on ground truth"

@@ -31,6 +31,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy import ndimage
+
 from grainwright.inference.baselines.domains import denoise_in_domain
 from grainwright.inference.baselines.registry import (
     ALL_CLASSICAL,
@@ -81,7 +83,6 @@ from grainwright.inference.images.imageio import (
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.noise.estimation import estimate_sigma, fit_poisson_gaussian
 from grainwright.inference.runtime.runner import OnnxDenoiser
-from scipy import ndimage
 
 LEARNED_LABEL = "learned (ONNX model as exported)"
 # Regions whose noisy feature-minus-background contrast is under this many standard errors are too faint for

@@ -21,8 +21,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from grainwright.inference.common.errors import InputError
 from scipy import ndimage
+
+from grainwright.inference.common.errors import InputError
 
 Box = tuple[int, int, int, int]
 

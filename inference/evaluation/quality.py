@@ -9,8 +9,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from grainwright.inference.noise.estimation import estimate_sigma
 from scipy import ndimage
+
+from grainwright.inference.noise.estimation import estimate_sigma
 
 # Wang, Simoncelli and Bovik, "Multi-scale structural similarity for image quality assessment", Asilomar 2003:
 # five scales, exponents fitted in their experiment; SSIM's 11x11 Gaussian window (standard deviation 1.5),

@@ -23,10 +23,11 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from PIL import Image
+
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.detail import STRUCTURED_THRESHOLD
 from grainwright.inference.evaluation.svgplot import log_scatter_svg
-from PIL import Image
 
 CAUTION = (
     "Denoising can remove exactly the detail that matters: a hairline crack, a pore, a lesion. On medical or "

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Iterable
 
 import numpy as np
+
 from grainwright.inference.common.atomic import atomic_path, is_temporary, write_text_atomic
 from grainwright.inference.common.errors import InputError
 

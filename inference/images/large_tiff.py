@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 import tifffile
+
 from grainwright.inference.common.atomic import atomic_path
 from grainwright.inference.common.errors import InputError
 

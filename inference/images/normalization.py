@@ -23,6 +23,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images import transforms
 from grainwright.inference.images.imageio import effective_bit_depth

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.inference.images.imageio import find_images, read_frames
 from grainwright.inference.images.normalization import Normalization

@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any, ClassVar
 
 import numpy as np
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.common.tomlio import load_toml, write_toml
 

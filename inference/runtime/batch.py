@@ -25,6 +25,8 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from tqdm import tqdm
+
 from grainwright.inference import __version__
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.inference.images.imageio import (
@@ -48,7 +50,6 @@ from grainwright.inference.noise.estimation import (
 )
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256, to_dtype
 from grainwright.inference.runtime.tiling import TIFF_TILE_MULTIPLE, reflect_indices
-from tqdm import tqdm
 
 RECORD_TOOL = "grainwright denoise"
 # Warn when an input's noise level or full-scale range differs from the training data by more than this factor.

@@ -31,6 +31,7 @@ from typing import Any
 
 import numpy as np
 import onnxruntime as ort
+
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import InputError
 

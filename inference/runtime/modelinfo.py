@@ -11,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 import onnxruntime as ort
+
 from grainwright.inference.common.errors import InputError
 
 METADATA_KEY = "grainwright"

@@ -22,6 +22,7 @@ from typing import Any
 
 import numpy as np
 import onnxruntime as ort
+
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict

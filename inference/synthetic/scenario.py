@@ -22,6 +22,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from PIL import Image, ImageDraw, ImageFont
+from scipy import ndimage
+
 from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.noise.models import (
@@ -30,8 +33,6 @@ from grainwright.inference.noise.models import (
     NoiseModel,
     PoissonGaussianNoise,
 )
-from PIL import Image, ImageDraw, ImageFont
-from scipy import ndimage
 
 BIT_DEPTH = 12
 FULL_SCALE = 2**BIT_DEPTH - 1

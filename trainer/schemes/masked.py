@@ -16,6 +16,7 @@ import math
 
 import numpy as np
 import torch
+
 from grainwright.trainer.schemes.base import Scheme, apply_model
 
 # The 24 offsets of a 5x5 neighbourhood without its centre.

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 import torch
+
 from grainwright.trainer.schemes.base import Scheme, apply_model
 
 # Positions in a 2x2 cell: 0 = top-left, 1 = top-right, 2 = bottom-left, 3 = bottom-right; the 8 ordered pairs

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 import torch
+
 from grainwright.trainer.schemes.base import Scheme, apply_model
 
 
