@@ -87,8 +87,11 @@ def run(args: argparse.Namespace) -> int:
         as_float=args.float32, overwrite=args.overwrite, keep_mixed=args.keep_mixed,
         into_input_folder=args.into_input_folder, fixed_pattern=args.fixed_pattern, progress=not args.quiet,
     )
+    stopped = None
     for result in results:
         counts[result.status] += 1
+        if result.fault is not None and result.fault.kind.stops_batch:
+            stopped = result.fault
         megapixels += result.megapixels
         for note in result.warnings:
             tqdm.write(f"warning: {result.source}: {note}", file=sys.stderr)
@@ -100,4 +103,7 @@ def run(args: argparse.Namespace) -> int:
     rate = megapixels / seconds if seconds > 0 else 0.0
     print(f"done {counts['done']}, skipped {counts['skipped']}, failed {counts['failed']} "
           f"in {seconds:.1f} s ({megapixels:.1f} MP, {rate:.2f} MP/s)")
+    if stopped is not None:
+        print(f"stopped early ({stopped.kind.value}): the remaining inputs were not attempted; {counts['done']} "
+              "output(s) written are kept and a rerun skips them", file=sys.stderr)
     return 1 if counts["failed"] else 0

@@ -247,6 +247,7 @@ def write_image(
     dtype: np.dtype | str | None = None,
     text: str | None = None,
     overwrite: bool = False,
+    durable: bool = False,
 ) -> Path:
     """Write an image or stack atomically (temporary file in the same folder, then ``os.replace``).
 
@@ -265,6 +266,8 @@ def write_image(
         ``NAME.npy.json`` (``{"text": ...}``) for npy.
     overwrite : bool
         Replace an existing file; without it an existing file raises ``InputError``.
+    durable : bool
+        ``fsync`` the file and its folder before returning, so the output survives a power cut.
     """
     path = Path(path)
     suffix = path.suffix.lower()
@@ -280,7 +283,7 @@ def write_image(
     if data.ndim not in (3, 4) or 0 in data.shape:
         raise InputError(path, f"cannot write an array of shape {np.shape(array)} as an image")
     path.parent.mkdir(parents=True, exist_ok=True)
-    with atomic_path(path) as temporary:
+    with atomic_path(path, durable=durable) as temporary:
         if suffix == ".png":
             _write_png(path, temporary, data, text)
         elif suffix == ".npy":

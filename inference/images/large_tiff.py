@@ -161,6 +161,7 @@ def write_tiled_tiff(
     compression: str | None = None,
     count: int = 1,
     overwrite: bool = False,
+    durable: bool = False,
 ) -> Path:
     """Write frames tile by tile to a tiled TIFF, atomically (temporary name in the same folder, then rename).
 
@@ -177,13 +178,15 @@ def write_tiled_tiff(
         Written to the first page's ImageDescription.
     count : int
         Number of frames, to choose BigTIFF when the file would pass the classic TIFF's 4 GB offsets.
+    durable : bool
+        ``fsync`` the file and its folder before returning.
     """
     path = Path(path)
     if path.exists() and not overwrite:
         raise InputError(path, "already exists (not overwritten without --overwrite)")
     height, width, channels = shape
     layout = tiff_layout(channels, dtype)
-    with atomic_path(path) as temporary:
+    with atomic_path(path, durable=durable) as temporary:
         size = count * height * width * channels * np.dtype(dtype).itemsize
         with tifffile.TiffWriter(temporary, bigtiff=size > 2**31) as tiff:
             for index, tiles in enumerate(frames):

@@ -11,14 +11,18 @@
 - each output carries a JSON record (model SHA-256 and settings) in its TIFF ImageDescription, PNG text chunk or
   ``.npy.json`` sidecar; an existing output with the same record is skipped (so a killed batch resumes), and a
   batch whose model or settings changed refuses to start unless the caller allows mixing or overwriting;
-- a file that cannot be processed is reported and skipped; the batch goes on.
+- a file that cannot be processed is reported (one line naming the file and the reason, classified by
+  :mod:`grainwright.inference.runtime.faults`) and skipped; the batch goes on, except when the output device is
+  full or read-only, where it stops after that file since every later one would fail the same way.
+
+:func:`denoise_file` is the per-file engine shared by this batch, the line service and the cluster path.
 """
 from __future__ import annotations
 
 import json
 import math
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -48,6 +52,7 @@ from grainwright.inference.noise.estimation import (
     detect_banding,
     estimate_sigma,
 )
+from grainwright.inference.runtime.faults import Fault, FaultKind, input_fault, model_fault, write_fault
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256, to_dtype
 from grainwright.inference.runtime.tiling import TIFF_TILE_MULTIPLE, reflect_indices
 
@@ -73,6 +78,7 @@ class FileResult:
     megapixels: float = 0.0
     seconds: float = 0.0
     warnings: list[str] = field(default_factory=list)
+    fault: Fault | None = None  # why it failed (kind, file, reason); None unless status is "failed"
 
 
 @dataclass(frozen=True)
@@ -211,11 +217,7 @@ def denoise_files(
             if job.output.parent.resolve() == job.source.parent.resolve():
                 raise GrainwrightError(f"output folder {job.output.parent} holds the input {job.source}; choose "
                                        "another -o folder, or allow it with --into-input-folder")
-    expected = {
-        "model_sha256": file_sha256(denoiser.path),
-        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float,
-                     "fixed_pattern": fixed_pattern},
-    }
+    expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
     if not overwrite and not keep_mixed:
         changed = [job.output for job in jobs if job.output.exists()
                    and (record := read_record(job.output)) is not None and not _same_run(record, expected)]
@@ -229,63 +231,124 @@ def denoise_files(
     tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)
     try:
         for job in jobs:
-            result = _process(denoiser, job, expected, overwrite=overwrite, as_float=as_float,
-                              fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
+            result = denoise_file(denoiser, job, expected, overwrite=overwrite, as_float=as_float,
+                                  fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
             files_bar.update(1)
             yield result
+            if result.fault is not None and result.fault.kind.stops_batch:
+                return  # every later file would fail the same way; the caller reports how many were done
     finally:
         tiles_bar.close()
         files_bar.close()
 
 
-def _process(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, overwrite: bool, as_float: bool,
-             fixed_pattern: str, tiles_bar: tqdm) -> FileResult:
+class _FileFault(Exception):
+    """Carries a classified per-file fault out of the nested read/run/write code to :func:`denoise_file`."""
+
+    def __init__(self, fault: Fault):
+        super().__init__(str(fault))
+        self.fault = fault
+
+
+def _guard(classify: Callable[[BaseException, Path], Fault], path: Path, call: Callable[..., Any],
+           *args: Any, **kwargs: Any) -> Any:
+    """``call(*args, **kwargs)``, with any failure classified for ``path`` (an inner classification wins)."""
+    try:
+        return call(*args, **kwargs)
+    except _FileFault:
+        raise
+    except (Exception, MemoryError) as error:
+        raise _FileFault(classify(error, path)) from error
+
+
+def _guarded(items: Iterator[Any], classify: Callable[[BaseException, Path], Fault], path: Path) -> Iterator[Any]:
+    """Iterate ``items`` with each step's failure classified for ``path``."""
+    while True:
+        try:
+            item = next(items)
+        except StopIteration:
+            return
+        except _FileFault:
+            raise
+        except (Exception, MemoryError) as error:
+            raise _FileFault(classify(error, path)) from error
+        yield item
+
+
+def new_record(denoiser: OnnxDenoiser, source: Path, expected: dict[str, Any]) -> dict[str, Any]:
+    """The traceability record an output carries: model hash, settings, tool version, source name, time."""
+    return {
+        "tool": RECORD_TOOL,
+        "version": __version__,
+        "model": denoiser.path.name,
+        **expected,
+        "architecture": denoiser.spec.architecture,
+        "tile": denoiser.tile,
+        "margin": denoiser.spec.margin,
+        "source": source.name,
+        "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def expected_record(denoiser: OnnxDenoiser, *, out_format: str | None = None, as_float: bool = False,
+                    fixed_pattern: str = "auto") -> dict[str, Any]:
+    """What identifies a run for the skip-what-is-done check: the model's hash and the output settings."""
+    return {
+        "model_sha256": file_sha256(denoiser.path),
+        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float,
+                     "fixed_pattern": fixed_pattern},
+    }
+
+
+def denoise_file(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, overwrite: bool = False,
+                 as_float: bool = False, fixed_pattern: str = "auto", durable: bool = False,
+                 tiles_bar: tqdm | None = None, extra_record: dict[str, Any] | None = None) -> FileResult:
+    """Denoise one file: the per-file engine behind ``denoise``, the line service and the cluster path.
+
+    Never raises for a per-file fault: the result's ``fault`` says what went wrong (see
+    :mod:`grainwright.inference.runtime.faults`) and the output is left as it was. ``durable`` also ``fsync``s
+    the output and its folder before returning. ``extra_record`` adds keys to the output's record (for example
+    which worker made it).
+    """
     start = time.perf_counter()
     source, output = job.source, job.output
+    tiles_bar = tiles_bar if tiles_bar is not None else tqdm(disable=True)
     try:
         if output.exists() and output.resolve() == source.resolve():
-            raise InputError(source, "output would overwrite this input; choose another -o folder")
+            raise _FileFault(Fault(FaultKind.INPUT, source, "output would overwrite this input; choose another "
+                                   "-o folder"))
         if output.exists() and not overwrite:
             record = read_record(output)
             if record is not None and _same_run(record, expected):
                 return FileResult(source, output, "skipped", "already done with this model and settings")
             if record is None:
-                raise InputError(output, "exists and was not written by grainwright denoise (use --overwrite)")
+                raise _FileFault(Fault(FaultKind.WRITE, output, "exists and was not written by grainwright denoise "
+                                       "(use --overwrite)"))
             return FileResult(source, output, "skipped", "kept (made with another model or settings)")
-        output.parent.mkdir(parents=True, exist_ok=True)
-        record = {
-            "tool": RECORD_TOOL,
-            "version": __version__,
-            "model": denoiser.path.name,
-            **expected,
-            "architecture": denoiser.spec.architecture,
-            "tile": denoiser.tile,
-            "margin": denoiser.spec.margin,
-            "source": source.name,
-            "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        }
+        _guard(write_fault, output, output.parent.mkdir, parents=True, exist_ok=True)
+        record = {**new_record(denoiser, source, expected), **(extra_record or {})}
         streamed = output.suffix.lower() in (".tif", ".tiff") and source.suffix.lower() in (".tif", ".tiff") \
-            and can_stream(source)
+            and _guard(input_fault, source, can_stream, source)
         if streamed:
             megapixels, notes = _stream_tiff(denoiser, source, output, record, overwrite=overwrite,
-                                             as_float=as_float, tiles_bar=tiles_bar)
+                                             as_float=as_float, durable=durable, tiles_bar=tiles_bar)
             if fixed_pattern != "never":
                 notes.append("fixed-pattern correction is not applied to streamed TIFFs (it needs whole rows)")
         else:
             megapixels, notes = _in_memory(denoiser, source, output, record, overwrite=overwrite,
-                                           as_float=as_float, fixed_pattern=fixed_pattern, tiles_bar=tiles_bar)
-    except GrainwrightError as error:
-        return FileResult(source, None, "failed", str(error), seconds=time.perf_counter() - start)
-    except MemoryError:
-        return FileResult(source, None, "failed", f"{source}: not enough memory", seconds=time.perf_counter() - start)
+                                           as_float=as_float, fixed_pattern=fixed_pattern, durable=durable,
+                                           tiles_bar=tiles_bar)
+    except _FileFault as failure:
+        return FileResult(source, None, "failed", str(failure.fault), seconds=time.perf_counter() - start,
+                          fault=failure.fault)
     return FileResult(source, output, "done", "", megapixels, time.perf_counter() - start, notes)
 
 
 def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
-               as_float: bool, fixed_pattern: str, tiles_bar: tqdm) -> tuple[float, list[str]]:
-    frames = read_frames(source)
+               as_float: bool, fixed_pattern: str, durable: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
+    frames = _guard(input_fault, source, read_frames, source)
     count, height, width, channels = frames.shape
-    denoiser.check_channels(channels, source)
+    _guard(input_fault, source, denoiser.check_channels, channels, source)
     y0, y1, x0, x1 = _central_crop(height, width)
     notes = domain_warnings(denoiser, frames[0, y0:y1, x0:x1])
     if height * width >= 4_000_000:
@@ -300,25 +363,24 @@ def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[
         model_input = correct_fixed_pattern(frame) if correct else frame
         level = denoiser.sigma_for(model_input)
         levels.append(level)
-        values = denoiser.run(model_input, sigma=level, as_float=True, progress=tiles_bar.update)
+        values = _guard(model_fault, source, denoiser.run, model_input, sigma=level, as_float=True,
+                        progress=tiles_bar.update)
         results.append(values if as_float else to_dtype(values, frames.dtype, denoiser.spec))
     record["fixed_pattern_corrected"] = corrected
     if any(corrected):
         notes.append(f"row/column banding removed before denoising in {sum(corrected)} of {count} frame(s)")
     record["noise_sigma_used"] = _noise_note(denoiser) or (levels if denoiser.spec.takes_noise_map else None)
     stack = np.stack(results)
-    try:
-        write_image(output, stack[0] if count == 1 else stack, text=json.dumps(record), overwrite=overwrite)
-    except ValueError as error:
-        raise InputError(output, f"cannot write: {error}") from None
+    _guard(write_fault, output, write_image, output, stack[0] if count == 1 else stack, text=json.dumps(record),
+           overwrite=overwrite, durable=durable)
     return count * height * width / 1e6, notes
 
 
 def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
-                 as_float: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
-    with TiffRowReader(source) as reader:
+                 as_float: bool, durable: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
+    with _guard(input_fault, source, TiffRowReader, source) as reader:
         height, width, channels = reader.shape
-        denoiser.check_channels(channels, source)
+        _guard(input_fault, source, denoiser.check_channels, channels, source)
         y0, y1, x0, x1 = _central_crop(height, width)
         notes = domain_warnings(denoiser, reader.read_rows(0, y0, y1)[:, x0:x1])
         # The kept rectangle is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
@@ -334,14 +396,15 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
                 # Copies only where the padding reflects rows or columns: a band of a wide image is large.
                 wanted = rows[top:bottom]
                 first, last = int(wanted.min()), int(wanted.max()) + 1
-                band = reader.read_rows(frame, first, last)
+                band = _guard(input_fault, source, reader.read_rows, frame, first, last)
                 if not np.array_equal(wanted, np.arange(first, last)):
                     band = band[wanted - first]
                 return band if identity_cols else band[:, cols]
 
             crop = reader.read_rows(frame, y0, y1)[:, x0:x1] if denoiser.spec.takes_noise_map else None
             level = denoiser.sigma_for(crop)
-            for _, kept in denoiser.kept_tiles(plan, read_padded_rows, level, tiles_bar.update):
+            tiles = denoiser.kept_tiles(plan, read_padded_rows, level, tiles_bar.update)
+            for _, kept in _guarded(tiles, model_fault, source):
                 yield kept if as_float else to_dtype(kept, out_dtype, denoiser.spec)
 
         if not denoiser.spec.takes_noise_map or denoiser.noise_sigma == "model":
@@ -352,9 +415,9 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
             notes.append(record["noise_sigma_used"])
         else:
             record["noise_sigma_used"] = denoiser.sigma_for(None)
-        write_tiled_tiff(
-            output, (frame_tiles(frame) for frame in range(reader.frames)),
-            shape=(height, width, channels), dtype=out_dtype, tile=plan.tile, description=json.dumps(record),
-            compression=WRITABLE_COMPRESSION.get(reader.compression), count=reader.frames, overwrite=overwrite,
-        )
+        _guard(write_fault, output, write_tiled_tiff,
+               output, (frame_tiles(frame) for frame in range(reader.frames)),
+               shape=(height, width, channels), dtype=out_dtype, tile=plan.tile, description=json.dumps(record),
+               compression=WRITABLE_COMPRESSION.get(reader.compression), count=reader.frames, overwrite=overwrite,
+               durable=durable)
         return reader.frames * height * width / 1e6, notes
