@@ -123,7 +123,7 @@ def fastest_step(model: torch.nn.Module, channels: int, patch_size: int, batch_s
     return min(medians, key=medians.get), medians
 
 
-def evaluate(setup: TrainingSetup) -> dict[str, float]:
+def validation_scores(setup: TrainingSetup) -> dict[str, float]:
     """Score the model on the fixed validation batches.
 
     With ground truth: mean PSNR (dB) and SSIM of the output against the clean patches, in native units scaled
@@ -198,6 +198,213 @@ def _write_images(writer: Any, setup: TrainingSetup, step: int) -> None:
         writer.add_image(f"validation/{name}", np.clip(image[shown], 0.0, 1.0), step, dataformats="CHW")
 
 
+@dataclass
+class RunState:
+    """Where a run stands. ``last.pt`` saves ``step`` and the rest (as its ``scheduler`` entry), so a resumed run
+    continues exactly: the schedule's progress, the best validation so far and the stale count for the plateau."""
+
+    step: int = 0
+    elapsed: float = 0.0
+    best: dict[str, float] | None = None
+    best_step: int = 0
+    stale: int = 0
+    history: list[dict[str, float]] = field(default_factory=list)
+
+    def scheduler(self) -> dict[str, Any]:
+        return {"elapsed": self.elapsed, "best": self.best, "best_step": self.best_step, "stale": self.stale,
+                "history": self.history}
+
+
+class _Training:
+    """One run's moving parts: model and optimiser, the random generators, the run state and the measured step
+    rate; it knows the budget's progress and writes the checkpoints."""
+
+    def __init__(self, setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None) -> None:
+        self.setup, self.run, self.config = setup, run, setup.config
+        if setup.channels_last:
+            setup.model.to(memory_format=torch.channels_last)
+        self.optimizer = make_optimizer(setup.model, self.config["optim"])
+        self.rng = np.random.default_rng(self.config["seed"])
+        self.state = RunState()
+        if resume is not None:
+            setup.model.load_state_dict(resume["state_dict"])
+            self.optimizer.load_state_dict(resume["optimizer"])
+            self.rng.bit_generator.state = resume["rng"]["numpy"]
+            torch.set_rng_state(resume["rng"]["torch"])
+            for key, value in resume["scheduler"].items():
+                setattr(self.state, key, value)
+            self.state.step = resume["step"]
+        self.budget_steps = self.config["budget"]["steps"]
+        self.budget_seconds = self.config["budget"]["minutes"] * 60.0
+        patch_pixels = self.config["data"]["patch_size"] ** 2 * self.config["data"]["batch_size"]
+        self.flops_per_step = (2.0 * setup.model.macs_per_pixel() * patch_pixels
+                               * setup.scheme.forward_passes_per_pixel)
+        self.timed_steps, self.timed_seconds = 0, 0.0  # this session's steps only (not a resumed run's earlier)
+        self.last_save = time.monotonic()
+
+    def progress(self) -> float:
+        """The fraction of the budget spent: steps over ``budget.steps``, else seconds over ``budget.minutes``."""
+        if self.budget_steps:
+            return self.state.step / self.budget_steps
+        return self.state.elapsed / self.budget_seconds if self.budget_seconds > 0 else 1.0
+
+    def set_learning_rate(self) -> float:
+        rate = learning_rate(self.progress(), self.config["optim"])
+        for group in self.optimizer.param_groups:
+            group["lr"] = rate
+        return rate
+
+    def count_step(self, seconds: float) -> None:
+        self.state.step += 1
+        self.state.elapsed += seconds
+        self.timed_steps += 1
+        self.timed_seconds += seconds
+
+    def summarise(self) -> dict[str, Any]:
+        rate = self.timed_steps / self.timed_seconds if self.timed_seconds > 0 else 0.0
+        return {"steps": self.state.step, "minutes": self.state.elapsed / 60.0, "best_step": self.state.best_step,
+                "best_validation": self.state.best,
+                "patches_per_second": rate * self.config["data"]["batch_size"],
+                "gflops_per_second": rate * self.flops_per_step / 1e9, "validation_history": self.state.history}
+
+    def _payload(self, with_resume: bool) -> dict[str, Any]:
+        setup = self.setup
+        content = checkpoint_payload(setup.model, setup.normalization, noise=setup.noise, scheme=setup.scheme.name,
+                                     training_summary=dict(setup.summary, **self.summarise()),
+                                     data_fingerprint=setup.data_fingerprint, training_noise=setup.training_noise)
+        if with_resume:
+            content.update(optimizer=self.optimizer.state_dict(), step=self.state.step,
+                           scheduler=self.state.scheduler(),
+                           rng={"numpy": self.rng.bit_generator.state, "torch": torch.get_rng_state()})
+        return content
+
+    def save_best(self) -> None:
+        save_checkpoint(self.run.best, self._payload(with_resume=False))
+
+    def save_last(self) -> None:
+        save_checkpoint(self.run.last, self._payload(with_resume=True))
+        self.last_save = time.monotonic()
+
+    def save_last_when_due(self) -> None:
+        """``last.pt`` every ``checkpoint.every_minutes`` of wall time."""
+        if time.monotonic() - self.last_save >= self.config["checkpoint"]["every_minutes"] * 60.0:
+            self.save_last()
+
+    def validation_due(self) -> bool:
+        return bool(self.setup.validation) and self.state.step % self.config["validation"]["every_steps"] == 0
+
+    def plateaued(self) -> bool:
+        patience = self.config["validation"]["patience"]
+        return bool(patience) and self.state.stale >= patience
+
+    def validate(self, log: "_Log") -> None:
+        """Score the model, log it, keep it as ``best.pt`` when it improves, count stale validations."""
+        started = time.monotonic()
+        state = self.state
+        score = validation_scores(self.setup)
+        state.history.append({"step": state.step, **score})
+        log.validation(score, state.step)
+        if _better(score, state.best, self.setup.ground_truth, self.config["validation"]["min_delta"]):
+            state.best, state.best_step, state.stale = score, state.step, 0
+            self.save_best()
+        else:
+            state.stale += 1
+        state.elapsed += time.monotonic() - started
+
+    def finish(self, stopped: str, log: "_Log") -> None:
+        """The final checkpoints: a completed budget validates its final state (and by default keeps it as
+        ``best.pt``); ``last.pt`` always holds the final state."""
+        state, validating = self.state, bool(self.setup.validation)
+        if validating and stopped == "budget" and not (state.history and state.history[-1]["step"] == state.step):
+            self.validate(log)  # the final state competes for best.pt too
+        if validating and stopped == "budget" and self.config["validation"]["keep_final"] \
+                and state.best_step != state.step:
+            # A few held-out patches cannot resolve the last small gains of the schedule: measured on held-out
+            # images, the final state beat the best-validated one in every 10-minute benchmark run compared.
+            state.best = {key: value for key, value in state.history[-1].items() if key != "step"}
+            state.best_step = state.step
+            self.save_best()
+        if not validating or state.best is None:
+            self.save_best()  # nothing to compare: the latest state is the best
+        self.save_last()
+
+
+class _Log:
+    """The progress bar and the TensorBoard scalars (means over ``SCALAR_EVERY_STEPS`` steps) and images."""
+
+    def __init__(self, setup: TrainingSetup, run: RunFolder, training: _Training) -> None:
+        self.setup, self.training = setup, training
+        config, step = setup.config, training.state.step
+        self.batch_size = config["data"]["batch_size"]
+        self.writer = None
+        if config["logging"]["tensorboard"]:
+            from torch.utils.tensorboard import SummaryWriter
+            self.writer = SummaryWriter(str(run.root / "tensorboard"), purge_step=step or None)
+        from tqdm import tqdm
+        by_steps = bool(training.budget_steps)
+        self.bar = tqdm(total=training.budget_steps or round(training.budget_seconds),
+                        initial=step if by_steps else round(training.state.elapsed), unit="step" if by_steps else "s",
+                        disable=not config["logging"]["progress"], dynamic_ncols=True, file=sys.stderr)
+        self.window = {"loss": 0.0, "steps": 0, "seconds": 0.0}  # since the last TensorBoard scalars
+
+    def step(self, loss: float, seconds: float, rate: float) -> None:
+        """After a step: advance the bar; every ``SCALAR_EVERY_STEPS`` steps write the window's mean scalars."""
+        state = self.training.state
+        # Whole seconds on a time budget, so the bar reads "95/240 s" rather than a long fraction.
+        self.bar.update(1 if self.training.budget_steps else max(0, round(state.elapsed) - self.bar.n))
+        self.bar.set_postfix(loss=f"{loss:.3g}", patches_s=f"{self.batch_size / max(seconds, 1e-9):.0f}",
+                             refresh=False)
+        window = self.window
+        window["loss"] += loss
+        window["steps"] += 1
+        window["seconds"] += seconds
+        if window["steps"] < SCALAR_EVERY_STEPS:
+            return
+        if self.writer is not None:
+            step_seconds = window["seconds"] / window["steps"]
+            self.writer.add_scalar("train/loss", window["loss"] / window["steps"], state.step)
+            self.writer.add_scalar("train/lr", rate, state.step)
+            self.writer.add_scalar("speed/patches_per_second", self.batch_size / step_seconds, state.step)
+            self.writer.add_scalar("speed/gflops_per_second", self.training.flops_per_step / step_seconds / 1e9,
+                                   state.step)
+        window.update(loss=0.0, steps=0, seconds=0.0)
+
+    def validation(self, score: dict[str, float], step: int) -> None:
+        if self.writer is not None:
+            for key, value in score.items():
+                self.writer.add_scalar(f"validation/{key}", value, step)
+            _write_images(self.writer, self.setup, step)
+
+    def close_bar(self) -> None:
+        self.bar.close()
+
+    def close(self) -> None:
+        if self.writer is not None:
+            self.writer.close()
+
+
+def training_step(setup: TrainingSetup, optimizer: torch.optim.Optimizer, rng: np.random.Generator,
+                  progress: float, step: int) -> torch.Tensor:
+    """One optimisation step: draw a batch of patches, let the scheme add its random draws and compute its loss
+    (bfloat16 autocast when asked), back-propagate, clip the gradients, update the weights. Returns the loss.
+
+    Raises ``FloatingPointError`` when the loss is not finite (``step`` names where)."""
+    data, optim = setup.config["data"], setup.config["optim"]
+    patches = setup.train.sample(rng, data["batch_size"], data["patch_size"], data["augment"],
+                                 data["flat_level"] if data["skip_flat"] else None)
+    batch = to_tensors(setup.scheme.prepare(patches, rng), setup.channels_last)
+    with step_precision(setup.precision):
+        loss = setup.scheme.loss(setup.model, batch, progress)
+    if not torch.isfinite(loss):
+        raise FloatingPointError(f"the loss became {float(loss)} at step {step}; lower optim.lr")
+    optimizer.zero_grad(set_to_none=True)
+    loss.backward()
+    if optim["grad_clip"] > 0:
+        clip_gradients(setup.model, optim["grad_clip"])
+    optimizer.step()
+    return loss
+
+
 def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = None,
           interrupt_at_step: int | None = None) -> dict[str, Any]:
     """Train ``setup.model`` and write ``run``'s checkpoints; return the training summary.
@@ -214,148 +421,30 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
     interrupt_at_step : int, optional
         Stop at this step as if interrupted (saving ``last.pt``); used by tests.
     """
-    config = setup.config
-    model, scheme, optim = setup.model, setup.scheme, config["optim"]
-    budget_steps, budget_seconds = config["budget"]["steps"], config["budget"]["minutes"] * 60.0
-    if setup.channels_last:
-        model.to(memory_format=torch.channels_last)
-    optimizer = make_optimizer(model, optim)
-    rng = np.random.default_rng(config["seed"])
-    state = {"step": 0, "elapsed": 0.0, "best": None, "best_step": 0, "stale": 0, "history": []}
-    if resume is not None:
-        model.load_state_dict(resume["state_dict"])
-        optimizer.load_state_dict(resume["optimizer"])
-        rng.bit_generator.state = resume["rng"]["numpy"]
-        torch.set_rng_state(resume["rng"]["torch"])
-        state.update(resume["scheduler"])
-        state["step"] = resume["step"]
-
-    def progress() -> float:
-        if budget_steps:
-            return state["step"] / budget_steps
-        return state["elapsed"] / budget_seconds if budget_seconds > 0 else 1.0
-
-    def payload(with_resume: bool) -> dict[str, Any]:
-        summary = dict(setup.summary, **summarise())
-        content = checkpoint_payload(model, setup.normalization, noise=setup.noise, scheme=scheme.name,
-                                     training_summary=summary, data_fingerprint=setup.data_fingerprint,
-                                     training_noise=setup.training_noise)
-        if with_resume:
-            content.update(optimizer=optimizer.state_dict(), step=state["step"],
-                           scheduler={key: state[key] for key in ("elapsed", "best", "best_step", "stale", "history")},
-                           rng={"numpy": rng.bit_generator.state, "torch": torch.get_rng_state()})
-        return content
-
-    patch_pixels = config["data"]["patch_size"] ** 2 * config["data"]["batch_size"]
-    flops_per_step = 2.0 * model.macs_per_pixel() * patch_pixels * scheme.forward_passes_per_pixel
-    timing = {"steps": 0, "seconds": 0.0}
-
-    def summarise() -> dict[str, Any]:
-        rate = timing["steps"] / timing["seconds"] if timing["seconds"] > 0 else 0.0
-        return {"steps": state["step"], "minutes": state["elapsed"] / 60.0, "best_step": state["best_step"],
-                "best_validation": state["best"], "patches_per_second": rate * config["data"]["batch_size"],
-                "gflops_per_second": rate * flops_per_step / 1e9, "validation_history": state["history"]}
-
-    writer = None
-    if config["logging"]["tensorboard"]:
-        from torch.utils.tensorboard import SummaryWriter
-        writer = SummaryWriter(str(run.root / "tensorboard"), purge_step=state["step"] or None)
-
-    from tqdm import tqdm
-    bar = tqdm(total=budget_steps or round(budget_seconds), initial=state["step"] if budget_steps else
-               round(state["elapsed"]), unit="step" if budget_steps else "s", disable=not config["logging"]["progress"],
-               dynamic_ncols=True, file=sys.stderr)
-    every_val, patience = config["validation"]["every_steps"], config["validation"]["patience"]
-    save_every = config["checkpoint"]["every_minutes"] * 60.0
-    def validate() -> None:
-        """Score the model, log it, keep it as ``best.pt`` when it improves, count stale validations."""
-        validation_started = time.monotonic()
-        score = evaluate(setup)
-        state["history"].append({"step": state["step"], **score})
-        if writer is not None:
-            for key, value in score.items():
-                writer.add_scalar(f"validation/{key}", value, state["step"])
-            _write_images(writer, setup, state["step"])
-        if _better(score, state["best"], setup.ground_truth, config["validation"]["min_delta"]):
-            state["best"], state["best_step"], state["stale"] = score, state["step"], 0
-            save_checkpoint(run.best, payload(with_resume=False))
-        else:
-            state["stale"] += 1
-        state["elapsed"] += time.monotonic() - validation_started
-
+    training = _Training(setup, run, resume)
+    log = _Log(setup, run, training)
     if resume is None:
-        save_checkpoint(run.last, payload(with_resume=True))  # resumable from the very start
-    last_save = time.monotonic()
-    logged = {"loss": 0.0, "steps": 0, "seconds": 0.0}  # since the last TensorBoard scalars
+        training.save_last()  # resumable from the very start
     stopped = "budget"
-    model.train()
+    setup.model.train()
     with _StopRequest() as stop:
-        while progress() < 1.0:
+        while training.progress() < 1.0:
             started = time.monotonic()
-            rate_now = learning_rate(progress(), optim)
-            for group in optimizer.param_groups:
-                group["lr"] = rate_now
-            patches = setup.train.sample(rng, config["data"]["batch_size"], config["data"]["patch_size"],
-                                         config["data"]["augment"],
-                                         config["data"]["flat_level"] if config["data"]["skip_flat"] else None)
-            batch = to_tensors(scheme.prepare(patches, rng), setup.channels_last)
-            with step_precision(setup.precision):
-                loss = scheme.loss(model, batch, progress())
-            if not torch.isfinite(loss):
-                raise FloatingPointError(f"the loss became {float(loss)} at step {state['step']}; lower optim.lr")
-            optimizer.zero_grad(set_to_none=True)
-            loss.backward()
-            if optim["grad_clip"] > 0:
-                clip_gradients(model, optim["grad_clip"])
-            optimizer.step()
+            rate = training.set_learning_rate()
+            loss = training_step(setup, training.optimizer, training.rng, training.progress(), training.state.step)
             seconds = time.monotonic() - started
-            state["step"] += 1
-            state["elapsed"] += seconds
-            timing["steps"] += 1
-            timing["seconds"] += seconds
-            # Whole seconds on a time budget, so the bar reads "95/240 s" rather than a long fraction.
-            bar.update(1 if budget_steps else max(0, round(state["elapsed"]) - bar.n))
-            rate = config["data"]["batch_size"] / max(seconds, 1e-9)
-            loss_value = loss.item()
-            bar.set_postfix(loss=f"{loss_value:.3g}", patches_s=f"{rate:.0f}", refresh=False)
-            logged["loss"] += loss_value
-            logged["steps"] += 1
-            logged["seconds"] += seconds
-            if logged["steps"] == SCALAR_EVERY_STEPS:
-                if writer is not None:
-                    step_seconds = logged["seconds"] / logged["steps"]
-                    writer.add_scalar("train/loss", logged["loss"] / logged["steps"], state["step"])
-                    writer.add_scalar("train/lr", rate_now, state["step"])
-                    writer.add_scalar("speed/patches_per_second", config["data"]["batch_size"] / step_seconds,
-                                      state["step"])
-                    writer.add_scalar("speed/gflops_per_second", flops_per_step / step_seconds / 1e9, state["step"])
-                logged.update(loss=0.0, steps=0, seconds=0.0)
-
-            if setup.validation and state["step"] % every_val == 0:
-                validate()
-                if patience and state["stale"] >= patience:
+            training.count_step(seconds)
+            log.step(loss.item(), seconds, rate)
+            if training.validation_due():
+                training.validate(log)
+                if training.plateaued():
                     stopped = "plateau"
                     break
-            if stop.signal is not None or state["step"] == interrupt_at_step:
+            if stop.signal is not None or training.state.step == interrupt_at_step:
                 stopped = "interrupted"
                 break
-            if time.monotonic() - last_save >= save_every:
-                save_checkpoint(run.last, payload(with_resume=True))
-                last_save = time.monotonic()
-    bar.close()
-    validated = bool(state["history"]) and state["history"][-1]["step"] == state["step"]
-    if setup.validation and stopped == "budget" and not validated:
-        validate()  # the final state competes for best.pt too
-    if setup.validation and stopped == "budget" and config["validation"]["keep_final"] \
-            and state["best_step"] != state["step"]:
-        # A few held-out patches cannot resolve the last small gains of the schedule: measured on held-out
-        # images, the final state beat the best-validated one in every 10-minute benchmark run compared.
-        state["best"] = {key: value for key, value in state["history"][-1].items() if key != "step"}
-        state["best_step"] = state["step"]
-        save_checkpoint(run.best, payload(with_resume=False))
-    if not setup.validation or state["best"] is None:
-        save_checkpoint(run.best, payload(with_resume=False))  # nothing to compare: the latest state is the best
-    save_checkpoint(run.last, payload(with_resume=True))
-    if writer is not None:
-        writer.close()
-    return dict(setup.summary, **summarise(), stopped=stopped)
+            training.save_last_when_due()
+    log.close_bar()
+    training.finish(stopped, log)
+    log.close()
+    return dict(setup.summary, **training.summarise(), stopped=stopped)
