@@ -235,7 +235,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         to_tensors,
         train,
     )
-    from grainwright.trainer.run import _create_run_folder, physical_cores, prepare
+    from grainwright.trainer.run import create_run_folder, physical_cores, prepare
 
     threads = args.threads or physical_cores()
     torch.set_num_threads(threads)
@@ -255,7 +255,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         round_steps = steps if round_index >= 0 else warm_up["budget"]["steps"]
         setup.model, setup.config = copy.deepcopy(initial), measured if round_index >= 0 else warm_up
         shutil.rmtree(work / f"throughput-{round_index + 1}", ignore_errors=True)  # a previous measurement's
-        run = _create_run_folder(work / f"throughput-{round_index + 1}", setup.config, noise)
+        run = create_run_folder(work / f"throughput-{round_index + 1}", setup.config, noise)
         started = time.perf_counter()
         summary = train(setup, run)
         loop_rate = round_steps * batch_size / (time.perf_counter() - started)

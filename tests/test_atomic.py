@@ -11,6 +11,7 @@ import pytest
 
 from grainwright.inference.common import atomic
 from grainwright.inference.common.atomic import (
+    atomic_folder,
     atomic_path,
     is_temporary,
     remove_stale_temporaries,
@@ -76,3 +77,29 @@ def test_folder_scans_skip_temporaries(tmp_path):
     write_image(tmp_path / "frame.png", np.zeros((4, 4), np.uint8))
     (tmp_path / f".frame2.png.gw-tmp.{atomic._host()}.1.ab").write_bytes(b"")
     assert [p.name for p in find_images(tmp_path)] == ["frame.png"]
+
+
+def test_folders_get_the_mode_of_a_normal_mkdir(tmp_path):
+    # os.mkdir(path, 0o777) is what a plain mkdir does: 0777 minus the umask (mkdtemp would give 0700).
+    old = os.umask(0o022)
+    try:
+        with atomic_folder(tmp_path / "run") as temporary:
+            assert is_temporary(temporary) and temporary.parent == tmp_path
+            (temporary / "config.toml").write_text("x")
+        (tmp_path / "reference").mkdir()
+    finally:
+        os.umask(old)
+    expected = stat.S_IMODE(os.stat(tmp_path / "reference").st_mode)
+    assert expected == 0o755
+    assert stat.S_IMODE(os.stat(tmp_path / "run").st_mode) == expected
+    assert (tmp_path / "run" / "config.toml").read_text() == "x"
+
+
+def test_a_failed_folder_leaves_nothing(tmp_path):
+    (tmp_path / "run").mkdir()  # an empty folder given as the target stays as it was
+    with pytest.raises(RuntimeError):
+        with atomic_folder(tmp_path / "run") as temporary:
+            (temporary / "config.toml").write_text("x")
+            raise RuntimeError("stop")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]
+    assert not any((tmp_path / "run").iterdir())

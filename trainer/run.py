@@ -10,8 +10,6 @@ from __future__ import annotations
 import datetime
 import json
 import os
-import shutil
-import tempfile
 import warnings
 from collections import Counter
 from dataclasses import dataclass
@@ -21,7 +19,7 @@ from typing import Any, Callable
 import numpy as np
 import torch
 
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import atomic_folder, write_text_atomic
 from grainwright.inference.common.errors import (
     ConfigError,
     GrainwrightError,
@@ -117,12 +115,23 @@ def _correct_fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str
                 item[role] = correct_fixed_pattern(item[role])
 
 
-def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> tuple[TrainingSetup, Layout, Any]:
-    """Check the config against the data and build everything the loop needs.
+@dataclass
+class _TrainingImages:
+    """The training data as read: layout, images (native units, one dict of roles per sample), their range, the
+    noise description given or estimated, and what the analysis of the noisy images found."""
 
-    Returns the setup, the layout found and the noise model used (or None). Raises ``GrainwrightError`` on any
-    problem with the data or the config; nothing is written.
-    """
+    layout: Layout
+    images: list[dict[str, np.ndarray]]
+    normalization: Any
+    channels: int
+    noise: Any
+    noise_path: Path | None
+    findings: NoiseFindings | None
+
+
+def _read_training_images(config: dict[str, Any], announce: Callable[[str], None]) -> _TrainingImages:
+    """Stage 1: find the layout, read the images and the noise description, fit the normalization to the images'
+    range and analyse the noise of the noisy ones."""
     from grainwright.inference.images.normalization import Normalization
 
     data_cfg = config["data"]
@@ -133,71 +142,91 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
         images, _ = read_layout(layout, data_cfg["patch_size"])
     for warning in caught:
         announce(f"warning: {warning.message}")
-    roles = layout.roles
-    native = [item[role] for item in images for role in roles]
+    native = [item[role] for item in images for role in layout.roles]
     channels = native[0].shape[2]
     stacked = np.concatenate([array.reshape(1, -1, channels) for array in native], axis=1)
     normalization = Normalization.for_array(stacked, data_cfg["bit_depth"] or None)
     del stacked
-
     # The noise of the noisy images: level (native units for the summary, working units for the schemes), model,
     # flags.
-    noisy_native = [item[role] for item in images for role in roles if role != "clean"]
+    noisy_native = [item[role] for item in images for role in layout.roles if role != "clean"]
     findings = _analyse_noise(noisy_native, normalization) if noisy_native else None
-    estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
+    return _TrainingImages(layout, images, normalization, channels, noise, noise_path, findings)
 
+
+def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, announce: Callable[[str], None]) -> str:
+    """Stage 2: the scheme (``auto`` picks one from the layout and the noise known), checked against the layout;
+    without a noise description, the estimated noise model becomes ``data.noise``."""
+    layout, findings = data.layout, data.findings
+    estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
     name = config["scheme"]
     if name == "auto":
-        name, reason = choose_scheme(layout.name, noise is not None, estimated)
+        name, reason = choose_scheme(layout.name, data.noise is not None, estimated)
         announce(f"scheme auto: {reason}")
     check_scheme_fits(name, layout.name)
-    if layout.name == "clean-only" and noise is None:
+    if layout.name == "clean-only" and data.noise is None:
         raise ConfigError(f"found {LAYOUT_TEXT['clean-only']} but no noise description: put a noise.toml in "
                           f"{layout.root} or set noise.file")
-    config = dict(config, scheme=name)
-    if noise is None and findings is not None:
-        noise = findings.model
-        announce(f"noise estimated from the images: {noise.describe()} (working units)"
+    if data.noise is None and findings is not None:
+        data.noise = findings.model
+        announce(f"noise estimated from the images: {data.noise.describe()} (working units)"
                  + ("" if findings.confident else "; the estimate is uncertain"))
+    return name
 
-    # Working-range transform and the noise level the schemes see.
-    transform = data_cfg["transform"]
+
+def _working_range(config: dict[str, Any], scheme: str, data: _TrainingImages,
+                   announce: Callable[[str], None]) -> tuple[str, np.ndarray | None]:
+    """Stage 3: the working-range transform (the Anscombe transform replaces ``data.normalization``) and the noise
+    level per channel the schemes see (working units; None when unknown)."""
+    transform, noise = config["data"]["transform"], data.noise
     kind = None if noise is None else noise.kind
     if transform == "auto":
-        transform = "anscombe" if name == "recorrupted" and kind in ("poisson", "poisson-gaussian") else "none"
+        transform = "anscombe" if scheme == "recorrupted" and kind in ("poisson", "poisson-gaussian") else "none"
     sigma = None
     if transform == "anscombe":
-        if layout.name == "clean-only":
+        if data.layout.name == "clean-only":
             raise ConfigError("data.transform: the Anscombe transform applies to real noisy data; with clean images "
                               "only the noise is synthesised in the linear range (use transform = \"none\")")
         if kind not in ("poisson", "poisson-gaussian"):
             raise ConfigError(f"data.transform = \"anscombe\" needs Poisson-Gaussian noise, but the noise is "
                               f"'{kind}' (give a noise.toml with kind \"poisson-gaussian\")")
         gain, read = noise.gain, getattr(noise, "read", 0.0)
-        normalization = normalization.with_anscombe(gain, read)
-        sigma = np.full(channels, normalization.working_noise_sigma(), dtype=np.float32)
+        data.normalization = data.normalization.with_anscombe(gain, read)
+        sigma = np.full(data.channels, data.normalization.working_noise_sigma(), dtype=np.float32)
         announce(f"training in the generalized-Anscombe domain (gain {gain:.4g}, read {read:.4g} of the range)")
     elif kind == "gaussian":
-        sigma = np.full(channels, noise.sigma, dtype=np.float32)
-    elif findings is not None:
-        sigma = (np.median(findings.per_image_sigma, axis=0) / normalization.full_range).astype(np.float32)
-    if name == "recorrupted" and transform != "anscombe" and kind != "gaussian":
+        sigma = np.full(data.channels, noise.sigma, dtype=np.float32)
+    elif data.findings is not None:
+        sigma = (np.median(data.findings.per_image_sigma, axis=0) / data.normalization.full_range).astype(np.float32)
+    if scheme == "recorrupted" and transform != "anscombe" and kind != "gaussian":
         raise ConfigError(f"scheme 'recorrupted' needs Gaussian or Poisson-Gaussian noise of known level, but the "
-                          f"noise {'description ' + str(noise_path) if noise_path else 'estimated'} is '{kind}'; "
-                          "give a noise.toml, or use neighbor2neighbor")
+                          f"noise {'description ' + str(data.noise_path) if data.noise_path else 'estimated'} is "
+                          f"'{kind}'; give a noise.toml, or use neighbor2neighbor")
+    return transform, sigma
 
-    working = [{role: normalization.to_working(array) for role, array in item.items()} for item in images]
-    del images, native, noisy_native
-    mode, fixed_pattern = data_cfg["fixed_pattern"], False
-    if mode == "always" or (mode == "auto" and findings is not None and findings.flags):
-        if mode == "auto":
-            announce(f"warning: the {' and '.join(findings.flags)} flag is raised on the noisy images; every "
-                     "self-supervised scheme assumes zero-mean noise independent from pixel to pixel, so the "
-                     "row/column fixed-pattern correction is applied before training (see the README's limits)")
-        _correct_fixed_pattern(working, roles)
-        fixed_pattern = True
 
-    # Split by image; a single image is split into two regions.
+def _to_working(config: dict[str, Any], data: _TrainingImages,
+                announce: Callable[[str], None]) -> tuple[list[dict[str, np.ndarray]], bool]:
+    """Stage 4: the images in working units (``data.images`` is released), with the row/column fixed-pattern
+    correction when asked or when the analysis flags banding or correlation. Returns the images and whether the
+    correction was applied."""
+    working = [{role: data.normalization.to_working(array) for role, array in item.items()} for item in data.images]
+    data.images = []
+    mode, findings = config["data"]["fixed_pattern"], data.findings
+    if not (mode == "always" or (mode == "auto" and findings is not None and findings.flags)):
+        return working, False
+    if mode == "auto":
+        announce(f"warning: the {' and '.join(findings.flags)} flag is raised on the noisy images; every "
+                 "self-supervised scheme assumes zero-mean noise independent from pixel to pixel, so the "
+                 "row/column fixed-pattern correction is applied before training (see the README's limits)")
+    _correct_fixed_pattern(working, data.layout.roles)
+    return working, True
+
+
+def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
+           ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]]]:
+    """Stage 5: training and validation images, split by image; a single image is split into two regions."""
+    data_cfg = config["data"]
     rng = np.random.default_rng(config["seed"])
     if len(working) == 1:
         train_part, validation_part = split_single_image(working[0], data_cfg["validation_fraction"],
@@ -209,95 +238,116 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
         validation_images = [working[i] for i in validation_index]
     if not validation_images:
         announce("warning: no images held out for validation; the last state is kept as the best")
+    return train_images, validation_images
 
-    def source(items: list[dict[str, np.ndarray]]) -> PatchSource:
-        return PatchSource({role: [item[role] for item in items] for role in roles})
 
-    # Model: skip off for blind-spot schemes; patch size a multiple of the alignment.
-    cls = scheme_class(name)
-    skip = config["model"]["skip"]
+def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.ndarray | None,
+                 announce: Callable[[str], None]) -> tuple[torch.nn.Module, dict[str, Any]]:
+    """Stage 6: the model (skip off for blind-spot schemes; the patch size a multiple of the alignment) and the
+    fastest step arithmetic when asked (``auto``). Returns the model and the config's resolved ``model`` table."""
+    cls, model_cfg, patch_size = scheme_class(scheme), config["model"], config["data"]["patch_size"]
+    skip = model_cfg["skip"]
     if skip == "auto":
         skip = not cls.needs_no_skip
     elif skip and cls.needs_no_skip:
-        raise ConfigError(f"model.skip = true: scheme '{name}' needs an architecture without the input-to-output "
+        raise ConfigError(f"model.skip = true: scheme '{scheme}' needs an architecture without the input-to-output "
                           "skip (it would hand each masked pixel its own noisy value); set model.skip = false")
-    hyper = {**hyper_defaults(config["model"]["name"]), **config["model"]["hyper"], "skip": skip}
+    hyper = {**hyper_defaults(model_cfg["name"]), **model_cfg["hyper"], "skip": skip}
     torch.manual_seed(config["seed"])
     try:
-        model = build_model(config["model"]["name"], channels, **hyper)
+        model = build_model(model_cfg["name"], channels, **hyper)
     except (TypeError, ValueError) as error:
         raise ConfigError(f"model.hyper: {error}") from None
     multiple = cls.patch_multiple * model.alignment
-    if data_cfg["patch_size"] % multiple:
-        raise ConfigError(f"data.patch_size: {data_cfg['patch_size']} must be a multiple of {multiple} for scheme "
-                          f"'{name}' with architecture '{model.name}'")
+    if patch_size % multiple:
+        raise ConfigError(f"data.patch_size: {patch_size} must be a multiple of {multiple} for scheme "
+                          f"'{scheme}' with architecture '{model.name}'")
     if model.takes_noise_map and sigma is None:
         raise ConfigError(f"model.name: '{model.name}' needs a noise level: give a noise.toml (noise.file)")
-    channels_last, precision = config["model"]["channels_last"], config["model"]["precision"]
+    channels_last, precision = model_cfg["channels_last"], model_cfg["precision"]
     if "auto" in (channels_last, precision):
         layouts = (False, True) if channels_last == "auto" else (channels_last,)
         precisions = ("float32", "bfloat16") if precision == "auto" else (precision,)
-        (channels_last, precision), seconds = fastest_step(model, channels, data_cfg["patch_size"],
-                                                           data_cfg["batch_size"], layouts, precisions)
+        (channels_last, precision), seconds = fastest_step(model, channels, patch_size,
+                                                           config["data"]["batch_size"], layouts, precisions)
         measured = ", ".join(f"{'channels-last' if layout else 'standard'} {kind} {value * 1e3:.0f}"
                              for (layout, kind), value in seconds.items())
         announce(f"step arithmetic: {'channels-last' if channels_last else 'standard'} layout, {precision} "
                  f"(measured ms per step: {measured})")
-    config = dict(config, model=dict(config["model"], skip=skip, hyper=dict(model.hyper), channels_last=channels_last,
-                                     precision=precision))
-    scheme = cls(config, noise, sigma, level_maps=model.takes_noise_map)
+    return model, dict(model_cfg, skip=skip, hyper=dict(model.hyper), channels_last=channels_last,
+                       precision=precision)
 
-    validation: list[dict[str, np.ndarray]] = []
-    if validation_images:
-        fixed = np.random.default_rng([config["seed"], 1])
-        patches = source(validation_images).sample(fixed, config["validation"]["patches"], data_cfg["patch_size"],
-                                                   augment=False)
-        size = data_cfg["batch_size"]
-        for start in range(0, config["validation"]["patches"], size):
-            chunk = {role: array[start:start + size] for role, array in patches.items()}
-            validation.append(scheme.prepare(chunk, fixed))
+
+def _patch_source(items: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> PatchSource:
+    return PatchSource({role: [item[role] for item in items] for role in roles})
+
+
+def _validation_batches(config: dict[str, Any], scheme: Any, images: list[dict[str, np.ndarray]],
+                        roles: tuple[str, ...]) -> list[dict[str, np.ndarray]]:
+    """Stage 7: the fixed held-out batches (patches and the scheme's draws from their own seeded generator)."""
+    if not images:
+        return []
+    fixed = np.random.default_rng([config["seed"], 1])
+    patches = _patch_source(images, roles).sample(fixed, config["validation"]["patches"],
+                                                  config["data"]["patch_size"], augment=False)
+    size = config["data"]["batch_size"]
+    batches = []
+    for start in range(0, config["validation"]["patches"], size):
+        chunk = {role: array[start:start + size] for role, array in patches.items()}
+        batches.append(scheme.prepare(chunk, fixed))
+    return batches
+
+
+def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> tuple[TrainingSetup, Layout, Any]:
+    """Check the config against the data and build everything the loop needs.
+
+    Returns the setup, the layout found and the noise model used (or None). Raises ``GrainwrightError`` on any
+    problem with the data or the config; nothing is written.
+    """
+    data = _read_training_images(config, announce)
+    layout = data.layout
+    name = _choose_scheme_and_noise(config, data, announce)
+    config = dict(config, scheme=name)
+    transform, sigma = _working_range(config, name, data, announce)
+    working, fixed_pattern = _to_working(config, data, announce)
+    train_images, validation_images = _split(config, working, announce)
+    model, model_table = _build_model(config, name, data.channels, sigma, announce)
+    config = dict(config, model=model_table)
+    scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map)
+    validation = _validation_batches(config, scheme, validation_images, layout.roles)
 
     training_noise = None
-    if findings is not None:
-        per_image = findings.per_image_sigma.mean(axis=1)
+    if data.findings is not None:
+        per_image = data.findings.per_image_sigma.mean(axis=1)
         training_noise = {"sigma_native": float(np.median(per_image)),
                           "sigma_native_range": [float(per_image.min()), float(per_image.max())],
-                          "effective_bit_depth": normalization.bit_depth}
+                          "effective_bit_depth": data.normalization.bit_depth}
+    channels_last, precision = model_table["channels_last"], model_table["precision"]
     summary = {"layout": layout.name, "scheme": name, "training_images": len(train_images),
                "validation_images": len(validation_images), "data_folder": str(layout.root),
                "fixed_pattern_corrected": fixed_pattern, "transform": transform,
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
                "channels_last": channels_last, "precision": precision}
-    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=source(train_images),
-                          validation=validation, ground_truth=layout.has_ground_truth, normalization=normalization,
-                          channels_last=channels_last, precision=precision,
-                          noise=noise, data_fingerprint=data_fingerprint(sorted({p for s in layout.samples for p in s})),
+    files = sorted({path for sample in layout.samples for path in sample})
+    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
+                          validation=validation, ground_truth=layout.has_ground_truth,
+                          normalization=data.normalization, channels_last=channels_last, precision=precision,
+                          noise=data.noise, data_fingerprint=data_fingerprint(files),
                           training_noise=training_noise, summary=summary)
-    return setup, layout, noise
+    return setup, layout, data.noise
 
 
-def _create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFolder:
+def create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFolder:
     """Write ``config.toml`` and ``noise.toml`` into a temporary folder beside ``out`` and rename it into place."""
     from grainwright.inference.common.tomlio import write_toml
     from grainwright.inference.noise.models import save_noise
 
     if out.exists() and (not out.is_dir() or any(out.iterdir())):
         raise InputError(out, "run folder exists and is not empty (choose another --out, or --resume it)")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    temporary = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
-    umask = os.umask(0)
-    os.umask(umask)
-    try:
-        temporary.chmod(0o777 & ~umask)  # mkdtemp makes it private; a run folder is an ordinary folder
+    with atomic_folder(out) as temporary:
         write_toml(temporary / "config.toml", config, header="grainwright training config, resolved (every key)")
         if noise is not None:
             save_noise(noise, temporary / "noise.toml")
-        if out.exists():
-            out.rmdir()
-        os.replace(temporary, out)
-    except BaseException:
-        shutil.rmtree(temporary, ignore_errors=True)
-        raise
     return RunFolder(out)
 
 
@@ -361,7 +411,7 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         else:
             stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
             target = Path(out) if out else Path("runs") / f"{stamp}-{setup.config['scheme']}"
-            run = _create_run_folder(target, validate(setup.config), noise)
+            run = create_run_folder(target, validate(setup.config), noise)
         announce(f"{LAYOUT_TEXT[layout.name]}: {setup.summary['training_images']} training and "
                  f"{setup.summary['validation_images']} validation images; scheme {setup.config['scheme']}; "
                  f"{setup.model.name} ({setup.model.parameter_count()} parameters, "

@@ -126,6 +126,29 @@ def atomic_path(path: str | Path, *, durable: bool = False) -> Iterator[Path]:
         fsync_folder(path.parent)
 
 
+@contextlib.contextmanager
+def atomic_folder(path: str | Path) -> Iterator[Path]:
+    """Yield a fresh temporary folder to fill; rename it to ``path`` when the block ends.
+
+    The folder gets a temporary name of this module (:func:`temporary_name`, so a crashed run's leftover is
+    recognised) and mode 0777 minus the umask, like any folder. An existing empty folder at ``path`` is replaced;
+    on any exception the temporary folder and its content are removed and ``path`` is untouched. The parent
+    folder is created when missing.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temporary = temporary_name(path)
+    os.mkdir(temporary, 0o777)
+    try:
+        yield temporary
+        if path.is_dir():
+            path.rmdir()  # only an empty one: rmdir refuses anything else
+        os.replace(temporary, path)
+    except BaseException:
+        shutil.rmtree(temporary, ignore_errors=True)
+        raise
+
+
 def write_bytes_atomic(path: str | Path, data: bytes, *, durable: bool = False) -> Path:
     """Write ``data`` to ``path`` atomically (see the module docstring)."""
     with atomic_path(path, durable=durable) as temporary:
