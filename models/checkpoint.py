@@ -189,17 +189,22 @@ def load_checkpoint(path: str | Path) -> dict[str, Any]:
     Raises
     ------
     InputError
-        Missing file, not a grainwright checkpoint, a payload that is not plain data, or a format version newer
+        Missing file; not a checkpoint at all (empty, text, another format) or damaged; stored code (a payload
+        that is not plain data; it is refused, never run); not a grainwright checkpoint; a format version newer
         than this grainwright reads.
     """
     path = resolve_checkpoint(path)
     try:
         payload = torch.load(path, map_location="cpu", weights_only=True)
     except pickle.UnpicklingError as error:
+        # The restricted unpickler names the first disallowed import as "GLOBAL module.name": that is stored code
+        # (also in a pickle that looks like text). Any other refusal is not code but not a checkpoint either.
         reason = next((line for line in str(error).splitlines() if "GLOBAL" in line), "").strip()
-        raise InputError(path, f"refused: not plain data, loading it would run code. {reason}".strip()) from None
-    except (RuntimeError, EOFError, OSError, ValueError) as error:
-        raise InputError(path, f"not a readable checkpoint ({type(error).__name__}: {error})") from None
+        if reason:
+            raise InputError(path, f"refused: not plain data, loading it would run code. {reason}") from None
+        raise InputError(path, _not_a_checkpoint(path, error)) from None
+    except (RuntimeError, EOFError, OSError, ValueError, KeyError, UnicodeError) as error:
+        raise InputError(path, _not_a_checkpoint(path, error)) from None
     if not isinstance(payload, dict) or payload.get("format") != FORMAT:
         raise InputError(path, "not a grainwright checkpoint (no 'format' key naming it)")
     version = payload.get("format_version")
@@ -221,6 +226,34 @@ def load_checkpoint(path: str | Path) -> dict[str, Any]:
     except GrainwrightError as error:
         raise InputError(path, str(error)) from None
     return payload
+
+
+# How torch.save files begin: a zip archive (the format since PyTorch 1.6), or the legacy format's pickled magic
+# number (protocol 2, then a 10-byte LONG1 integer).
+TORCH_SIGNATURES = (b"PK\x03\x04", b"\x80\x02\x8a\x0a")
+
+
+def _not_a_checkpoint(path: Path, error: BaseException) -> str:
+    """Why a file without stored code could not be loaded, judged by how it begins."""
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(64)
+    except OSError as read_error:
+        return f"cannot be read ({read_error.strerror or read_error})"
+    if not head:
+        return "is empty, not a checkpoint"
+    if head.startswith(TORCH_SIGNATURES):
+        return f"damaged or truncated checkpoint ({_first_line(error)})"
+    try:
+        head.decode("utf-8")
+    except UnicodeDecodeError:
+        return "not a checkpoint: an unknown binary format, neither a torch.save archive nor a pickle"
+    return "not a checkpoint: a text file, where torch.save writes a binary archive"
+
+
+def _first_line(error: BaseException) -> str:
+    text = str(error).strip()
+    return f"{type(error).__name__}: {text.splitlines()[0]}" if text else type(error).__name__
 
 
 def model_from_checkpoint(payload: Mapping[str, Any], path: str | Path | None = None) -> DenoisingNetwork:

@@ -11,8 +11,10 @@ Interface (opset 17, dynamic batch, height and width):
   pixel in native units (the graph converts it, see :mod:`grainwright.models.working_range`);
 - output ``denoised``: float32 ``N x C x H x W``, native values, neither clipped nor rounded.
 
-H and W must be multiples of the model's alignment. One JSON document under the ``metadata_props`` key
-``grainwright`` describes the model (:func:`build_metadata`). Every export checks ONNX Runtime against torch
+Any H and W: the graph pads the image (and the noise map) at the bottom and right by mirror reflection to
+multiples of the model's alignment and crops the output back, exactly as grainwright's runtime pads before
+tiling (for which the declared ``alignment`` stays in the metadata: aligned tiles need no padding inside). One JSON
+document under the ``metadata_props`` key ``grainwright`` describes the model (:func:`build_metadata`). Every export checks ONNX Runtime against torch
 (numpy normalisation + torch network) and writes nothing when they differ by more than ``PARITY_TOLERANCE``.
 """
 from __future__ import annotations
@@ -22,7 +24,7 @@ import io
 import json
 import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any, Callable
 
 import numpy as np
@@ -62,7 +64,7 @@ from grainwright.models.working_range import WorkingRange
 OPSET = 17
 # Largest ONNX Runtime vs torch difference accepted, in fractions of the native range (high - low).
 PARITY_TOLERANCE = 1e-4
-PARITY_SHAPE = (123, 77)  # odd on purpose: padding to the alignment is part of what is checked
+PARITY_SHAPE = (123, 77)  # odd on purpose: the padding to the alignment inside the graph is checked too
 CALIBRATION_CROP = 256
 CAUTION = (
     "Denoising can remove exactly the detail that matters. On medical or safety-critical images the output is "
@@ -72,7 +74,8 @@ CAUTION = (
 
 
 class ExportGraph(nn.Module):
-    """Native values -> working range -> network -> native values, as one module to trace."""
+    """Native values -> aligned size -> working range -> network -> native values -> original size, as one
+    module to trace."""
 
     def __init__(self, model: DenoisingNetwork, working_range: WorkingRange):
         super().__init__()
@@ -80,11 +83,25 @@ class ExportGraph(nn.Module):
         self.working_range = working_range
 
     def forward(self, image: torch.Tensor, noise_sigma: torch.Tensor | None = None) -> torch.Tensor:
+        height, width = image.shape[2], image.shape[3]
+        image = pad_reflect_to(image, self.model.alignment)
         working = self.working_range.to_working(image)
         sigma = None
         if self.model.takes_noise_map:
-            sigma = self.working_range.noise_sigma_to_working(noise_sigma, image)
-        return self.working_range.from_working_float(self.model(working, sigma))
+            sigma = self.working_range.noise_sigma_to_working(pad_reflect_to(noise_sigma, self.model.alignment),
+                                                              image)
+        return self.working_range.from_working_float(self.model(working, sigma))[:, :, :height, :width]
+
+
+def pad_reflect_to(batch: torch.Tensor, alignment: int) -> torch.Tensor:
+    """Pad ``(N, C, H, W)`` at the bottom and right by mirror reflection (edge pixel not repeated, numpy's
+    ``'reflect'``) to multiples of ``alignment``; traced with the sizes as graph values, so the exported graph
+    pads whatever size it is given. Sizes must exceed the padding (at least ``alignment`` pixels)."""
+    if alignment == 1:
+        return batch
+    extra_rows = (alignment - batch.shape[2] % alignment) % alignment
+    extra_cols = (alignment - batch.shape[3] % alignment) % alignment
+    return nn.functional.pad(batch, [0, extra_cols, 0, extra_rows], mode="reflect")
 
 
 def export_graph(model: DenoisingNetwork, normalization: Normalization, opset: int = OPSET) -> onnx.ModelProto:
@@ -115,14 +132,18 @@ def export_graph(model: DenoisingNetwork, normalization: Normalization, opset: i
 
 def reference_output(model: DenoisingNetwork, normalization: Normalization, image: np.ndarray,
                      noise_sigma: np.ndarray | None = None) -> np.ndarray:
-    """What the export must reproduce: numpy ``to_working``, the torch network, numpy ``from_working_float``."""
+    """What the export must reproduce: numpy padding to the alignment (the runtime's), numpy ``to_working``, the
+    torch network, numpy ``from_working_float``, cropped back to the image's size."""
+    height, width = image.shape[-2:]
+    image = pad_to_alignment(image, model.alignment)
     working = torch.from_numpy(normalization.to_working(image))
     sigma = None
     if model.takes_noise_map:
-        sigma = WorkingRange(normalization).noise_sigma_to_working(torch.from_numpy(noise_sigma), torch.from_numpy(image))
+        sigma = WorkingRange(normalization).noise_sigma_to_working(
+            torch.from_numpy(pad_to_alignment(noise_sigma, model.alignment)), torch.from_numpy(image))
     with torch.no_grad():
         output = model.eval()(working, sigma).numpy()
-    return normalization.from_working_float(output)
+    return normalization.from_working_float(output)[..., :height, :width]
 
 
 def parity_difference(session: ort.InferenceSession, model: DenoisingNetwork, normalization: Normalization,
@@ -166,11 +187,26 @@ def tiling_rule(receptive_field: int, alignment: int, margin: int) -> str:
     )
 
 
+def shareable_summary(summary: dict[str, Any] | None, record_data_path: bool = False) -> dict[str, Any] | None:
+    """The training summary as it may travel with a model: the training data folder by its base name only (the
+    ``data_fingerprint`` identifies the files), unless ``record_data_path`` asks for the full path as trained."""
+    if summary is None:
+        return None
+    summary = dict(summary)
+    if summary.get("data_folder") and not record_data_path:
+        summary["data_folder"] = PurePath(str(summary["data_folder"])).name
+    return summary
+
+
 def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalization: Normalization,
-                   parity: dict[str, Any], source: Path) -> dict[str, Any]:
-    """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in DEVELOPERS.md)."""
+                   parity: dict[str, Any], source: Path, record_data_path: bool = False) -> dict[str, Any]:
+    """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in DEVELOPERS.md).
+
+    The training data folder appears by its base name, or as the full path with ``record_data_path``.
+    """
     figures = model.describe()
-    inputs = {"image": "float32 N x C x H x W, native pixel values; H and W multiples of the alignment"}
+    inputs = {"image": "float32 N x C x H x W, native pixel values; any H and W of at least the alignment (the graph "
+                       "pads to multiples of the alignment by reflection and crops back; aligned sizes avoid it)"}
     if model.takes_noise_map:
         inputs["noise_sigma"] = (
             "float32 N x 1 x H x W, noise standard deviation per pixel in native units; scale it to change the "
@@ -198,7 +234,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "training_noise": training_noise(payload, normalization),
         "scheme": payload.get("scheme"),
         "data_fingerprint": payload.get("data_fingerprint"),
-        "training_summary": payload.get("training_summary"),
+        "training_summary": shareable_summary(payload.get("training_summary"), record_data_path),
         "source_checkpoint": {"file": source.name, "created": payload.get("created"),
                               "tool_version": payload.get("tool_version")},
         "opset": OPSET,
@@ -249,6 +285,7 @@ def export_checkpoint(
     int8: bool = False,
     min_int8_psnr: float = 40.0,
     overwrite: bool = False,
+    record_data_path: bool = False,
     threads: int = 2,
     seed: int = 0,
     log: Callable[[str], None] = lambda message: None,
@@ -269,6 +306,9 @@ def export_checkpoint(
         on held-out patches reaches ``min_int8_psnr`` dB.
     overwrite : bool
         Replace existing output files.
+    record_data_path : bool
+        Record the training data folder's full path in the metadata; by default only its base name travels
+        with the model (beside the fingerprint of the training files), so no workstation path leaves the site.
 
     Returns
     -------
@@ -315,7 +355,7 @@ def export_checkpoint(
         return np.full(shape, sigma_level, np.float32)
 
     random_image = rng.uniform(normalization.low, normalization.high, (1, model.channels, *PARITY_SHAPE))
-    random_image = pad_to_alignment(random_image.astype(np.float32), model.alignment)
+    random_image = random_image.astype(np.float32)  # odd size: the graph pads to the alignment and crops back
     parity: dict[str, Any] = {
         "tolerance": PARITY_TOLERANCE,
         "units": "fractions of the native range (high - low), i.e. the working range before any transform",
@@ -325,7 +365,7 @@ def export_checkpoint(
         "calibration": None,
     }
     if images:
-        crop = pad_to_alignment(centre_crop(images[0].frame, CALIBRATION_CROP), model.alignment)
+        crop = centre_crop(images[0].frame, CALIBRATION_CROP)
         parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
                                  "max_abs_diff": parity_difference(session, model, normalization, crop,
                                                                    noise_map_for(crop, random=False))}
@@ -336,7 +376,7 @@ def export_checkpoint(
             f"(limit {PARITY_TOLERANCE:g}); nothing was written"
         )
 
-    metadata = build_metadata(payload, model, normalization, parity, checkpoint)
+    metadata = build_metadata(payload, model, normalization, parity, checkpoint, record_data_path)
     write_model(attach_metadata(proto, metadata), output, overwrite=overwrite)
     result = ExportResult(output, metadata)
     result.messages.append(f"wrote {output} (parity {worst:.2g} of the range, limit {PARITY_TOLERANCE:g})")

@@ -2,7 +2,7 @@
 
 ``to_working`` and ``from_working_float`` repeat the numpy functions operation for operation (normalise, then the
 optional generalized Anscombe or log transform rescaled to ``[0, 1]``; and back, with the closed-form exact
-unbiased inverse of the Anscombe transform), so the exported graph takes and returns native values. The
+unbiased inverse of the Anscombe transform, or ``exp`` with the log-domain speckle bias removed), so the exported graph takes and returns native values. The
 constants are baked into the graph. ``tests/test_export_working_range.py`` holds both sides together.
 
 ``noise_sigma_to_working`` converts a per-pixel noise standard deviation in native units into the working
@@ -60,7 +60,7 @@ class WorkingRange(nn.Module):
             if t["kind"] == "anscombe":
                 x = _anscombe_inverse_exact(d, t["gain"], t["read"])
             else:
-                x = torch.exp(d) - t["epsilon"]
+                x = torch.exp(d - t.get("bias", 0.0)) - t["epsilon"]
         return x * self.full_range + self.low
 
     def noise_sigma_to_working(self, sigma_native: torch.Tensor, native: torch.Tensor) -> torch.Tensor:

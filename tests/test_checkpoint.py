@@ -90,7 +90,7 @@ def test_bad_inputs_get_clear_errors(tmp_path):
         load_checkpoint(foreign)
     garbage = tmp_path / "garbage.pt"
     garbage.write_bytes(b"not a checkpoint at all")
-    with pytest.raises(InputError, match="garbage.pt"):
+    with pytest.raises(InputError, match="garbage.pt: not a checkpoint: a text file"):
         load_checkpoint(garbage)
     mismatched = _payload()
     mismatched["hyper"] = {"depth": 4, "width": 4}
@@ -106,3 +106,24 @@ def test_data_fingerprint_depends_on_names_and_sizes_not_order(tmp_path):
     assert first == data_fingerprint([b, a]) and first.startswith("sha256:")
     b.write_bytes(b"333")
     assert data_fingerprint([a, b]) != first
+
+
+def test_text_empty_and_damaged_files_are_told_apart_from_stored_code(tmp_path):
+    """A text file, an empty file, random bytes and a truncated checkpoint are 'not a checkpoint / damaged';
+    only a pickle that imports something (here a text-looking protocol-0 pickle calling os.system) is 'code'."""
+    cases = {
+        "notes.txt": (b'model = "unet"\nweights = [1, 2, 3]\n', "not a checkpoint: a text file"),
+        "empty.pt": (b"", "is empty, not a checkpoint"),
+        "noise.pt": (bytes(range(255, 127, -1)) * 2,
+                     "not a checkpoint: an unknown binary format"),
+        "code.pt": (b'cos\nsystem\n(S"echo never"\ntR.', "refused: not plain data, loading it would run code"),
+    }
+    whole = save_checkpoint(tmp_path / "whole.pt", _payload()).read_bytes()
+    cases["truncated.pt"] = (whole[: len(whole) // 2], "damaged or truncated checkpoint")
+    for name, (content, message) in cases.items():
+        (tmp_path / name).write_bytes(content)
+        with pytest.raises(InputError, match=f"{name}: {message}") as caught:
+            load_checkpoint(tmp_path / name)
+        assert "\n" not in str(caught.value)
+        if name != "code.pt":
+            assert "code" not in str(caught.value)

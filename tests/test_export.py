@@ -93,18 +93,21 @@ def test_export_from_random_checkpoint_is_valid_and_matches_torch(tmp_path, name
     assert [i.name for i in _session(result.path).get_inputs()] == list(feeds)
 
 
-@pytest.mark.parametrize("kind", ["anscombe", "log"])
+@pytest.mark.parametrize("kind", ["anscombe", "log", "log-noisy-targets"])
 def test_variance_stabilising_transform_is_inside_the_graph(tmp_path, kind):
-    normalization = TWELVE_BIT.with_anscombe(0.004, 0.003) if kind == "anscombe" else TWELVE_BIT.with_log()
+    normalization = {"anscombe": TWELVE_BIT.with_anscombe(0.004, 0.003), "log": TWELVE_BIT.with_log(),
+                     "log-noisy-targets": TWELVE_BIT.with_log(looks=4.0, noisy_targets=True)}[kind]
     source, payload = _checkpoint(tmp_path, "residual", normalization)
     result = export_checkpoint(source, tmp_path / "model.onnx")
     ops = {node.op_type for node in onnx.load(result.path).graph.node}
     assert ("Sqrt" in ops) if kind == "anscombe" else ({"Log", "Exp"} <= ops)
+    if kind == "log-noisy-targets":  # the speckle bias is removed inside the graph as in numpy
+        assert result.metadata["normalization"]["transform"]["bias"] == pytest.approx(-0.1302, abs=1e-4)
     image = np.random.default_rng(1).uniform(0, 4095, (1, 1, 31, 45)).astype(np.float32)
     output = _session(result.path).run(["denoised"], {"image": image})[0]
     expected = reference_output(export_module.model_from_checkpoint(payload), normalization, image)
     assert np.max(np.abs(output - expected)) / 4095.0 <= 1e-4
-    assert result.metadata["normalization"]["transform"]["kind"] == kind
+    assert result.metadata["normalization"]["transform"]["kind"] == kind.removesuffix("-noisy-targets")
 
 
 def test_batch_norm_is_folded_at_export(tmp_path):
@@ -131,7 +134,7 @@ def test_metadata_carries_everything_a_runtime_needs(tmp_path, calibration_dir):
     assert str(metadata["tile_margin"]) in metadata["tiling_rule"]
     assert metadata["normalization"] == TWELVE_BIT.to_dict()
     assert metadata["scheme"] == "supervised" and metadata["training_noise"] == {"sigma_native": 40.0}
-    assert metadata["parity"]["random"]["shape"] == [1, 1, 124, 80]  # 123 x 77 padded to the alignment of 4
+    assert metadata["parity"]["random"]["shape"] == [1, 1, 123, 77]  # not multiples of the alignment of 4
     assert metadata["parity"]["calibration"]["file"] == "camera.tif"
     assert metadata["parity"]["calibration"]["max_abs_diff"] <= 1e-4
 
@@ -232,3 +235,42 @@ def test_training_noise_level_falls_back_to_a_gaussian_noise_model(tmp_path):
     metadata = export_checkpoint(source, tmp_path / "model.onnx").metadata
     assert metadata["training_noise"]["sigma_native"] == pytest.approx(40.95)
     assert metadata["noise"] == {"kind": "gaussian", "sigma": 0.01}
+
+
+@pytest.mark.parametrize("name", ["unet-small", "unet-halfres", "residual-noisemap"])
+def test_graph_runs_at_any_size_and_matches_the_runtime_path(tmp_path, name):
+    """Sizes off the alignment grid: the graph pads by reflection inside and crops back, giving what the runtime's
+    own path gives (numpy 'reflect' padding, then the aligned run; tiled with a small tile, too)."""
+    from grainwright.inference.runtime.runner import OnnxDenoiser
+
+    source, _ = _checkpoint(tmp_path, name)
+    result = export_checkpoint(source, tmp_path / "model.onnx")
+    alignment = result.metadata["alignment"]  # declared for tiling: 4 (U-Net), 8 (half-resolution U-Net), 1
+    denoiser = OnnxDenoiser(result.path, threads=1, tile=2 * max(alignment, 4), noise_sigma=40.0)
+    session = _session(result.path)
+    rng = np.random.default_rng(3)
+    for height, width in ((37, 53), (alignment + 1, 2 * alignment + 3), (61, 29)):
+        image = rng.uniform(0, 4095, (height, width, 1)).astype(np.float32)
+        feeds = {"image": np.ascontiguousarray(image.transpose(2, 0, 1)[None])}
+        if name == "residual-noisemap":
+            feeds["noise_sigma"] = np.full((1, 1, height, width), 40.0, np.float32)
+        direct = session.run(["denoised"], feeds)[0][0].transpose(1, 2, 0)
+        assert direct.shape == image.shape
+        np.testing.assert_allclose(direct, denoiser.run_whole(image), atol=1e-4 * 4095.0)
+        np.testing.assert_allclose(direct, denoiser.run(image, as_float=True), atol=1e-4 * 4095.0)
+
+
+def test_metadata_names_the_training_folder_but_not_its_path_unless_asked(tmp_path, capsys):
+    private = "/home/someone/customer-x/line-3/frames"
+    payload = new_checkpoint("residual", 1, TWELVE_BIT, hyper=TINY["residual"], data_fingerprint="sha256:00ff",
+                             training_summary={"data_folder": private, "steps": 10})
+    source = save_checkpoint(tmp_path / "trained.pt", payload)
+    metadata = export_checkpoint(source, tmp_path / "model.onnx").metadata
+    assert metadata["training_summary"] == {"data_folder": "frames", "steps": 10}
+    assert metadata["data_fingerprint"] == "sha256:00ff"
+    stored = {entry.key: entry.value for entry in onnx.load(tmp_path / "model.onnx").metadata_props}
+    assert "customer-x" not in stored["grainwright"]
+    assert main(["export", str(source), "-o", str(tmp_path / "full.onnx"), "--record-data-path",
+                 "--threads", "1"]) == 0
+    stored = {entry.key: entry.value for entry in onnx.load(tmp_path / "full.onnx").metadata_props}
+    assert json.loads(stored["grainwright"])["training_summary"]["data_folder"] == private

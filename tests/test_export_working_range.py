@@ -13,6 +13,7 @@ CASES = {
     "none": BASE,
     "anscombe": BASE.with_anscombe(gain=0.004, read=0.003),
     "log": BASE.with_log(epsilon=1.0 / 256.0),
+    "log-noisy-targets": BASE.with_log(epsilon=1.0 / 256.0, looks=4.0, noisy_targets=True),
 }
 
 
@@ -41,7 +42,14 @@ def test_round_trip_inside_the_range(kind):
     native = torch.linspace(0.0, 4095.0, 4096)
     working_range = WorkingRange(normalization)
     back = working_range.from_working_float(working_range.to_working(native))
-    if kind == "anscombe":
+    if kind == "log-noisy-targets":
+        # The inverse removes the speckle's log-domain mean: a noise-free round trip of x + epsilon (the log's
+        # offset) comes back brighter by exp(-bias).
+        t = normalization.transform
+        x = native / normalization.full_range
+        expected = ((x + t["epsilon"]) * float(np.exp(-t["bias"])) - t["epsilon"]) * normalization.full_range
+        assert torch.allclose(back, expected, rtol=1e-4, atol=0.05)
+    elif kind == "anscombe":
         # The exact unbiased inverse is not the algebraic inverse: it undoes E[f(z)], not f (Makitalo and Foi
         # 2011), so a noise-free round trip is close only where counts are high.
         back, native = back[2048:], native[2048:]

@@ -11,6 +11,7 @@ from grainwright.inference.images.transforms import (
     anscombe_inverse_exact,
     log_forward,
     log_inverse,
+    speckle_log_mean,
 )
 
 RNG = np.random.default_rng(99)
@@ -66,3 +67,31 @@ def test_log_turns_gamma_speckle_into_constant_variance(looks):
 def test_log_round_trip():
     z = np.linspace(0.0, 10.0, 51)
     np.testing.assert_allclose(log_inverse(log_forward(z, 1e-3), 1e-3), z, atol=1e-9)
+
+
+@pytest.mark.parametrize("looks", [1.0, 4.0, 10.0, 64.0])
+def test_speckle_log_mean_is_digamma_minus_log_and_matches_simulated_speckle(looks):
+    # E[ln u] = psi(L) - ln L for u ~ Gamma(L, 1/L): scipy.special.digamma as the reference for psi, and the
+    # sample mean of simulated speckle (scipy.stats' gamma law) as an independent check.
+    assert speckle_log_mean(looks) == pytest.approx(float(special.digamma(looks)) - np.log(looks), rel=1e-12)
+    speckle = stats.gamma(a=looks, scale=1 / looks).rvs(400_000, random_state=RNG)
+    standard_error = np.sqrt(special.polygamma(1, looks) / speckle.size)
+    assert abs(np.log(speckle).mean() - speckle_log_mean(looks)) < 5 * standard_error
+
+
+def test_speckle_log_mean_at_four_looks_darkens_by_twelve_percent_if_left_in():
+    # About -0.13 at four looks (digamma(4) = 11/6 - Euler's constant, a closed form), a factor exp(-0.130) = 0.878.
+    assert speckle_log_mean(4.0) == pytest.approx(11.0 / 6.0 - np.euler_gamma - np.log(4.0), abs=1e-12)
+    assert np.exp(speckle_log_mean(4.0)) == pytest.approx(0.878, abs=0.001)
+    with pytest.raises(ValueError, match="looks must be positive"):
+        speckle_log_mean(0.0)
+
+
+def test_log_inverse_with_the_bias_recovers_the_signal_from_the_mean_of_logged_speckle():
+    # A perfect denoiser trained on noisy log-domain targets returns the mean of the log; exp of it is too dark
+    # by exp(psi(L) - ln L), and removing the bias gives the signal back.
+    signal, looks = 0.4, 4.0
+    speckled = signal * stats.gamma(a=looks, scale=1 / looks).rvs(400_000, random_state=RNG)
+    mean_log = log_forward(speckled, 1e-9).mean()
+    assert log_inverse(mean_log, 1e-9) == pytest.approx(signal * 0.878, rel=0.01)
+    assert log_inverse(mean_log, 1e-9, speckle_log_mean(looks)) == pytest.approx(signal, rel=0.005)

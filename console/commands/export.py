@@ -22,6 +22,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="write the INT8 file only if its output is at least this close to the FP32 output "
                         "on held-out patches, as PSNR in dB (default 40)")
     parser.add_argument("--overwrite", action="store_true", help="replace existing output files")
+    parser.add_argument("--record-data-path", action="store_true",
+                        help="store the training data folder's full path in the model's metadata (by default only "
+                        "its base name and the fingerprint of the training files travel with the model)")
     parser.add_argument("--threads", type=int, default=2, metavar="N",
                         help="ONNX Runtime threads for the checks (default 2)")
 
@@ -32,7 +35,8 @@ def run(args: argparse.Namespace) -> int:
 
     result = export_checkpoint(
         args.source, args.output, calibration=args.calibration, int8=args.int8,
-        min_int8_psnr=args.min_int8_psnr, overwrite=args.overwrite, threads=args.threads, log=print,
+        min_int8_psnr=args.min_int8_psnr, overwrite=args.overwrite,
+        record_data_path=args.record_data_path, threads=args.threads, log=print,
     )
     if result.int8_report is not None and not result.int8_report["passed"]:
         return 1

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
-from scipy.special import digamma, polygamma
+from scipy.special import polygamma
 
 from grainwright.inference.baselines.registry import denoise
 from grainwright.inference.common.errors import ConfigError
@@ -86,7 +86,7 @@ def gaussian_domain(noise: NoiseLike) -> GaussianDomain:
             looks = float(spec["looks"])
             if looks <= 0:
                 raise ConfigError(f"speckle needs a positive number of looks, got {looks}")
-            sigma, bias = math.sqrt(float(polygamma(1, looks))), float(digamma(looks)) - math.log(looks)
+            sigma, bias = math.sqrt(float(polygamma(1, looks))), transforms.speckle_log_mean(looks)
         else:
             # Amplitude u = sqrt(2/pi) * sqrt(2 E), E ~ Exp(1): log u = 0.5 log(4/pi) + 0.5 log E, and log E has
             # mean -EULER_GAMMA and variance pi^2 / 6.
@@ -96,7 +96,7 @@ def gaussian_domain(noise: NoiseLike) -> GaussianDomain:
             sigma,
             math.log((1.0 + LOG_EPSILON) / LOG_EPSILON),
             lambda z: transforms.log_forward(z.astype(np.float64), LOG_EPSILON).astype(np.float32),
-            lambda y: transforms.log_inverse(y.astype(np.float64) - bias, LOG_EPSILON).astype(np.float32),
+            lambda y: transforms.log_inverse(y.astype(np.float64), LOG_EPSILON, bias).astype(np.float32),
         )
     raise ConfigError(
         f"no Gaussian domain for noise of kind {kind!r}: baselines handle gaussian, poisson, poisson-gaussian, "

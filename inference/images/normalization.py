@@ -12,9 +12,13 @@ Transforms (``transform`` dict, all parameters in working units, i.e. fractions 
   ``(f(x) - offset) / scale`` so that the signal range ``[0, 1]`` stays ``[0, 1]``. The noise then has a
   standard deviation of about ``1 / scale`` everywhere (``working_noise_sigma()``). The inverse is the
   closed-form exact unbiased inverse (Makitalo and Foi 2011/2013).
-- ``{"kind": "log", "epsilon": e, "offset": log(e), "scale": log(1 + e) - log(e), "looks": L}``: for
-  multiplicative speckle, ``(log(x + e) - offset) / scale``; with ``L`` looks of gamma speckle the noise
-  standard deviation is ``sqrt(polygamma(1, L)) / scale`` (``looks`` is optional).
+- ``{"kind": "log", "epsilon": e, "offset": log(e), "scale": log(1 + e) - log(e), "looks": L, "bias": b}``:
+  for multiplicative speckle, ``(log(x + e) - offset) / scale``; with ``L`` looks of gamma speckle the noise
+  standard deviation is ``sqrt(polygamma(1, L)) / scale`` (``looks`` is optional). ``bias`` (optional, default
+  0) is subtracted in the log domain before ``exp`` on the way back: a network trained on noisy targets in the
+  log domain estimates ``log s + E[ln u]``, and for gamma speckle ``E[ln u] = psi(L) - ln L``
+  (``transforms.speckle_log_mean``), so its output is ``exp(E[ln u])`` (12% at four looks) too dark unless
+  ``bias`` removes it. A network trained on clean targets needs no bias.
 """
 from __future__ import annotations
 
@@ -112,14 +116,24 @@ class Normalization:
         transform = {"kind": "anscombe", "gain": float(gain), "read": float(read), "offset": start, "scale": end - start}
         return Normalization(**{**asdict(self), "transform": transform})
 
-    def with_log(self, epsilon: float = 1.0 / 256.0, looks: float | None = None) -> "Normalization":
-        """A copy with the log transform for multiplicative speckle; ``epsilon`` in working units (> 0)."""
+    def with_log(self, epsilon: float = 1.0 / 256.0, looks: float | None = None,
+                 noisy_targets: bool = False) -> "Normalization":
+        """A copy with the log transform for multiplicative speckle; ``epsilon`` in working units (> 0).
+
+        ``looks``: the number of looks of gamma speckle, if known. ``noisy_targets``: the network learns from
+        noisy targets (every scheme but supervised), so its output is biased by the mean of the log of the
+        speckle, which the inverse then removes (needs ``looks``; see the module docstring).
+        """
         if not epsilon > 0:
             raise ConfigError(f"the log transform needs a positive epsilon, got {epsilon}")
+        if noisy_targets and looks is None:
+            raise ConfigError("the log-domain bias correction for noisy targets needs the number of looks")
         start, end = math.log(epsilon), math.log(1.0 + epsilon)
         transform = {"kind": "log", "epsilon": float(epsilon), "offset": start, "scale": end - start}
         if looks is not None:
             transform["looks"] = float(looks)
+        if noisy_targets:
+            transform["bias"] = transforms.speckle_log_mean(float(looks))
         return Normalization(**{**asdict(self), "transform": transform})
 
     # ------------------------------------------------------------------------------------------ mapping
@@ -144,7 +158,7 @@ class Normalization:
             if t["kind"] == "anscombe":
                 x = transforms.anscombe_inverse_exact(d, np.float32(t["gain"]), np.float32(t["read"]))
             else:
-                x = transforms.log_inverse(d, np.float32(t["epsilon"]))
+                x = transforms.log_inverse(d, np.float32(t["epsilon"]), np.float32(t.get("bias", 0.0)))
         native = x * np.float32(self.high - self.low) + np.float32(self.low)
         return native.astype(np.float32, copy=False)
 

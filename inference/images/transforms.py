@@ -18,7 +18,11 @@ has approximately unit variance. Its inverses:
   are written from memory of those papers; the tests check the bias reduction they report.
 
 Log transform for multiplicative speckle (the Anscombe transform does not stabilise it): for ``z = s * u`` with
-``u ~ Gamma(L, 1/L)``, ``log z = log s + log u`` has constant variance ``polygamma(1, L)`` (trigamma).
+``u ~ Gamma(L, 1/L)``, ``log z = log s + log u`` has constant variance ``polygamma(1, L)`` (trigamma) and mean
+``log s + psi(L) - log L`` (digamma ``psi``): the log of unit-mean speckle is biased low, by about -0.13 at
+four looks, which is a 12% darkening after ``exp`` unless the inverse removes it (``speckle_log_mean``; see e.g.
+Xie, Pierce and Ulaby, "Statistical properties of logarithmically transformed speckle", IEEE TGRS 2002;
+reference from memory).
 """
 from __future__ import annotations
 
@@ -89,6 +93,22 @@ def log_forward(z: np.ndarray, offset: float) -> np.ndarray:
     return np.log(np.maximum(z, 0.0) + offset)
 
 
-def log_inverse(y: np.ndarray, offset: float) -> np.ndarray:
-    """Inverse of ``log_forward``: ``exp(y) - offset``."""
-    return np.exp(y) - offset
+def log_inverse(y: np.ndarray, offset: float, bias: float = 0.0) -> np.ndarray:
+    """Inverse of ``log_forward``: ``exp(y - bias) - offset``.
+
+    ``bias`` is the mean of the log of the speckle (``speckle_log_mean``) when ``y`` estimates the mean of the
+    log of noisy data (a network trained on noisy targets), 0 when it estimates the log of the clean signal.
+    """
+    return np.exp(y - bias) - offset
+
+
+def speckle_log_mean(looks: float) -> float:
+    """``E[ln u]`` for unit-mean gamma speckle ``u ~ Gamma(looks, 1/looks)``: ``psi(looks) - ln(looks)``.
+
+    Negative for every number of looks (about -0.1302 at 4 looks, -0.0508 at 10) and tending to 0 as looks grow.
+    """
+    from scipy.special import digamma
+
+    if not looks > 0:
+        raise ValueError(f"looks must be positive, got {looks}")
+    return float(digamma(looks) - np.log(looks))
