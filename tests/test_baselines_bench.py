@@ -6,6 +6,7 @@ import json
 
 import pytest
 
+from grainwright.benchmarks import baselines as bench_baselines_logic
 from grainwright.console.commands import bench_baselines
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.evaluation.calibration import GROUND_TRUTH_LABEL
@@ -26,7 +27,7 @@ def test_bench_reports_every_method_with_labelled_tuning(tmp_path, capsys):
     assert GROUND_TRUTH_LABEL in printed and "s/MP" in printed
     figures = json.loads(out.read_text())
     methods = [row["method"] for row in figures["summary"]]
-    assert methods == ["mean", "tv", "bm3d", bench_baselines.HARD_STAGE_ROW]
+    assert methods == ["mean", "tv", "bm3d", bench_baselines_logic.HARD_STAGE_ROW]
     assert figures["tuned_label"] == GROUND_TRUTH_LABEL
     for row in figures["summary"]:
         assert row["seconds_per_megapixel"] > 0
