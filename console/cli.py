@@ -1,7 +1,8 @@
 """The ``grainwright`` command. Sub-commands live one per module in ``grainwright.console.commands``.
 
 Every command module is torch-free at import time and exposes ``HELP`` (one line), ``add_arguments(parser)``
-and ``run(args) -> int``. Commands that train or export load the torch half inside ``run``.
+and ``run(args) -> int``, and optionally ``EPILOG`` (text shown after its options). Commands that train or
+export load the torch half inside ``run``.
 """
 from __future__ import annotations
 
@@ -10,6 +11,7 @@ import importlib
 import sys
 from types import ModuleType
 
+from grainwright.console import HELP_CAUTION
 from grainwright.inference import __version__
 from grainwright.inference.common.errors import GrainwrightError
 
@@ -35,6 +37,7 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
         prog="grainwright",
         description="Train small image denoisers on a CPU, export them to ONNX, run them tiled, "
         "and compare them against classical filters.",
+        epilog=HELP_CAUTION,
     )
     parser.add_argument("--version", action="version", version=f"grainwright {__version__}")
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
@@ -43,7 +46,8 @@ def build_parser(only: str | None = None) -> argparse.ArgumentParser:
             subparsers.add_parser(name)
             continue
         module = _load(name)
-        sub = subparsers.add_parser(name, help=module.HELP, description=module.HELP)
+        sub = subparsers.add_parser(name, help=module.HELP, description=module.HELP,
+                                    epilog=getattr(module, "EPILOG", None))
         module.add_arguments(sub)
         sub.set_defaults(handler=module.run)
     return parser

@@ -5,6 +5,7 @@ import argparse
 import sys
 
 from grainwright.benchmarks.size_plot import size_search_svg
+from grainwright.console import HELP_CAUTION
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.evaluation.compare import (
     NOISE_CHOICES,
@@ -13,6 +14,7 @@ from grainwright.inference.evaluation.compare import (
 )
 
 HELP = "compare ONNX models and classical filters on your images (with or without clean references)"
+EPILOG = HELP_CAUTION
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:

@@ -7,6 +7,7 @@ import time
 
 from tqdm import tqdm
 
+from grainwright.console import HELP_CAUTION
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES, denoise_files
 from grainwright.inference.runtime.runner import (
@@ -17,6 +18,7 @@ from grainwright.inference.runtime.runner import (
 )
 
 HELP = "denoise images with an exported ONNX model (tiled, bounded memory, resumable; no torch needed)"
+EPILOG = HELP_CAUTION
 
 
 def _noise_sigma(text: str) -> float | str:
