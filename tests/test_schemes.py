@@ -35,8 +35,8 @@ def _positions(count: int, size: int) -> np.ndarray:
     return np.broadcast_to(plane, (count, 1, size, size)).copy()
 
 
-def test_registry_has_the_five_schemes():
-    assert set(SCHEMES) == {"supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted"}
+def test_registry_has_the_six_schemes():
+    assert set(SCHEMES) == {"supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted", "sure"}
 
 
 @pytest.mark.parametrize("layout, noise_known, estimated, expected", [

@@ -283,3 +283,13 @@ def test_sigterm_saves_a_resumable_state(tmp_path):
     written = json.loads((run_dir / "training-summary.json").read_text())
     assert written["stopped"] == "interrupted"
     assert load_checkpoint(run_dir / "checkpoints" / "last.pt")["step"] == written["steps"] > 0
+
+
+@pytest.mark.slow
+def test_sure_scheme_trains_on_single_noisy_images(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    (folder / "noise.toml").write_text(f'kind = "gaussian"\nsigma_native = {SIGMA}\nrange_native = 255\n')
+    summary, run = train_command(None, str(folder), scheme="sure", steps=12, out=str(tmp_path / "run"),
+                                 announce=_quiet, assignments=TINY)
+    assert summary["scheme"] == "sure" and summary["steps"] == 12 and run.best.exists()
+    assert math.isfinite(summary["best_validation"]["loss"])

@@ -17,7 +17,7 @@ from typing import Any
 
 from grainwright.inference.common.errors import ConfigError
 
-SCHEME_NAMES = ("auto", "supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted")
+SCHEME_NAMES = ("auto", "supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted", "sure")
 
 
 @dataclass(frozen=True)

@@ -180,8 +180,9 @@ def _working_range(config: dict[str, Any], scheme: str, data: _TrainingImages,
     level per channel the schemes see (working units; None when unknown)."""
     transform, noise = config["data"]["transform"], data.noise
     kind = None if noise is None else noise.kind
+    needs_level = scheme_class(scheme).needs_noise_level
     if transform == "auto":
-        transform = "anscombe" if scheme == "recorrupted" and kind in ("poisson", "poisson-gaussian") else "none"
+        transform = "anscombe" if needs_level and kind in ("poisson", "poisson-gaussian") else "none"
     sigma = None
     if transform == "anscombe":
         if data.layout.name == "clean-only":
@@ -198,8 +199,8 @@ def _working_range(config: dict[str, Any], scheme: str, data: _TrainingImages,
         sigma = np.full(data.channels, noise.sigma, dtype=np.float32)
     elif data.findings is not None:
         sigma = (np.median(data.findings.per_image_sigma, axis=0) / data.normalization.full_range).astype(np.float32)
-    if scheme == "recorrupted" and transform != "anscombe" and kind != "gaussian":
-        raise ConfigError(f"scheme 'recorrupted' needs Gaussian or Poisson-Gaussian noise of known level, but the "
+    if needs_level and transform != "anscombe" and kind != "gaussian":
+        raise ConfigError(f"scheme '{scheme}' needs Gaussian or Poisson-Gaussian noise of known level, but the "
                           f"noise {'description ' + str(data.noise_path) if data.noise_path else 'estimated'} is "
                           f"'{kind}'; give a noise.toml, or use neighbor2neighbor")
     return transform, sigma

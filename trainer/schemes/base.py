@@ -25,6 +25,9 @@ class Scheme:
         True when the architecture must be built without its input-to-output skip (blind-spot training).
     patch_multiple : int
         The patch edge must be a multiple of this times the architecture's alignment.
+    needs_noise_level : bool
+        True when the scheme needs the noise level (Gaussian after the working-range transform): the trainer then
+        takes it from a noise description or a confident estimate, and refuses noise it cannot describe so.
     forward_passes_per_pixel : float
         Cost of one step in forward passes over the patch pixels (a backward pass counts as two), for the
         achieved-GFLOP/s figure.
@@ -34,6 +37,7 @@ class Scheme:
     layouts: tuple[str, ...] = ()
     needs_no_skip: bool = False
     patch_multiple: int = 1
+    needs_noise_level: bool = False
     forward_passes_per_pixel: float = 3.0
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,

@@ -20,6 +20,7 @@ from grainwright.trainer.schemes.base import Scheme, apply_model
 class Recorrupted(Scheme):
     name = "recorrupted"
     layouts = ("noisy-only", "noisy-pairs", "noisy-stacks", "clean-noisy")
+    needs_noise_level = True
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         noisy = patches["noisy"]

@@ -13,9 +13,10 @@ from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor
 from grainwright.trainer.schemes.noise2noise import Noise2Noise
 from grainwright.trainer.schemes.recorrupted import Recorrupted
 from grainwright.trainer.schemes.supervised import Supervised
+from grainwright.trainer.schemes.sure import Sure
 
 SCHEMES: dict[str, type[Scheme]] = {
-    cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted)
+    cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted, Sure)
 }
 
 
