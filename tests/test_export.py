@@ -274,3 +274,18 @@ def test_metadata_names_the_training_folder_but_not_its_path_unless_asked(tmp_pa
                  "--threads", "1"]) == 0
     stored = {entry.key: entry.value for entry in onnx.load(tmp_path / "full.onnx").metadata_props}
     assert json.loads(stored["grainwright"])["training_summary"]["data_folder"] == private
+
+
+def test_info_states_the_noise_kind_the_transform_and_how_they_were_decided(tmp_path, capsys):
+    summary = {"noise_kind": "speckle-gamma", "noise_decided_by": "analysis of the training images",
+               "transform": "log", "transform_decided_by": "analysis of the training images",
+               "noise_found": "speckle-gamma (speckle-gamma(looks=3.9)) on 4 of 4 image(s), fit confident on 0 of them"}
+    payload = new_checkpoint("residual", 1, TWELVE_BIT.with_log(looks=3.9, noisy_targets=True),
+                             hyper=TINY["residual"], training_summary=summary)
+    source = save_checkpoint(tmp_path / "speckle.pt", payload)
+    assert main(["export", str(source), "-o", str(tmp_path / "model.onnx"), "--threads", "1"]) == 0
+    assert main(["info", str(tmp_path / "model.onnx")]) == 0
+    printed = capsys.readouterr().out
+    assert ("decided           noise speckle-gamma (from the analysis of the training images); transform log "
+            "(decided by the analysis of the training images)") in printed
+    assert "bias=-0.1" in printed  # the log-domain correction travels in the transform

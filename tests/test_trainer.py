@@ -22,6 +22,8 @@ from grainwright.trainer.run import train_command
 TINY = ["model.hyper.depth=4", "model.hyper.width=12", "data.patch_size=32", "data.batch_size=8", "threads=1",
         "validation.every_steps=10", "validation.patches=16", "logging.progress=false", "logging.tensorboard=false",
         "model.channels_last=false", "model.precision=\"float32\""]
+# The shipped configs' U-Net, made tiny.
+TINY_UNET = ["model.hyper.width=8"] + [a for a in TINY if not a.startswith("model.hyper.")]
 SIGMA = 25.0  # 8-bit units
 
 
@@ -293,3 +295,85 @@ def test_sure_scheme_trains_on_single_noisy_images(tmp_path):
                                  announce=_quiet, assignments=TINY)
     assert summary["scheme"] == "sure" and summary["steps"] == 12 and run.best.exists()
     assert math.isfinite(summary["best_validation"]["loss"])
+
+
+def _scenario_folder(root, noise: str, size: int = 256, count: int = 4):
+    """Single noisy 16-bit frames of our procedural inspection scene (wide signal range, flat areas), with no
+    noise description: gamma speckle of 4 looks, or Poisson-Gaussian noise (gain 0.01, read 0.005 of the range)."""
+    from grainwright.inference.synthetic.scenario import render_clean
+
+    rng = np.random.default_rng(7)
+    (root / "noisy").mkdir(parents=True)
+    for i in range(count):
+        clean = np.clip(render_clean(size, size, i)[0] / 4095.0, 0.0, 1.0)
+        if noise == "speckle":
+            noisy = (0.02 + 0.9 * clean) * rng.gamma(4.0, 1.0 / 4.0, clean.shape) * 0.5
+        else:
+            noisy = 0.01 * rng.poisson(clean / 0.01) + 0.005 * rng.standard_normal(clean.shape)
+        write_image(root / "noisy" / f"frame{i}.tif", np.clip(np.round(noisy * 65535), 0, 65535).astype(np.uint16))
+    return root
+
+
+@pytest.mark.slow
+def test_noisy_only_config_on_speckle_trains_in_the_log_domain_with_the_bias_removed(tmp_path):
+    from scipy.special import digamma
+
+    folder = _scenario_folder(tmp_path / "data", "speckle")
+    lines: list[str] = []
+    summary, run = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "run"),
+                                 announce=lines.append, assignments=TINY_UNET)
+    assert summary["noise_kind"] == "speckle-gamma" and summary["noise_decided_by"] == "analysis of the training images"
+    assert summary["transform"] == "log" and summary["transform_decided_by"] == "analysis of the training images"
+    assert summary["scheme"] == "neighbor2neighbor"
+    assert any(line.startswith("scheme auto:") and "speckle-gamma" in line for line in lines)
+    assert ("noise speckle-gamma (from the analysis of the training images), transform log (decided by the analysis "
+            "of the training images)") in lines[-1]
+    transform = load_checkpoint(run.best)["normalization"]["transform"]
+    looks = transform["looks"]
+    assert 3.0 < looks < 5.0  # 4 looks simulated
+    # Reference for psi: scipy.special.digamma.
+    assert transform["bias"] == pytest.approx(float(digamma(looks)) - math.log(looks), rel=1e-9)
+
+
+@pytest.mark.slow
+def test_noisy_only_config_on_poisson_gaussian_trains_recorrupted_in_the_anscombe_domain(tmp_path):
+    folder = _scenario_folder(tmp_path / "data", "poisson-gaussian")
+    summary, run = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=TINY_UNET)
+    assert summary["noise_kind"] == "poisson-gaussian" and summary["scheme"] == "recorrupted"
+    assert summary["transform"] == "anscombe" and summary["transform_decided_by"] == "analysis of the training images"
+    transform = load_checkpoint(run.best)["normalization"]["transform"]
+    assert transform["kind"] == "anscombe" and transform["gain"] == pytest.approx(0.01, rel=0.25)
+
+
+def test_recorrupted_on_an_uncertain_fit_stops_with_one_line_and_writes_nothing(tmp_path):
+    folder = _scenario_folder(tmp_path / "data", "speckle")
+    with pytest.raises(ConfigError) as caught:
+        train_command("noisy-only", str(folder), scheme="recorrupted", steps=4, out=str(tmp_path / "run"),
+                      announce=_quiet, assignments=TINY_UNET)
+    message = str(caught.value)
+    assert "\n" not in message
+    assert "scheme 'recorrupted' needs a noise model it can trust" in message and "speckle-gamma" in message
+    assert "--scheme neighbor2neighbor" in message and "noise.toml" in message
+    assert not (tmp_path / "run").exists()
+
+
+def test_impulses_on_some_images_do_not_split_the_vote_on_the_noise_kind():
+    """Two speckle images, two speckle images with impulses and three Gaussian ones: speckle is the majority."""
+    from types import SimpleNamespace
+
+    from grainwright.inference.noise.analysis import summarise_noise
+    from grainwright.inference.noise.models import GammaSpeckle, GaussianNoise
+
+    def analysis(kind, model):
+        flag = SimpleNamespace(flagged="impulse" in kind)
+        return SimpleNamespace(kind=kind, model=model, confident=False, sigma=[100.0], low=0.0, high=4095.0,
+                               impulse=flag, banding=SimpleNamespace(flagged=False),
+                               correlation=SimpleNamespace(flagged=False), signal_dependent=True)
+
+    analyses = ([analysis("speckle-gamma", GammaSpeckle(looks=4.0))] * 2
+                + [analysis("speckle-gamma+impulse", SimpleNamespace(components=[GammaSpeckle(looks=3.0)]))] * 2
+                + [analysis("gaussian", GaussianNoise(sigma=0.02))] * 3)
+    found = summarise_noise(analyses)
+    assert found.kind == "speckle-gamma" and found.transform == "log" and found.kind_images == 4
+    assert found.model.looks == pytest.approx(3.5) and found.flags["impulse"] == 2

@@ -68,8 +68,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
         "fixed_pattern": Key("choice", "auto", "Row/column fixed-pattern correction before training: `auto` = "
                              "when the banding or correlation flag is raised.", choices=("auto", "always", "never")),
         "transform": Key("choice", "auto", "Variance-stabilising transform of the working range: `auto` = "
-                         "generalized Anscombe for Poisson-Gaussian noise in `recorrupted`, none otherwise.",
-                         choices=("auto", "none", "anscombe")),
+                         "what the noise calls for (from `noise.toml`, else from the same analysis as `inspect`): "
+                         "generalized Anscombe for Poisson-Gaussian noise, log for gamma speckle (with the "
+                         "log-domain bias of noisy targets removed on the way back), none for Gaussian noise and "
+                         "for `supervised`.", choices=("auto", "none", "anscombe", "log")),
     },
     "noise": {
         "file": Key("str", "", "Noise description (TOML, from `grainwright inspect --save-noise`); empty = "

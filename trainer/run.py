@@ -11,7 +11,6 @@ import datetime
 import json
 import os
 import warnings
-from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
@@ -79,31 +78,36 @@ def _noise_description(config: dict[str, Any], root: Path) -> tuple[Any, Path | 
 
 @dataclass
 class NoiseFindings:
-    """What ``analyse_noise`` found on (up to ``MAX_ANALYSED``) noisy training images.
+    """What the noise analysis (the one ``inspect`` runs) found on up to ``MAX_ANALYSED`` noisy training images.
 
-    ``per_image_sigma``: wavelet-MAD sigma per image and channel, native units; ``model``: the suggested noise
-    model (working units) of the most common kind; ``confident``: most analyses trust their model; ``flags``:
-    the banding/correlation flags raised on most images.
+    ``per_image_sigma``: wavelet-MAD sigma per image and channel, native units; ``found``: the verdict for the
+    set (kind, model in working units, confidence, transform; ``grainwright.inference.noise.analysis.SetNoise``);
+    ``flags``: the banding/correlation flags raised on most images.
     """
 
     per_image_sigma: np.ndarray
-    model: Any
-    kind: str
-    confident: bool
+    found: Any
     flags: list[str]
 
+    @property
+    def kind(self) -> str:
+        return self.found.kind
 
-def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFindings:
-    from grainwright.inference.noise.estimation import analyse_noise
+    @property
+    def confident(self) -> bool:
+        return self.found.confident
+
+
+def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFindings | None:
+    from grainwright.inference.noise.analysis import analyse_images
 
     step = max(1, len(images) // MAX_ANALYSED)
-    analyses = [analyse_noise(image, normalization.low, normalization.high) for image in images[::step][:MAX_ANALYSED]]
-    kind = Counter(analysis.kind for analysis in analyses).most_common(1)[0][0]
-    typical = next(analysis for analysis in analyses if analysis.kind == kind)
-    majority = len(analyses) / 2
-    flags = [name for name in ("banding", "correlation") if sum(getattr(a, name).flagged for a in analyses) > majority]
-    return NoiseFindings(np.array([analysis.sigma for analysis in analyses]), typical.model, kind,
-                         sum(analysis.confident for analysis in analyses) > majority, flags)
+    try:
+        analyses, found = analyse_images(images[::step][:MAX_ANALYSED], normalization.low, normalization.high)
+    except ValueError:  # every image too small to analyse
+        return None
+    flags = [name for name in ("banding", "correlation") if found.flags[name] > found.images / 2]
+    return NoiseFindings(np.array([analysis.sigma for analysis in analyses]), found, flags)
 
 
 def _correct_fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> None:
@@ -156,54 +160,108 @@ def _read_training_images(config: dict[str, Any], announce: Callable[[str], None
 
 def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, announce: Callable[[str], None]) -> str:
     """Stage 2: the scheme (``auto`` picks one from the layout and the noise known), checked against the layout;
-    without a noise description, the estimated noise model becomes ``data.noise``."""
+    without a noise description, the noise model the analysis found becomes ``data.noise``. A scheme that needs
+    the noise level (recorrupted, sure) on an analysis it cannot trust stops here, saying what was found and what
+    to do."""
     layout, findings = data.layout, data.findings
+    # Recorrupted-to-Recorrupted's independent input and target noise needs Gaussian noise in the working domain:
+    # Gaussian as is, Poisson-Gaussian after the Anscombe transform; log-domain speckle is skewed.
     estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
     name = config["scheme"]
     if name == "auto":
-        name, reason = choose_scheme(layout.name, data.noise is not None, estimated)
+        name, reason = choose_scheme(layout.name, data.noise is not None, estimated,
+                                     None if findings is None else findings.found.describe())
         announce(f"scheme auto: {reason}")
     check_scheme_fits(name, layout.name)
     if layout.name == "clean-only" and data.noise is None:
         raise ConfigError(f"found {LAYOUT_TEXT['clean-only']} but no noise description: put a noise.toml in "
                           f"{layout.root} or set noise.file")
     if data.noise is None and findings is not None:
-        data.noise = findings.model
-        announce(f"noise estimated from the images: {data.noise.describe()} (working units)"
-                 + ("" if findings.confident else "; the estimate is uncertain"))
+        if scheme_class(name).needs_noise_level and not findings.confident:
+            raise ConfigError(
+                f"scheme '{name}' needs a noise model it can trust, but the analysis of the training images "
+                f"found {findings.found.describe()} (uncertain); use --scheme neighbor2neighbor (needs no noise "
+                f"model), or describe the noise in a noise.toml (grainwright inspect {layout.root} --save-noise "
+                f"{layout.root / 'noise.toml'})")
+        data.noise = findings.found.model
+        announce(f"noise from the analysis of the training images: {findings.found.describe()}"
+                 + ("" if findings.confident else "; the fit is uncertain"))
     return name
 
 
 def _working_range(config: dict[str, Any], scheme: str, data: _TrainingImages,
-                   announce: Callable[[str], None]) -> tuple[str, np.ndarray | None]:
-    """Stage 3: the working-range transform (the Anscombe transform replaces ``data.normalization``) and the noise
-    level per channel the schemes see (working units; None when unknown)."""
+                   announce: Callable[[str], None]) -> tuple[str, str, np.ndarray | None]:
+    """Stage 3: the working-range transform (the Anscombe or log transform replaces ``data.normalization``), what
+    decided it, and the noise level per channel the schemes see (working units; None when unknown).
+
+    ``auto`` follows the noise (described in a file or found by the analysis): the generalized Anscombe transform
+    for Poisson-Gaussian noise, the log transform for gamma speckle, none for Gaussian noise, and none for the
+    supervised scheme, whose clean targets need no stabilised noise.
+    """
     transform, noise = config["data"]["transform"], data.noise
     kind = None if noise is None else noise.kind
+    noisy_targets = not scheme_class(scheme).clean_targets
     needs_level = scheme_class(scheme).needs_noise_level
+    decided_by = "config"
     if transform == "auto":
-        transform = "anscombe" if needs_level and kind in ("poisson", "poisson-gaussian") else "none"
+        from grainwright.inference.noise.analysis import TRANSFORM_FOR_KIND
+
+        transform = TRANSFORM_FOR_KIND.get(kind, "none") if noisy_targets else "none"
+        decided_by = _noise_origin(data) if noisy_targets and kind is not None else "default"
     sigma = None
+    if transform in ("anscombe", "log") and data.layout.name == "clean-only":
+        raise ConfigError(f"data.transform: the {transform} transform applies to real noisy data; with clean images "
+                          "only the noise is synthesised in the linear range (use transform = \"none\")")
     if transform == "anscombe":
-        if data.layout.name == "clean-only":
-            raise ConfigError("data.transform: the Anscombe transform applies to real noisy data; with clean images "
-                              "only the noise is synthesised in the linear range (use transform = \"none\")")
         if kind not in ("poisson", "poisson-gaussian"):
             raise ConfigError(f"data.transform = \"anscombe\" needs Poisson-Gaussian noise, but the noise is "
                               f"'{kind}' (give a noise.toml with kind \"poisson-gaussian\")")
         gain, read = noise.gain, getattr(noise, "read", 0.0)
         data.normalization = data.normalization.with_anscombe(gain, read)
         sigma = np.full(data.channels, data.normalization.working_noise_sigma(), dtype=np.float32)
-        announce(f"training in the generalized-Anscombe domain (gain {gain:.4g}, read {read:.4g} of the range)")
+        announce(f"training in the generalized-Anscombe domain (gain {gain:.4g}, read {read:.4g} of the range; "
+                 f"decided by the {decided_by})")
+    elif transform == "log":
+        looks = _speckle_looks(noise)
+        if looks is None and noisy_targets:
+            raise ConfigError(f"data.transform = \"log\" with scheme '{scheme}' (noisy targets) needs gamma speckle of "
+                              f"known looks to correct the log-domain bias, but the noise is '{kind}' (give a "
+                              "noise.toml with kind \"speckle-gamma\", or use transform = \"none\")")
+        data.normalization = data.normalization.with_log(looks=looks, noisy_targets=noisy_targets)
+        level = data.normalization.working_noise_sigma()
+        if level is not None:
+            sigma = np.full(data.channels, level, dtype=np.float32)
+        announce(f"training in the log domain (gamma speckle, {looks:.3g} looks; output unbiased by "
+                 f"{data.normalization.transform.get('bias', 0.0):+.4f} in the log; decided by the {decided_by})"
+                 if looks is not None else f"training in the log domain (decided by the {decided_by})")
     elif kind == "gaussian":
         sigma = np.full(data.channels, noise.sigma, dtype=np.float32)
     elif data.findings is not None:
         sigma = (np.median(data.findings.per_image_sigma, axis=0) / data.normalization.full_range).astype(np.float32)
-    if needs_level and transform != "anscombe" and kind != "gaussian":
-        raise ConfigError(f"scheme '{scheme}' needs Gaussian or Poisson-Gaussian noise of known level, but the "
-                          f"noise {'description ' + str(data.noise_path) if data.noise_path else 'estimated'} is "
-                          f"'{kind}'; give a noise.toml, or use neighbor2neighbor")
-    return transform, sigma
+    if needs_level and transform not in ("anscombe", "log") and kind != "gaussian":
+        raise ConfigError(f"scheme '{scheme}' needs Gaussian noise in its working domain, but the noise "
+                          f"{'description ' + str(data.noise_path) if data.noise_path else 'found'} is '{kind}' "
+                          f"and data.transform is \"{transform}\"; set data.transform = \"auto\", give a "
+                          "noise.toml, or use neighbor2neighbor")
+    if needs_level and sigma is None:
+        raise ConfigError(f"scheme '{scheme}' needs the noise level in the {transform} domain, which the noise "
+                          f"'{kind}' does not give; give a noise.toml, or use neighbor2neighbor")
+    return transform, decided_by, sigma
+
+
+def _noise_origin(data: _TrainingImages) -> str:
+    """Where the noise model came from, in words: the file, or the analysis of the training images."""
+    if data.noise_path is not None:
+        return f"noise description {data.noise_path.name}"
+    return "analysis of the training images"
+
+
+def _speckle_looks(noise: Any) -> float | None:
+    """Number of looks of gamma speckle in ``noise`` (alone or in a mixture), else None."""
+    for part in getattr(noise, "components", None) or [noise]:
+        if getattr(part, "kind", None) == "speckle-gamma":
+            return float(part.looks)
+    return None
 
 
 def _to_working(config: dict[str, Any], data: _TrainingImages,
@@ -309,7 +367,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     layout = data.layout
     name = _choose_scheme_and_noise(config, data, announce)
     config = dict(config, scheme=name)
-    transform, sigma = _working_range(config, name, data, announce)
+    transform, transform_decided_by, sigma = _working_range(config, name, data, announce)
     working, fixed_pattern = _to_working(config, data, announce)
     train_images, validation_images = _split(config, working, announce)
     model, model_table = _build_model(config, name, data.channels, sigma, announce)
@@ -327,6 +385,9 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     summary = {"layout": layout.name, "scheme": name, "training_images": len(train_images),
                "validation_images": len(validation_images), "data_folder": str(layout.root),
                "fixed_pattern_corrected": fixed_pattern, "transform": transform,
+               "transform_decided_by": transform_decided_by, "noise_kind": getattr(data.noise, "kind", None),
+               "noise_decided_by": _noise_origin(data) if data.noise is not None else None,
+               "noise_found": None if data.findings is None else data.findings.found.describe(),
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
                "channels_last": channels_last, "precision": precision}
     files = sorted({path for sample in layout.samples for path in sample})
@@ -364,8 +425,11 @@ def summary_line(summary: dict[str, Any], run: RunFolder) -> str:
         figure = f"best validation loss {best['loss']:.4g} at step {summary['best_step']}"
     else:
         figure = "no validation"
+    noise = (f"noise {summary['noise_kind']} (from the {summary['noise_decided_by']})" if summary.get("noise_kind")
+             else "no noise model")
+    decided = f"{noise}, transform {summary.get('transform')} (decided by the {summary.get('transform_decided_by')})"
     return (f"trained {summary['scheme']} for {summary['steps']} steps in {summary['minutes']:.1f} min "
-            f"({summary['patches_per_second']:.0f} patches/s, {summary['gflops_per_second']:.1f} GFLOP/s); {figure}; "
+            f"({summary['patches_per_second']:.0f} patches/s, {summary['gflops_per_second']:.1f} GFLOP/s); {decided}; {figure}; "
             f"stopped: {summary['stopped']}; run folder {run.root}"
             + (f" (continue with: grainwright train --resume {run.root})" if summary["stopped"] == "interrupted" else ""))
 

@@ -195,11 +195,60 @@ def inspect_paths(paths: list[str | Path], recursive: bool = False, bit_depth: i
 
 
 # ------------------------------------------------------------------------------------ summary and advice
-def summarise(images: list[ImageReport]) -> tuple[dict[str, Any], NoiseModel]:
-    """Folder figures and one noise model for the whole set (medians over images, working units)."""
-    analyses = [image.analysis for image in images]
+# The variance-stabilising transform each noise kind calls for (none for additive Gaussian noise).
+TRANSFORM_FOR_KIND = {"poisson-gaussian": "anscombe", "speckle-gamma": "log"}
+
+
+@dataclass
+class SetNoise:
+    """What the noise analyses of a set of images say together (what ``inspect`` reports and ``train`` follows).
+
+    Attributes
+    ----------
+    kind : str
+        The most common kind over the images, ``"+impulse"`` set aside (``"gaussian"``, ``"poisson-gaussian"``
+        or ``"speckle-gamma"``), so that impulses flagged on some images do not split the vote.
+    model : NoiseModel
+        One model for the set, working units: medians over the images of that kind.
+    confident : bool
+        Most images of that kind have a fit trusted enough to train on (no impulses, no correlation, enough
+        flat regions over a wide signal range).
+    transform : str or None
+        ``"anscombe"``, ``"log"`` or None, from the kind.
+    images, kind_images, confident_images : int
+        Images analysed, of them of the main kind, and of those with a confident fit.
+    sigma_working : float
+        Median wavelet-MAD noise level over all images, working units.
+    flags : dict
+        Images with each flag raised: ``impulse``, ``banding``, ``correlation``; and ``signal_dependent``.
+    """
+
+    kind: str
+    model: NoiseModel
+    confident: bool
+    transform: str | None
+    images: int
+    kind_images: int
+    confident_images: int
+    sigma_working: float
+    flags: dict[str, int]
+
+    def describe(self) -> str:
+        """One phrase: what was found and how sure, e.g. ``speckle-gamma (looks=3.7) on 10 of 12 images, fit
+        confident on 4 of them; impulses flagged on 6``."""
+        text = (f"{self.kind} ({self.model.describe()}) on {self.kind_images} of {self.images} image(s), fit "
+                f"confident on {self.confident_images} of them")
+        raised = [f"{'impulses' if name == 'impulse' else name} flagged on {count}"
+                  for name, count in self.flags.items() if count and name != "signal_dependent"]
+        return text + ("; " + ", ".join(raised) if raised else "")
+
+
+def summarise_noise(analyses: list[NoiseAnalysis]) -> SetNoise:
+    """Combine per-image analyses into one verdict for the set (shared by ``inspect`` and ``train``)."""
+    if not analyses:
+        raise ValueError("no noise analyses to summarise")
     kinds = [a.kind.split("+")[0] for a in analyses]
-    main_kind = max(set(kinds), key=kinds.count)
+    main_kind = max(sorted(set(kinds)), key=kinds.count)
     chosen = [a for a, k in zip(analyses, kinds) if k == main_kind]
     sigma_working = float(np.median([np.mean(a.sigma) / (a.high - a.low) for a in analyses]))
     if main_kind == "poisson-gaussian":
@@ -212,31 +261,56 @@ def summarise(images: list[ImageReport]) -> tuple[dict[str, Any], NoiseModel]:
                                                     else a.model.looks for a in chosen])))
     else:
         model = GaussianNoise(sigma=sigma_working)
+    confident_images = sum(a.confident for a in chosen)
+    return SetNoise(
+        kind=main_kind, model=model, confident=confident_images * 2 > len(chosen),
+        transform=TRANSFORM_FOR_KIND.get(main_kind), images=len(analyses), kind_images=len(chosen),
+        confident_images=confident_images, sigma_working=sigma_working,
+        flags={"impulse": sum(a.impulse.flagged for a in analyses), "banding": sum(a.banding.flagged for a in analyses),
+               "correlation": sum(a.correlation.flagged for a in analyses),
+               "signal_dependent": sum(a.signal_dependent for a in analyses)},
+    )
+
+
+def analyse_images(images: list[np.ndarray], low: float, high: float) -> tuple[list[NoiseAnalysis], SetNoise]:
+    """Analyse each ``(H, W, C)`` native image as ``inspect`` does (central crop of at most ``MAX_ANALYSED_SIDE``)
+    and summarise the set; images too small to analyse are skipped (ValueError when none is left)."""
+    analyses = [analyse_noise(_central_crop(image), low=low, high=high) for image in images
+                if min(image.shape[:2]) >= MIN_ANALYSED_SIDE]
+    if not analyses:
+        raise ValueError(f"no image is large enough to analyse its noise (at least {MIN_ANALYSED_SIDE} x "
+                         f"{MIN_ANALYSED_SIDE} pixels)")
+    return analyses, summarise_noise(analyses)
+
+
+def summarise(images: list[ImageReport]) -> tuple[dict[str, Any], NoiseModel]:
+    """Folder figures and one noise model for the whole set (medians over images, working units)."""
+    found = summarise_noise([image.analysis for image in images])
     summary = {
         "images": len(images),
         "dtypes": sorted({image.dtype for image in images}),
         "bit_depths": sorted({image.bit_depth for image in images if image.bit_depth is not None}),
         "shapes": sorted({tuple(image.shape) for image in images}),
-        "median_sigma_percent": 100.0 * sigma_working,
-        "noise_kind": main_kind,
-        "confident_images": sum(a.confident for a in chosen),
-        "confident": sum(a.confident for a in chosen) * 2 > len(chosen),
-        "signal_dependent_images": sum(a.signal_dependent for a in analyses),
-        "impulse_images": sum(a.impulse.flagged for a in analyses),
-        "banding_images": sum(a.banding.flagged for a in analyses),
-        "correlated_images": sum(a.correlation.flagged for a in analyses),
+        "median_sigma_percent": 100.0 * found.sigma_working,
+        "noise_kind": found.kind,
+        "confident_images": found.confident_images,
+        "confident": found.confident,
+        "signal_dependent_images": found.flags["signal_dependent"],
+        "impulse_images": found.flags["impulse"],
+        "banding_images": found.flags["banding"],
+        "correlated_images": found.flags["correlation"],
         "static_stacks": sum(bool(image.static_stack) for image in images),
         "stacks": sum(image.frames > 1 for image in images),
-        "looks_clean": 100.0 * sigma_working < CLEAN_SIGMA_PERCENT,
+        "looks_clean": 100.0 * found.sigma_working < CLEAN_SIGMA_PERCENT,
     }
     summary["shapes"] = [list(shape) for shape in summary["shapes"]]
-    return summary, model
+    return summary, found.model
 
 
 def recommend(layout: str, images: list[ImageReport], summary: dict[str, Any]) -> dict[str, Any]:
     """Training scheme, transform and corrections for the data found, each with its reason in plain words."""
     kind = summary["noise_kind"]
-    transform = {"poisson-gaussian": "anscombe", "speckle-gamma": "log"}.get(kind)
+    transform = TRANSFORM_FOR_KIND.get(kind)
     cautions: list[str] = []
     if layout == "clean-noisy":
         scheme, why = "supervised", "clean/noisy pairs were found: train on them directly"

@@ -87,6 +87,18 @@ def _figure(value: Any) -> str:
     return "-" if value is None else str(value)
 
 
+def _decisions(summary: dict[str, Any]) -> str:
+    """How training decided the noise kind and the transform, from the training summary, in words."""
+    if "transform_decided_by" not in summary:
+        return "- (not recorded by this model's trainer)"
+    noise = summary.get("noise_kind")
+    noise_text = f"noise {noise} (from the {summary.get('noise_decided_by')})" if noise else "no noise model"
+    text = f"{noise_text}; transform {summary.get('transform')} (decided by the {summary['transform_decided_by']})"
+    if summary.get("noise_found"):
+        text += f"; the analysis found {summary['noise_found']}"
+    return text
+
+
 def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None) -> str:
     """A readable multi-line text of the model description (what ``grainwright info`` prints)."""
     architecture = metadata.get("architecture") or {}
@@ -115,6 +127,7 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
         f"noise (training)  {_figure(metadata.get('noise'))}",
         f"noise level seen  {_figure(metadata.get('training_noise'))}",
         f"scheme            {_figure(metadata.get('scheme'))}",
+        f"decided           {_decisions(metadata.get('training_summary') or {})}",
         f"data fingerprint  {_figure(metadata.get('data_fingerprint'))}",
         f"training summary  {_figure(metadata.get('training_summary'))}",
     ]

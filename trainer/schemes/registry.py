@@ -27,28 +27,30 @@ def scheme_class(name: str) -> type[Scheme]:
     return SCHEMES[name]
 
 
-def choose_scheme(layout: str, noise_known: bool, noise_estimated: bool) -> tuple[str, str]:
+def choose_scheme(layout: str, noise_known: bool, noise_estimated: bool, found: str | None = None) -> tuple[str, str]:
     """The scheme ``auto`` picks for ``layout``, and why (one sentence).
 
-    ``noise_known``: a noise description was given; ``noise_estimated``: the estimator found a confident Gaussian
-    or Poisson-Gaussian model in the images.
+    ``noise_known``: a noise description was given; ``noise_estimated``: the analysis of the images found a
+    confident Gaussian or Poisson-Gaussian model; ``found``: what the analysis found, in words, for the reason.
     """
-    found = LAYOUT_TEXT[layout]
+    found_layout = LAYOUT_TEXT[layout]
     if layout == "clean-only":
         if not noise_known:
-            raise ConfigError(f"found {found} but no noise description: put a noise.toml in the data folder or "
-                              "set noise.file (see 'grainwright inspect --save-noise')")
-        return "supervised", f"found {found} and a noise description: supervised with fresh synthetic noise"
+            raise ConfigError(f"found {found_layout} but no noise description: put a noise.toml in the data folder "
+                              "or set noise.file (see 'grainwright inspect --save-noise')")
+        return "supervised", f"found {found_layout} and a noise description: supervised with fresh synthetic noise"
     if layout == "clean-noisy":
-        return "supervised", f"found {found}: supervised on the real pairs"
+        return "supervised", f"found {found_layout}: supervised on the real pairs"
     if layout in ("noisy-pairs", "noisy-stacks"):
-        return "noise2noise", f"found {found}: Noise2Noise"
+        return "noise2noise", f"found {found_layout}: Noise2Noise"
     if noise_known:
-        return "recorrupted", f"found {found} and a noise description: recorrupted (every pixel in the loss)"
+        return "recorrupted", f"found {found_layout} and a noise description: recorrupted (every pixel in the loss)"
+    analysis = f" (the analysis found {found})" if found else ""
     if noise_estimated:
-        return "recorrupted", f"found {found}; the noise was estimated confidently from the images: recorrupted"
-    return "neighbor2neighbor", (f"found {found}; the noise could not be estimated confidently: neighbor2neighbor "
-                                 "(needs no noise model)")
+        return "recorrupted", (f"found {found_layout}; the noise was estimated confidently{analysis}: recorrupted "
+                               "(every pixel in the loss)")
+    return "neighbor2neighbor", (f"found {found_layout}; no Gaussian or Poisson-Gaussian noise model could be "
+                                 f"trusted{analysis}: neighbor2neighbor (needs no noise model)")
 
 
 def check_scheme_fits(name: str, layout: str) -> None:

@@ -15,6 +15,7 @@ from grainwright.trainer.schemes.base import Scheme, apply_model
 class Supervised(Scheme):
     name = "supervised"
     layouts = ("clean-only", "clean-noisy")
+    clean_targets = True
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         clean = patches["clean"]
