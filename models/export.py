@@ -200,7 +200,7 @@ def shareable_summary(summary: dict[str, Any] | None, record_data_path: bool = F
 
 def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalization: Normalization,
                    parity: dict[str, Any], source: Path, record_data_path: bool = False) -> dict[str, Any]:
-    """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in DEVELOPERS.md).
+    """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in docs/onnx-format.md).
 
     The training data folder appears by its base name, or as the full path with ``record_data_path``.
     """

@@ -5,7 +5,7 @@ The image is rearranged losslessly (pixel unshuffle) into ``4 C`` channels at ha
 prediction, and a pixel shuffle puts it back at full resolution; with ``skip=True`` the output is
 ``input - prediction``. Every convolution runs on a quarter of the pixels, so for the cost of a ``unet-small`` of
 width ``w`` it can be twice as wide and reach twice as far; wide convolutions also keep the CPU's matrix units
-busier (measured by ``grainwright bench`` style step timings; see the README's size search).
+busier (measured by ``grainwright bench`` style step timings; see docs/benchmarks.md).
 
 Reference: the downsampled sub-image input of K. Zhang, W. Zuo, L. Zhang, "FFDNet: Toward a Fast and Flexible
 Solution for CNN-Based Image Denoising", IEEE TIP 2018, with the U-Net of O. Ronneberger, P. Fischer, T. Brox,

@@ -47,7 +47,7 @@ def test_readme_quick_start_installs_and_tests_as_ci_does():
     ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8").strip().splitlines()[-1]
     install, test = ci.rsplit(" && ", 1)
     readme = (ROOT / "README.md").read_text(encoding="utf-8")
-    blocks = re.findall(r"```\n(.*?)```", readme.split("## Quick start", 1)[1].split("\n## ", 1)[0], re.S)
+    blocks = re.findall(r"```\n(.*?)```", readme.split("## Quick start", 1)[1].split("\n## ", 1)[0], re.DOTALL)
     lines = [line for block in blocks for line in block.splitlines() if line.strip()]
     assert lines == [install, ".venv/bin/grainwright demo", test]
     assert shlex.split(install)[-1] == ".[train,test]"
@@ -55,7 +55,7 @@ def test_readme_quick_start_installs_and_tests_as_ci_does():
 
 def _prose(markdown: str) -> str:
     """The text outside code blocks and inline code, where a link is a link."""
-    return re.sub(r"`[^`\n]*`", "", re.sub(r"^```.*?^```", "", markdown, flags=re.S | re.M))
+    return re.sub(r"`[^`\n]*`", "", re.sub(r"^```.*?^```", "", markdown, flags=re.DOTALL | re.MULTILINE))
 
 
 @pytest.mark.parametrize("page", PAGES, ids=lambda path: str(path.relative_to(ROOT)))

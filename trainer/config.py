@@ -2,8 +2,8 @@
 
 A config is a nested dict of plain values (what ``tomllib`` returns). Every key has one entry in ``SCHEMA`` with
 its type, default, allowed range and meaning; unknown keys, wrong types and out-of-range values are rejected
-with the key path and, for a misspelt key or choice, the closest valid spelling. The README's config reference is
-rendered from ``SCHEMA`` by ``schema_markdown`` (a test keeps the two identical).
+with the key path and, for a misspelt key or choice, the closest valid spelling. The config reference in
+docs/configs.md is rendered from ``SCHEMA`` by ``schema_markdown`` (a test keeps the two identical).
 """
 from __future__ import annotations
 
@@ -126,7 +126,7 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
         "alpha": Key("float", 0.3, "Recorruption strength: input y + alpha*z, target y - z/alpha. The network "
                      "learns to denoise noise sqrt(1 + alpha^2) times the real level, so a small alpha fits the "
                      "real noise better but gives noisier targets; 0.3 measured 0.1 dB better than 0.5 in "
-                     "`grainwright bench train` (README).", 0.01, 10.0),
+                     "`grainwright bench train` (docs/benchmarks.md).", 0.01, 10.0),
     },
 }
 
@@ -267,7 +267,7 @@ def load_config(path: str | Path | None, assignments: list[str] = ()) -> dict[st
 
 
 def schema_markdown() -> str:
-    """The config reference as a Markdown table, rendered from ``SCHEMA`` (the README embeds it verbatim)."""
+    """The config reference as a Markdown table, rendered from ``SCHEMA`` (docs/configs.md embeds it verbatim)."""
     lines = ["| Key | Type | Default | Allowed | Meaning |", "|---|---|---|---|---|"]
 
     def show(value: Any) -> str:

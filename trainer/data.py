@@ -1,6 +1,6 @@
 """Training data: folder layouts, loading once into memory, and vectorised patch sampling.
 
-Folder layouts (plain names of our own, documented in the README):
+Folder layouts (plain names of our own, documented in docs/data-layouts.md):
 
 ============  =========================================  ====================================
 layout        what the data folder holds                 roles of each sample

@@ -277,7 +277,7 @@ def _to_working(config: dict[str, Any], data: _TrainingImages,
     if mode == "auto":
         announce(f"warning: the {' and '.join(findings.flags)} flag is raised on the noisy images; every "
                  "self-supervised scheme assumes zero-mean noise independent from pixel to pixel, so the "
-                 "row/column fixed-pattern correction is applied before training (see the README's limits)")
+                 "row/column fixed-pattern correction is applied before training (see docs/limits.md)")
     _correct_fixed_pattern(working, data.layout.roles)
     return working, True
 

@@ -1,7 +1,7 @@
 """The analysis behind ``grainwright inspect``: per-image facts and noise, a folder summary, and a
 plain-language recommendation of training scheme, transform and corrections.
 
-Torch-free. The folder layouts recognised are the trainer's (see README, "Data layouts"): ``clean/`` +
+Torch-free. The folder layouts recognised are the trainer's (see docs/data-layouts.md): ``clean/`` +
 ``noisy/`` (clean/noisy pairs), ``noisy-a/`` + ``noisy-b/`` (two noisy shots), ``noisy-stacks/`` (multi-frame
 files of a static scene), ``clean/`` alone, ``noisy/`` alone or images directly in the folder.
 """

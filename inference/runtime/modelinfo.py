@@ -1,7 +1,7 @@
 """Read and show the description an exported grainwright model carries (torch-free).
 
 Every exported ONNX file holds one JSON document under the ``metadata_props`` key ``grainwright``, with
-``format = "grainwright-model"`` and a ``format_version``. Its keys are listed in the README, section "export"
+``format = "grainwright-model"`` and a ``format_version``. Its keys are listed in docs/onnx-format.md
 (written by ``grainwright.models.export.build_metadata``).
 """
 from __future__ import annotations

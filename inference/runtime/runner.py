@@ -40,7 +40,7 @@ from grainwright.inference.runtime.tiling import (
 
 # Window pixels per ONNX Runtime call when the caller does not choose a batch size: a few default tiles per
 # call, which bounds activation memory (48 channels x 4 B x 400k pixels = 77 MB per layer). On the shared
-# reference machine 1, ~4 and ~16 tiles per call measured alike within the noise (README, bench-runtime).
+# reference machine 1, ~4 and ~16 tiles per call measured alike within the noise (docs/benchmarks.md, runtime).
 DEFAULT_BATCH_PIXELS = 400_000
 
 # Self-ensemble members: (transpose, flip rows, flip columns) applied to (N, C, H, W) arrays. The first 2 are the

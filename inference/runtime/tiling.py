@@ -28,7 +28,7 @@ from typing import TypeVar
 
 import numpy as np
 
-# The smallest default kept edge (pixels), measured with `grainwright bench runtime` (README, bench-runtime):
+# The smallest default kept edge (pixels), measured with `grainwright bench runtime` (docs/benchmarks.md, runtime):
 # 512 was the fastest of 128, 256 and 512 for the default `residual` model in every interleaved repetition, and a
 # window's activations stay modest (48 channels x 4 B x 532^2 pixels = 54 MB per layer at margin 10).
 MIN_DEFAULT_TILE = 512
