@@ -15,7 +15,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--data", metavar="DIR", help="data folder (layouts: clean/, clean/ + noisy/, "
                         "noisy-a/ + noisy-b/, noisy-stacks/, noisy/ or images directly in DIR)")
     parser.add_argument("--scheme", metavar="NAME", help="supervised, noise2noise, masked, neighbor2neighbor, "
-                        "recorrupted or auto (overrides the config)")
+                        "recorrupted, sure or auto (overrides the config)")
     parser.add_argument("--set", dest="assignments", metavar="KEY=VALUE", action="append", default=[],
                         help="override one config key, e.g. --set optim.lr=5e-4 (repeatable)")
     budget = parser.add_mutually_exclusive_group()
