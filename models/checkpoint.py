@@ -58,7 +58,6 @@ FORMAT = "grainwright-checkpoint"
 FORMAT_VERSION = 1
 REQUIRED_KEYS = ("format", "format_version", "architecture", "hyper", "channels", "state_dict", "normalization")
 OPTIONAL_KEYS = ("noise", "scheme", "training_summary", "data_fingerprint", "training_noise", "created", "tool_version")
-RESUME_KEYS = ("optimizer", "scheduler", "rng", "step")
 
 
 @dataclass(frozen=True)

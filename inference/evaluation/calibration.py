@@ -31,7 +31,6 @@ from grainwright.inference.baselines.registry import get_baseline, resolve_param
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.metrics import psnr
 
-DEFAULT_LABEL = "defaults"
 GROUND_TRUTH_LABEL = "tuned on ground truth"
 CALIBRATED_LABEL = "calibrated without ground truth (J-invariant)"
 

@@ -138,10 +138,6 @@ class TiffRowReader:
                     )
         return out
 
-    def read_block(self, frame: int, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        """A rectangle of a frame (reads the rows it spans)."""
-        return self.read_rows(frame, y0, y1)[:, x0:x1]
-
 
 def tiff_layout(channels: int, dtype: np.dtype) -> dict[str, str | None]:
     """Photometric and planar configuration, chosen the way :func:`grainwright.inference.images.imageio.write_image`
