@@ -26,6 +26,7 @@ from grainwright.inference.evaluation.calibration import (
     tune_on_ground_truth,
 )
 from grainwright.inference.evaluation.metrics import psnr
+from grainwright.inference.images.crops import centre_crop
 
 SAMPLE_IMAGES = ("camera", "astronaut", "coins", "moon", "brick", "grass", "gravel")
 # Reference for the time ratios: scikit-image's non-local means, the usual yardstick for BM3D.
@@ -41,10 +42,7 @@ def _sample(name: str, size: int) -> np.ndarray:
         raise ConfigError(f"unknown sample image {name!r} (known: {', '.join(SAMPLE_IMAGES)})")
     image = getattr(data, name)()
     image = image[:, :, :3] if image.ndim == 3 else image[:, :, None]
-    height, width = image.shape[:2]
-    edge = min(size, height, width)
-    top, left = (height - edge) // 2, (width - edge) // 2
-    crop = image[top : top + edge, left : left + edge].astype(np.float32)
+    crop = centre_crop(image, min(size, *image.shape[:2])).astype(np.float32)  # square: the shorter side at most
     return crop / (255.0 if image.dtype == np.uint8 else float(crop.max() or 1.0))
 
 

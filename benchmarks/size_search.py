@@ -35,12 +35,13 @@ import numpy as np
 from grainwright.benchmarks.training import (
     ENSEMBLES,
     SEARCH_BASELINES,
-    evaluate,
+    ensemble_scores,
     opponent,
     runtime_denoiser,
 )
 from grainwright.inference.common.atomic import write_text_atomic
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images.crops import centre_box
 
 TEST_EDGE = 256
 BUDGET_CPU_SECONDS = 1200.0  # 10 minutes on 2 cores
@@ -149,8 +150,7 @@ def held_out(made: dict[str, Any]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Centre crops (``TEST_EDGE`` pixels) of the held-out clean and noisy images, ``(H, W, 1)`` float32."""
     out = {}
     for name, clean in made["clean"].items():
-        top, left = (clean.shape[0] - TEST_EDGE) // 2, (clean.shape[1] - TEST_EDGE) // 2
-        crop = (slice(top, top + TEST_EDGE), slice(left, left + TEST_EDGE))
+        crop = centre_box(*clean.shape[:2], TEST_EDGE)
         out[name] = (clean[crop][..., None].copy(), made["noisy"][name][crop][..., None].copy())
     return out
 
@@ -180,7 +180,7 @@ def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, 
     used, wall = time.process_time() - started, time.perf_counter() - wall
     onnx_path = out / "model.onnx"
     export_checkpoint(out, onnx_path, overwrite=True, threads=threads)
-    scores = evaluate(runtime_denoiser(onnx_path, threads), images, ensembles=(1,))
+    scores = ensemble_scores(runtime_denoiser(onnx_path, threads), images, ensembles=(1,))
     return {"spec": spec, "onnx": str(onnx_path), "steps": steps, "probe_cpu_seconds_per_step": per_step,
             "channels_last": channels_last, "precision": precision,
             "train_cpu_seconds": used,
@@ -249,7 +249,7 @@ def run_search(args: argparse.Namespace) -> int:
             best = _best(results, [key for spec, key in zip(specs, names) if spec["case"] == case])
             record = results["trials"][best]
             if "8" not in record["mean"]:
-                record.update(evaluate(runtime_denoiser(Path(record["onnx"]), args.threads), case_data(case)[1]))
+                record.update(ensemble_scores(runtime_denoiser(Path(record["onnx"]), args.threads), case_data(case)[1]))
                 _save(path, results)
                 print(f"   ensembles of {best}: " + ", ".join(f"x{size} {record['mean'][str(size)]:.2f}"
                                                           for size in ENSEMBLES) + " dB", flush=True)

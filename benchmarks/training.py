@@ -33,6 +33,7 @@ import numpy as np
 import torch
 
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images.crops import centre_crop
 
 TEST_IMAGES = ("camera", "coins", "moon")
 TRAIN_IMAGES = ("brick", "grass", "gravel", "chelsea", "coffee", "rocket", "page", "text", "clock", "cell",
@@ -71,9 +72,7 @@ def sample_image(name: str, edge: int = TEST_EDGE) -> np.ndarray:
         image = rgb2gray(image[..., :3])
     elif image.dtype == np.uint8:
         image = image / 255.0
-    h, w = image.shape
-    top, left = max(0, (h - edge) // 2), max(0, (w - edge) // 2)
-    return np.ascontiguousarray(np.clip(image[top:top + edge, left:left + edge], 0.0, 1.0), dtype=np.float32)
+    return np.ascontiguousarray(np.clip(centre_crop(image, edge), 0.0, 1.0), dtype=np.float32)
 
 
 def training_labels(half_scale: bool = False) -> list[str]:
@@ -100,6 +99,7 @@ def training_image(label: str) -> np.ndarray:
 def make_folders(work: Path, case: str, seed: int, labels: list[str] | None = None) -> dict[str, Any]:
     """Write the training folders of ``case`` (clean-only + noise.toml, noisy-pairs, noisy-only) from the training
     images ``labels`` (default ``TRAIN_IMAGES``) and return the held-out clean and noisy images."""
+    from grainwright.inference.images.imageio import write_image
     from grainwright.inference.noise.models import noise_from_dict, save_noise
 
     noise = noise_from_dict(CASES[case]["noise"])
@@ -110,8 +110,8 @@ def make_folders(work: Path, case: str, seed: int, labels: list[str] | None = No
         for folder, array in (("clean-only/clean", clean), ("noisy-pairs/noisy-a", noise.sample(clean, rng)),
                               ("noisy-pairs/noisy-b", noise.sample(clean, rng)),
                               ("noisy-only/noisy", noise.sample(clean, rng))):
-            (root / folder).mkdir(parents=True, exist_ok=True)
-            np.save(root / folder / f"{index:02d}-{name.replace('@', '-')}.npy", np.asarray(array, dtype=np.float32))
+            write_image(root / folder / f"{index:02d}-{name.replace('@', '-')}.npy", np.asarray(array, dtype=np.float32),
+                        overwrite=True)
     save_noise(noise, root / "clean-only" / "noise.toml")
     held_out = {name: sample_image(name) for name in TEST_IMAGES}
     rng = np.random.default_rng([seed, len(case), 1])  # its own stream: the same noise whatever is trained on
@@ -168,8 +168,8 @@ def runtime_denoiser(onnx_path: Path, threads: int) -> Any:
     return OnnxDenoiser(onnx_path, threads=threads, noise_sigma="model" if takes_map else "estimate")
 
 
-def evaluate(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
-             ensembles: tuple[int, ...] = ENSEMBLES) -> dict[str, Any]:
+def ensemble_scores(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarray]],
+                    ensembles: tuple[int, ...] = ENSEMBLES) -> dict[str, Any]:
     """PSNR (dB, peak 1) of a runtime ``OnnxDenoiser`` (ensemble 1) with each self-ensemble size in ``ensembles``:
     one pass per member, partial averages, the members in the runtime's order; and the seconds each size costs."""
     from grainwright.inference.evaluation.metrics import psnr
@@ -198,7 +198,7 @@ def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], t
 
     onnx_path = run_dir / "model.onnx"
     export_checkpoint(run_dir, onnx_path, overwrite=True, threads=threads)
-    return evaluate(runtime_denoiser(onnx_path, threads), images, ensembles=(1, ENSEMBLE))
+    return ensemble_scores(runtime_denoiser(onnx_path, threads), images, ensembles=(1, ENSEMBLE))
 
 
 def common_settings(args: argparse.Namespace) -> list[str]:

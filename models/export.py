@@ -40,6 +40,7 @@ from grainwright.inference.common.errors import (
     GrainwrightError,
     InputError,
 )
+from grainwright.inference.images.crops import centre_crop
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.modelinfo import (
     METADATA_FORMAT,
@@ -53,7 +54,6 @@ from grainwright.models.checkpoint import (
     resolve_checkpoint,
 )
 from grainwright.models.onnx_io import (
-    centre_crop,
     pad_to_alignment,
     read_calibration,
     run_session,
@@ -365,7 +365,7 @@ def export_checkpoint(
         "calibration": None,
     }
     if images:
-        crop = centre_crop(images[0].frame, CALIBRATION_CROP)
+        crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
         parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
                                  "max_abs_diff": parity_difference(session, model, normalization, crop,
                                                                    noise_map_for(crop, random=False))}

@@ -69,8 +69,3 @@ def read_calibration(folder: str | Path, normalization: Normalization, limit: in
     return images
 
 
-def centre_crop(image: np.ndarray, edge: int) -> np.ndarray:
-    """Central crop of at most ``edge`` x ``edge`` pixels of a ``(C, H, W)`` array, as a batch of one."""
-    height, width = image.shape[-2:]
-    top, left = max(0, (height - edge) // 2), max(0, (width - edge) // 2)
-    return image[None, :, top:top + edge, left:left + edge]

@@ -5,11 +5,11 @@ listed in ``MODELS`` below, plus its test (``tests/test_models*.py`` runs the sh
 """
 from __future__ import annotations
 
-import difflib
 import inspect
 from typing import Any
 
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.common.suggest import did_you_mean
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.residual import ResidualDenoiser
 from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
@@ -22,8 +22,8 @@ MODELS: dict[str, type[DenoisingNetwork]] = {
 
 
 def _suggest(word: str, choices: list[str]) -> str:
-    close = difflib.get_close_matches(word, choices, n=1)
-    return f" (did you mean '{close[0]}'?)" if close else f" (known: {', '.join(sorted(choices))})"
+    # difflib's default cutoff (0.6) as before; with no close name the known ones are listed
+    return did_you_mean(word, choices, cutoff=0.6) or f" (known: {', '.join(sorted(choices))})"
 
 
 def architecture(name: str) -> type[DenoisingNetwork]:

@@ -103,3 +103,16 @@ def test_a_failed_folder_leaves_nothing(tmp_path):
             raise RuntimeError("stop")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]
     assert not any((tmp_path / "run").iterdir())
+
+
+def test_a_folder_with_content_is_replaced_only_when_asked(tmp_path):
+    (tmp_path / "report").mkdir()
+    (tmp_path / "report" / "old.txt").write_text("old")
+    with pytest.raises(OSError):
+        with atomic_folder(tmp_path / "report") as temporary:
+            (temporary / "new.txt").write_text("new")
+    assert [p.name for p in (tmp_path / "report").iterdir()] == ["old.txt"]
+    with atomic_folder(tmp_path / "report", replace_existing=True) as temporary:
+        (temporary / "new.txt").write_text("new")
+    assert [p.name for p in (tmp_path / "report").iterdir()] == ["new.txt"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["report"]  # the retired folder is gone

@@ -117,3 +117,22 @@ def test_streamed_denoise_equals_in_memory_run(tmp_path, monkeypatch, layout):
         assert tiff.pages[0].is_tiled  # the streaming writer was used
     for frame, out in zip(frames, written):
         np.testing.assert_array_equal(out[:, :, None], denoiser.run(frame))
+
+
+def test_streamed_noise_map_model_estimates_sigma_per_frame(tmp_path, monkeypatch):
+    # The streamed path estimates the map's level per frame on the central sample (here the whole small frame),
+    # as the in-memory run does on the whole frame, and names the sample's size in the file's warnings.
+    monkeypatch.setattr(large_tiff, "STREAM_FROM_PIXELS", 1)
+    model = build_conv_model(tmp_path / "m.onnx", noise_map=True)
+    rng = np.random.default_rng(3)
+    frames = np.clip(rng.normal(NATIVE_HIGH / 2, NATIVE_HIGH / 20, (2, 83, 61, 1)), 0, NATIVE_HIGH).astype(np.uint16)
+    frames[1] //= 2  # a different level per frame
+    (tmp_path / "in").mkdir()
+    source = _write(tmp_path / "in" / "stack.tif", frames, {"tile": (32, 32)})
+    denoiser = OnnxDenoiser(model, threads=1, tile=20, noise_sigma="estimate")
+    [result] = denoise_files(denoiser, [source], tmp_path / "out")
+    assert result.status == "done", result.message
+    assert "estimated per frame on the central 83 x 61 pixels" in result.warnings
+    written = tifffile.imread(result.output)
+    for frame, out in zip(frames, written):
+        np.testing.assert_array_equal(out[:, :, None], denoiser.run(frame))

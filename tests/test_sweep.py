@@ -66,7 +66,7 @@ def test_ensemble_scores_match_the_runtime_ensemble(tmp_path):
     path = tmp_path / "tiny.onnx"
     onnx.save(export_graph(model, Normalization.for_array(noisy)), str(path))
     spec = ModelSpec(receptive_field=model.receptive_field)
-    scores = sweep.evaluate(OnnxDenoiser(path, threads=1, spec=spec), {"crop": (clean, noisy)})
+    scores = sweep.ensemble_scores(OnnxDenoiser(path, threads=1, spec=spec), {"crop": (clean, noisy)})
     for size in sweep.ENSEMBLES:
         reference = OnnxDenoiser(path, threads=1, spec=spec, ensemble=size).run(noisy, as_float=True)
         assert scores["psnr"][str(size)]["crop"] == pytest.approx(psnr(clean, reference, peak=1.0), abs=1e-4)

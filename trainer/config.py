@@ -8,7 +8,6 @@ docs/configs.md is rendered from ``SCHEMA`` by ``schema_markdown`` (a test keeps
 from __future__ import annotations
 
 import copy
-import difflib
 import tomllib
 from dataclasses import dataclass
 from importlib import resources
@@ -16,8 +15,11 @@ from pathlib import Path
 from typing import Any
 
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.common.suggest import did_you_mean
+from grainwright.trainer.schemes.registry import SCHEMES
 
-SCHEME_NAMES = ("auto", "supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted", "sure")
+# The registry's schemes: a new scheme is one file plus one line in trainer/schemes/registry.py.
+SCHEME_NAMES = ("auto", *SCHEMES)
 
 
 @dataclass(frozen=True)
@@ -138,11 +140,6 @@ def defaults() -> dict[str, Any]:
     return build(SCHEMA)
 
 
-def _suggest(word: str, options: list[str] | tuple[str, ...], prefix: str = "") -> str:
-    close = difflib.get_close_matches(word, list(options), n=1, cutoff=0.5)
-    return f" (did you mean '{prefix}{close[0]}'?)" if close else ""
-
-
 def _check_value(path: str, key: Key, value: Any) -> Any:
     kind = key.kind
     if kind == "bool-or-auto":
@@ -161,7 +158,8 @@ def _check_value(path: str, key: Key, value: Any) -> Any:
         if not isinstance(value, str):
             raise ConfigError(f"{path}: expected a string, got {value!r}")
         if kind == "choice" and value not in key.choices:
-            raise ConfigError(f"{path}: {value!r} is not one of {', '.join(key.choices)}{_suggest(value, key.choices)}")
+            raise ConfigError(f"{path}: {value!r} is not one of {', '.join(key.choices)}"
+                              f"{did_you_mean(value, key.choices)}")
         return value
     if kind == "int":
         if isinstance(value, bool) or not isinstance(value, int):
@@ -191,7 +189,7 @@ def validate(config: dict[str, Any]) -> dict[str, Any]:
         for name, value in node.items():
             path = prefix + name
             if name not in schema:
-                raise ConfigError(f"{path}: unknown key{_suggest(name, list(schema), prefix)}")
+                raise ConfigError(f"{path}: unknown key{did_you_mean(name, schema, prefix=prefix)}")
             entry = schema[name]
             if isinstance(entry, dict):
                 if not isinstance(value, dict):

@@ -19,22 +19,15 @@ batch of patches is one fancy-indexing gather with the flips and rotations folde
 """
 from __future__ import annotations
 
-import hashlib
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.layouts import LAYOUT_FOLDERS
 
-LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {
-    "clean-noisy": ("clean", "noisy"),
-    "noisy-pairs": ("noisy-a", "noisy-b"),
-    "noisy-stacks": ("noisy-stacks",),
-    "clean-only": ("clean",),
-    "noisy-only": ("noisy",),
-}
 LAYOUT_ROLES: dict[str, tuple[str, ...]] = {
     "clean-only": ("clean",),
     "clean-noisy": ("clean", "noisy"),
@@ -67,11 +60,6 @@ class Layout:
     @property
     def has_ground_truth(self) -> bool:
         return "clean" in self.roles
-
-    def fingerprint(self) -> str:
-        """SHA-256 of the sorted relative file list (what the model was trained on, without the pixels)."""
-        names = sorted(str(path.relative_to(self.root)) for sample in self.samples for path in sample)
-        return hashlib.sha256("\n".join(names).encode()).hexdigest()
 
 
 def detect_layout(root: str | Path) -> Layout:
@@ -171,18 +159,6 @@ class PatchSource:
                 array[rows] = array[rows][:, ::-1]
                 array[cols] = array[cols][:, :, ::-1]
         return {role: np.ascontiguousarray(array.transpose(0, 3, 1, 2)) for role, array in patches.items()}
-
-
-@dataclass
-class TrainingData:
-    """Everything the loop needs from the data folder, normalised once."""
-
-    layout: Layout
-    normalization: object
-    train: PatchSource
-    validation: PatchSource | None
-    channels: int
-    notes: list[str] = field(default_factory=list)
 
 
 def _read_sample(layout: Layout, sample: tuple[Path, ...]) -> list[dict[str, np.ndarray]] | None:

@@ -13,7 +13,6 @@ Adding a baseline is adding one module under ``inference/baselines/`` with a ``B
 """
 from __future__ import annotations
 
-import difflib
 import importlib
 from typing import Any
 
@@ -21,6 +20,7 @@ import numpy as np
 
 from grainwright.inference.baselines.base import Baseline
 from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.common.suggest import did_you_mean
 
 FAMILIES = ("local", "tv", "wavelet", "nlm", "bm3d")
 
@@ -45,8 +45,7 @@ def get_baseline(name: str) -> Baseline:
     """The baseline called ``name``; an unknown name raises ``ConfigError`` with suggestions."""
     if name in BASELINES:
         return BASELINES[name]
-    close = difflib.get_close_matches(name, list(BASELINES), n=3, cutoff=0.5)
-    hint = f"; did you mean {', '.join(close)}?" if close else ""
+    hint = did_you_mean(name, BASELINES, most=3, listed=True)
     raise ConfigError(f"unknown baseline {name!r}{hint} (known: {', '.join(BASELINES)})")
 
 

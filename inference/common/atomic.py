@@ -127,13 +127,14 @@ def atomic_path(path: str | Path, *, durable: bool = False) -> Iterator[Path]:
 
 
 @contextlib.contextmanager
-def atomic_folder(path: str | Path) -> Iterator[Path]:
+def atomic_folder(path: str | Path, *, replace_existing: bool = False) -> Iterator[Path]:
     """Yield a fresh temporary folder to fill; rename it to ``path`` when the block ends.
 
     The folder gets a temporary name of this module (:func:`temporary_name`, so a crashed run's leftover is
     recognised) and mode 0777 minus the umask, like any folder. An existing empty folder at ``path`` is replaced;
-    on any exception the temporary folder and its content are removed and ``path`` is untouched. The parent
-    folder is created when missing.
+    with ``replace_existing`` a folder with content, or a file, too (renamed aside first and deleted once the new
+    folder is in place). On any exception the temporary folder and its content are removed and ``path`` is untouched. The
+    parent folder is created when missing.
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -141,6 +142,15 @@ def atomic_folder(path: str | Path) -> Iterator[Path]:
     os.mkdir(temporary, 0o777)
     try:
         yield temporary
+        if replace_existing and (path.is_file() or (path.is_dir() and any(path.iterdir()))):
+            retired = temporary_name(path)
+            os.replace(path, retired)
+            os.replace(temporary, path)
+            if retired.is_dir():
+                shutil.rmtree(retired, ignore_errors=True)
+            else:
+                retired.unlink()
+            return
         if path.is_dir():
             path.rmdir()  # only an empty one: rmdir refuses anything else
         os.replace(temporary, path)

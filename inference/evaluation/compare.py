@@ -21,7 +21,6 @@ Ranking: by mean PSNR with ground truth; without, by SURE's estimated PSNR to 0.
 """
 from __future__ import annotations
 
-import difflib
 import json
 import math
 import time
@@ -40,6 +39,7 @@ from grainwright.inference.baselines.registry import (
     get_baseline,
 )
 from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.common.suggest import did_you_mean
 from grainwright.inference.evaluation.calibration import (
     CALIBRATED_LABEL,
     GROUND_TRUTH_LABEL,
@@ -75,6 +75,7 @@ from grainwright.inference.evaluation.sure import (
     unclipped_mask,
 )
 from grainwright.inference.images import transforms
+from grainwright.inference.images.crops import centre_crop
 from grainwright.inference.images.imageio import (
     effective_bit_depth,
     find_images,
@@ -211,8 +212,7 @@ def parse_methods(items: str | list[str]) -> list[MethodSpec]:
             add(MethodSpec(name, "classical", name=name))
         else:
             known = [*BASELINES, ALL_CLASSICAL]
-            close = difflib.get_close_matches(name, known, n=3, cutoff=0.5)
-            hint = f"; did you mean {', '.join(close)}?" if close else ""
+            hint = did_you_mean(name, known, most=3, listed=True)
             raise ConfigError(
                 f"--methods: unknown method {name!r}{hint} (known: {', '.join(known)}, or a path to an .onnx file)"
             )
@@ -367,12 +367,6 @@ def sure_figure(denoise: Denoise, noisy: np.ndarray, output: np.ndarray, noise: 
 
 
 # ---------------------------------------------------------------------------------------------- running
-def _centre_crop(image: np.ndarray, size: int) -> np.ndarray:
-    height, width = image.shape[:2]
-    top, left = max(0, (height - size) // 2), max(0, (width - size) // 2)
-    return image[top : top + size, left : left + size]
-
-
 def _crop(image: np.ndarray, box: tuple[int, int, int, int]) -> np.ndarray:
     x, y, w, h = box
     return image[y : y + h, x : x + w]
@@ -490,7 +484,7 @@ def run_comparison(
         added_maps: dict[str, np.ndarray] = {}
         for spec in specs:
             say(f"    {spec.label}")
-            row, output, maps = _evaluate(spec, learned, noisy, clean, noise, native_sigma, normalization, options)
+            row, output, maps = _run_and_score(spec, learned, noisy, clean, noise, native_sigma, normalization, options)
             rows.append({"image": path.name, **row})
             for region in regions:
                 details.append(_region_row(path.name, region, noisy, output, noise, row))
@@ -539,18 +533,18 @@ def _regions_for(path: Path, noisy: np.ndarray, noise: NoiseEstimate, regions_fi
     return listed
 
 
-def _evaluate(spec: MethodSpec, learned: dict[str, _LearnedMethod], noisy: np.ndarray, clean: np.ndarray | None,
-              noise: NoiseEstimate, native_sigma: float, normalization: Normalization,
-              options: CompareOptions) -> tuple[dict[str, Any], np.ndarray, dict[str, np.ndarray]]:
+def _run_and_score(spec: MethodSpec, learned: dict[str, _LearnedMethod], noisy: np.ndarray, clean: np.ndarray | None,
+                   noise: NoiseEstimate, native_sigma: float, normalization: Normalization,
+                   options: CompareOptions) -> tuple[dict[str, Any], np.ndarray, dict[str, np.ndarray]]:
     """Choose parameters, run, time and score one method on one image; also its removed/added maps."""
     row: dict[str, Any] = {"method": spec.label, "kind": spec.kind}
-    tuning_noisy = _centre_crop(noisy, options.tuning_crop)
+    tuning_noisy = centre_crop(noisy, options.tuning_crop)
     jinv_loss = None
     if spec.kind == "classical":
         grid = get_baseline(spec.name).grid("search" if clean is not None else "calibration")
         grid = _quick_grid(grid) if options.quick else grid
         if clean is not None:
-            tuning = tune_on_ground_truth(spec.name, tuning_noisy, _centre_crop(clean, options.tuning_crop),
+            tuning = tune_on_ground_truth(spec.name, tuning_noisy, centre_crop(clean, options.tuning_crop),
                                           noise.spec, grid=grid)
         else:
             tuning = calibrate(spec.name, tuning_noisy, noise.spec, grid=grid, passes=options.j_invariant_passes)

@@ -15,9 +15,6 @@ import html
 import io
 import json
 import math
-import os
-import shutil
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -25,6 +22,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
+from grainwright.inference.common.atomic import atomic_folder
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.detail import STRUCTURED_THRESHOLD
 from grainwright.inference.evaluation.svgplot import log_scatter_svg
@@ -107,23 +105,11 @@ def write_report(out_dir: str | Path, content: ReportContent, *, overwrite: bool
     out_dir = Path(out_dir)
     if out_dir.exists() and (not out_dir.is_dir() or any(out_dir.iterdir())) and not overwrite:
         raise InputError(out_dir, "report folder exists and is not empty (not overwritten without --overwrite)")
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
-    try:
+    with atomic_folder(out_dir, replace_existing=overwrite) as staging:
         (staging / "images").mkdir()
         _write_csv(staging / "results.csv", content)
         (staging / "results.json").write_text(json.dumps(_json_document(content), indent=2, default=_plain), "utf-8")
         (staging / "index.html").write_text(_html_page(content, staging / "images"), "utf-8")
-        if out_dir.exists():
-            retired = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old.", dir=out_dir.parent))
-            os.replace(out_dir, retired / out_dir.name)
-            os.replace(staging, out_dir)
-            shutil.rmtree(retired, ignore_errors=True)
-        else:
-            os.replace(staging, out_dir)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
     return out_dir
 
 

@@ -14,7 +14,9 @@ from typing import Any
 import numpy as np
 
 from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.inference.images.crops import centre_crop
 from grainwright.inference.images.imageio import find_images, read_frames
+from grainwright.inference.images.layouts import LAYOUT_FOLDERS
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.noise.estimation import (
     MIN_ANALYSED_SIDE,
@@ -29,14 +31,6 @@ from grainwright.inference.noise.models import (
     PoissonGaussianNoise,
 )
 
-# Folder layouts, in the order they are tried (same names as the trainer's).
-LAYOUT_FOLDERS: dict[str, tuple[str, ...]] = {
-    "clean-noisy": ("clean", "noisy"),
-    "noisy-pairs": ("noisy-a", "noisy-b"),
-    "noisy-stacks": ("noisy-stacks",),
-    "clean-only": ("clean",),
-    "noisy-only": ("noisy",),
-}
 # Images larger than this are analysed on their central crop, to bound time and memory.
 MAX_ANALYSED_SIDE = 2048
 # Below this noise level (percent of the full range) an image is treated as clean.
@@ -117,13 +111,6 @@ def _matched(first: list[Path], second: list[Path]) -> list[Path | None]:
     return [by_stem.get(path.stem) for path in first]
 
 
-def _central_crop(image: np.ndarray) -> np.ndarray:
-    height, width = image.shape[:2]
-    top = max(0, (height - MAX_ANALYSED_SIDE) // 2)
-    left = max(0, (width - MAX_ANALYSED_SIDE) // 2)
-    return image[top : top + MAX_ANALYSED_SIDE, left : left + MAX_ANALYSED_SIDE]
-
-
 def _is_static(first: np.ndarray, second: np.ndarray) -> bool:
     """Two frames show the same static scene when their difference is noise alone: its plain RMS (which
     counts moved edges) is within 25% of its wavelet-MAD noise level (which ignores them)."""
@@ -142,7 +129,7 @@ def inspect_file(path: Path, role: str, bit_depth: int | None = None, partner: P
         raise InputError(path, f"{frames.shape[1]} x {frames.shape[2]} pixels is too small to analyse its noise "
                                f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
     norm = Normalization.for_array(frames, bit_depth=bit_depth)
-    image = _central_crop(frames[0])
+    image = centre_crop(frames[0], MAX_ANALYSED_SIDE)
     analysis = analyse_noise(image, low=norm.low, high=norm.high)
     report = ImageReport(
         path=str(path), role=role, frames=int(frames.shape[0]), shape=list(frames.shape[1:]),
@@ -150,12 +137,12 @@ def inspect_file(path: Path, role: str, bit_depth: int | None = None, partner: P
         minimum=float(frames.min()), maximum=float(frames.max()), analysis=analysis,
     )
     if frames.shape[0] > 1:
-        report.static_stack = _is_static(image, _central_crop(frames[1]))
+        report.static_stack = _is_static(image, centre_crop(frames[1], MAX_ANALYSED_SIDE))
     if partner is not None:
         other = read_frames(partner, nonfinite=nonfinite)
         if other.shape[1:] != frames.shape[1:]:
             raise InputError(partner, f"shape {other.shape[1:]} does not match {path} {frames.shape[1:]}")
-        difference = _central_crop(other[0]).astype(np.float64) - image.astype(np.float64)
+        difference = centre_crop(other[0], MAX_ANALYSED_SIDE).astype(np.float64) - image.astype(np.float64)
         spread = difference.reshape(-1, difference.shape[-1]).std(axis=0)
         # noisy minus clean is the noise itself; the difference of two noisy shots has twice its variance.
         report.pair_sigma = [float(s) for s in (spread if role == "noisy+clean" else spread / np.sqrt(2.0))]
@@ -275,7 +262,7 @@ def summarise_noise(analyses: list[NoiseAnalysis]) -> SetNoise:
 def analyse_images(images: list[np.ndarray], low: float, high: float) -> tuple[list[NoiseAnalysis], SetNoise]:
     """Analyse each ``(H, W, C)`` native image as ``inspect`` does (central crop of at most ``MAX_ANALYSED_SIDE``)
     and summarise the set; images too small to analyse are skipped (ValueError when none is left)."""
-    analyses = [analyse_noise(_central_crop(image), low=low, high=high) for image in images
+    analyses = [analyse_noise(centre_crop(image, MAX_ANALYSED_SIDE), low=low, high=high) for image in images
                 if min(image.shape[:2]) >= MIN_ANALYSED_SIDE]
     if not analyses:
         raise ValueError(f"no image is large enough to analyse its noise (at least {MIN_ANALYSED_SIDE} x "

@@ -33,6 +33,7 @@ from tqdm import tqdm
 
 from grainwright.inference import __version__
 from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.inference.images.crops import centre_box
 from grainwright.inference.images.imageio import (
     SUPPORTED_SUFFIXES,
     effective_bit_depth,
@@ -145,11 +146,6 @@ def domain_warnings(denoiser: OnnxDenoiser, sample: np.ndarray) -> list[str]:
 
 def _noise_note(denoiser: OnnxDenoiser) -> str | None:
     return "per pixel from the training noise model" if denoiser.noise_model is not None else None
-
-
-def _central_crop(height: int, width: int) -> tuple[int, int, int, int]:
-    y0, x0 = max(0, (height - SAMPLE_EDGE) // 2), max(0, (width - SAMPLE_EDGE) // 2)
-    return y0, min(height, y0 + SAMPLE_EDGE), x0, min(width, x0 + SAMPLE_EDGE)
 
 
 def denoise_files(
@@ -349,8 +345,8 @@ def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[
     frames = _guard(input_fault, source, read_frames, source)
     count, height, width, channels = frames.shape
     _guard(input_fault, source, denoiser.check_channels, channels, source)
-    y0, y1, x0, x1 = _central_crop(height, width)
-    notes = domain_warnings(denoiser, frames[0, y0:y1, x0:x1])
+    sample_rows, sample_cols = centre_box(height, width, SAMPLE_EDGE)
+    notes = domain_warnings(denoiser, frames[0, sample_rows, sample_cols])
     if height * width >= 4_000_000:
         needed = frames.nbytes + count * height * width * channels * 4 * 3
         notes.append(f"decoded whole (not a tiled or striped TIFF): needs about {needed / 2**20:.0f} MiB")
@@ -381,8 +377,12 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
     with _guard(input_fault, source, TiffRowReader, source) as reader:
         height, width, channels = reader.shape
         _guard(input_fault, source, denoiser.check_channels, channels, source)
-        y0, y1, x0, x1 = _central_crop(height, width)
-        notes = domain_warnings(denoiser, reader.read_rows(0, y0, y1)[:, x0:x1])
+        sample_rows, sample_cols = centre_box(height, width, SAMPLE_EDGE)
+
+        def central_sample(frame: int) -> np.ndarray:
+            return reader.read_rows(frame, sample_rows.start, sample_rows.stop)[:, sample_cols]
+
+        notes = domain_warnings(denoiser, central_sample(0))
         # The kept rectangle is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
         plan = denoiser.plan(height, width, step=math.lcm(TIFF_TILE_MULTIPLE, denoiser.spec.alignment))
         rows = reflect_indices(plan.padded_height, height)
@@ -401,7 +401,7 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
                     band = band[wanted - first]
                 return band if identity_cols else band[:, cols]
 
-            crop = reader.read_rows(frame, y0, y1)[:, x0:x1] if denoiser.spec.takes_noise_map else None
+            crop = central_sample(frame) if denoiser.spec.takes_noise_map else None
             level = denoiser.sigma_for(crop)
             tiles = denoiser.kept_tiles(plan, read_padded_rows, level, tiles_bar.update)
             for _, kept in _guarded(tiles, model_fault, source):
@@ -411,7 +411,8 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
             record["noise_sigma_used"] = _noise_note(denoiser)
         elif denoiser.noise_sigma == "estimate":
             # The record is written with the first page, before later frames are read: name the method instead.
-            record["noise_sigma_used"] = f"estimated per frame on the central {y1 - y0} x {x1 - x0} pixels"
+            sample_height, sample_width = sample_rows.stop - sample_rows.start, sample_cols.stop - sample_cols.start
+            record["noise_sigma_used"] = f"estimated per frame on the central {sample_height} x {sample_width} pixels"
             notes.append(record["noise_sigma_used"])
         else:
             record["noise_sigma_used"] = denoiser.sigma_for(None)
