@@ -1,7 +1,8 @@
 """What every denoising architecture shares: its size figures, its receptive field and its alignment.
 
 An architecture is an ``nn.Module`` working in the float32 working range on ``(N, C, H, W)``. It takes ``C``
-channels and returns ``C``. A subclass sets ``name``, keeps the hyper-parameters it was built with in
+channels and returns ``C`` (a multi-frame architecture takes ``K * C``, K consecutive frames, and returns the
+centre frame's ``C``). A subclass sets ``name``, keeps the hyper-parameters it was built with in
 ``self.hyper`` (so a checkpoint can rebuild it) and implements ``macs_per_pixel`` and ``receptive_field``.
 """
 from __future__ import annotations
@@ -29,6 +30,8 @@ class DenoisingNetwork(nn.Module):
 
     name: str = ""
     takes_noise_map: bool = False
+    # Consecutive frames (slices) the network reads per output frame; multi-frame architectures set it > 1.
+    stack_frames: int = 1
 
     def __init__(self, channels: int, **hyper: Any):
         super().__init__()
@@ -36,6 +39,11 @@ class DenoisingNetwork(nn.Module):
             raise ValueError(f"channels must be >= 1, got {channels}")
         self.channels = int(channels)
         self.hyper = dict(hyper)
+
+    @property
+    def input_channels(self) -> int:
+        """Channels of the input tensor: ``channels`` per frame, frames in order (frame-major)."""
+        return self.channels * self.stack_frames
 
     def forward(self, image: torch.Tensor, noise_sigma: torch.Tensor | None = None) -> torch.Tensor:
         raise NotImplementedError
@@ -83,4 +91,5 @@ class DenoisingNetwork(nn.Module):
             "alignment": self.alignment,
             "tile_margin": self.tile_margin,
             "takes_noise_map": self.takes_noise_map,
+            "stack_frames": self.stack_frames,
         }

@@ -45,7 +45,7 @@ from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.modelinfo import (
     METADATA_FORMAT,
     METADATA_KEY,
-    METADATA_VERSION,
+    STACK_METADATA_VERSION,
 )
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.checkpoint import (
@@ -109,7 +109,7 @@ def export_graph(model: DenoisingNetwork, normalization: Normalization, opset: i
     graph = ExportGraph(model.for_export().eval(), WorkingRange(normalization)).eval()
     side = 2 * model.alignment
     # Tracing records operations, not values: a constant mid-range example leaves the caller's random state alone.
-    example = [torch.full((1, model.channels, side, side), normalization.low + 0.5 * normalization.full_range)]
+    example = [torch.full((1, model.input_channels, side, side), normalization.low + 0.5 * normalization.full_range)]
     names, axes = ["image"], {"image": {0: "N", 2: "H", 3: "W"}, "denoised": {0: "N", 2: "H", 3: "W"}}
     if model.takes_noise_map:
         example.append(torch.full((1, 1, side, side), 0.01 * normalization.full_range))
@@ -198,6 +198,21 @@ def shareable_summary(summary: dict[str, Any] | None, record_data_path: bool = F
     return summary
 
 
+def stack_description(model: DenoisingNetwork, payload: dict[str, Any]) -> dict[str, Any] | None:
+    """What the runtime needs to slide a multi-frame model along a stack (None for single-frame models)."""
+    if model.stack_frames == 1:
+        return None
+    return {
+        "frames": model.stack_frames,
+        # The axis the training stacks ran along (Z slices of a volume, T time points of a sequence, or I when
+        # the files did not say); the runtime slides along the one frame axis of each file.
+        "axis": (payload.get("stack") or {}).get("axis", "I"),
+        "channel_order": "frame-major",
+        "ends": "reflect",
+        "stack_receptive_field": model.stack_frames,
+    }
+
+
 def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalization: Normalization,
                    parity: dict[str, Any], source: Path, record_data_path: bool = False) -> dict[str, Any]:
     """The JSON document stored under ``metadata_props['grainwright']`` (keys listed in docs/onnx-format.md).
@@ -214,9 +229,14 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
             "Poisson-Gaussian noise (Anscombe transform) give sigma(x) = (high - low) * sqrt(gain * (x - low) / "
             "(high - low) + read**2) with gain and read from normalization.transform"
         )
+    if model.stack_frames > 1:
+        inputs["image"] = (f"float32 N x ({model.stack_frames} * C) x H x W, native pixel values of "
+                           f"{model.stack_frames} consecutive frames, frame-major (channel k * C + c is frame k, "
+                           "channel c); H and W multiples of the alignment")
     return {
         "format": METADATA_FORMAT,
-        "format_version": METADATA_VERSION,
+        # Version 2 adds the "stack" key; single-frame models keep version 1 so that older runtimes still read them.
+        "format_version": STACK_METADATA_VERSION if model.stack_frames > 1 else 1,
         "precision": "float32",
         "architecture": {"name": model.name, "hyper": dict(model.hyper)},
         "parameters": figures["parameters"],
@@ -227,6 +247,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "tiling_rule": tiling_rule(figures["receptive_field"], figures["alignment"], figures["tile_margin"]),
         "channels": model.channels,
         "takes_noise_map": model.takes_noise_map,
+        "stack": stack_description(model, payload),
         "inputs": inputs,
         "outputs": {"denoised": "float32 N x C x H x W, native values, not clipped or rounded"},
         "normalization": normalization.to_dict(),
@@ -339,6 +360,8 @@ def export_checkpoint(
         raise InputError(checkpoint, f"normalisation is for {normalization.channels} channel(s), "
                                      f"the network for {payload['channels']}")
     model = model_from_checkpoint(payload, checkpoint)
+    if int8 and model.stack_frames > 1:
+        raise ConfigError("--int8 is not available for multi-frame (stack) models yet; export them in float32")
     images = read_calibration(calibration, normalization) if calibration is not None else []
 
     proto = export_graph(model, normalization)
@@ -354,7 +377,7 @@ def export_checkpoint(
             return rng.uniform(0.25, 4.0, shape).astype(np.float32) * np.float32(sigma_level)
         return np.full(shape, sigma_level, np.float32)
 
-    random_image = rng.uniform(normalization.low, normalization.high, (1, model.channels, *PARITY_SHAPE))
+    random_image = rng.uniform(normalization.low, normalization.high, (1, model.input_channels, *PARITY_SHAPE))
     random_image = random_image.astype(np.float32)  # odd size: the graph pads to the alignment and crops back
     parity: dict[str, Any] = {
         "tolerance": PARITY_TOLERANCE,
@@ -366,6 +389,7 @@ def export_checkpoint(
     }
     if images:
         crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
+        crop = np.concatenate([crop] * model.stack_frames, axis=1)  # a multi-frame model: a still window
         parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
                                  "max_abs_diff": parity_difference(session, model, normalization, crop,
                                                                    noise_map_for(crop, random=False))}

@@ -11,13 +11,15 @@ from typing import Any
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.common.suggest import did_you_mean
 from grainwright.models.base import DenoisingNetwork
+from grainwright.models.multiframe import StackUNetDenoiser
 from grainwright.models.residual import ResidualDenoiser
 from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
 from grainwright.models.unet_halfres import UNetHalfResDenoiser
 from grainwright.models.unet_small import UNetSmallDenoiser
 
 MODELS: dict[str, type[DenoisingNetwork]] = {
-    cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser, UNetHalfResDenoiser)
+    cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser, UNetHalfResDenoiser,
+                              StackUNetDenoiser)
 }
 
 
@@ -45,7 +47,8 @@ def build_model(name: str, channels: int, **hyper: Any) -> DenoisingNetwork:
     Parameters
     ----------
     name : str
-        A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"``, ``"unet-small"`` or ``"unet-halfres"``.
+        A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"``, ``"unet-small"``, ``"unet-halfres"`` or
+        ``"unet-stack"`` (K frames in, the centre frame out).
     channels : int
         Image channels in and out (1 for grayscale, 3 for RGB, more for multi-band).
     **hyper

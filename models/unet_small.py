@@ -69,6 +69,11 @@ class UNetSmallDenoiser(DenoisingNetwork):
         self._widths = widths
 
     def forward(self, image: torch.Tensor, noise_sigma: torch.Tensor | None = None) -> torch.Tensor:
+        prediction = self.predict(image)
+        return image - prediction if self.skip else prediction
+
+    def predict(self, image: torch.Tensor) -> torch.Tensor:
+        """The U-Net itself, without the input-to-output skip."""
         features = image
         skips = []
         for encoder in self.encoders:
@@ -78,8 +83,7 @@ class UNetSmallDenoiser(DenoisingNetwork):
         features = self.bottom(features)
         for up, decoder in zip(self.ups, self.decoders):
             features = decoder(torch.cat([skips.pop(), up(features)], dim=1))
-        prediction = self.head(features)
-        return image - prediction if self.skip else prediction
+        return self.head(features)
 
     @property
     def alignment(self) -> int:

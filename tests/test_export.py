@@ -39,6 +39,7 @@ TINY = {
     "residual-noisemap": {"depth": 3, "width": 8},
     "unet-small": {"levels": 2, "width": 4},
     "unet-halfres": {"levels": 2, "width": 4},
+    "unet-stack": {"frames": 3, "levels": 2, "width": 4},
 }
 
 
@@ -81,7 +82,7 @@ def test_export_from_random_checkpoint_is_valid_and_matches_torch(tmp_path, name
     model = export_module.model_from_checkpoint(payload)
     side = 4 * model.alignment
     rng = np.random.default_rng(5)
-    image = rng.uniform(0, 4095, (2, 1, side, 3 * side)).astype(np.float32)
+    image = rng.uniform(0, 4095, (2, model.input_channels, side, 3 * side)).astype(np.float32)
     feeds = {"image": image}
     sigma = None
     if model.takes_noise_map:

@@ -16,12 +16,13 @@ TINY = {
     "residual-noisemap": {"depth": 4, "width": 6},
     "unet-small": {"levels": 2, "width": 4},
     "unet-halfres": {"levels": 2, "width": 4},
+    "unet-stack": {"frames": 3, "levels": 2, "width": 4},
 }
 
 
 def _inputs(model, height, width, dtype=torch.float32, seed=0):
     generator = torch.Generator().manual_seed(seed)
-    image = torch.rand(2, model.channels, height, width, generator=generator, dtype=dtype)
+    image = torch.rand(2, model.input_channels, height, width, generator=generator, dtype=dtype)
     sigma = torch.full((2, 1, height, width), 0.05, dtype=dtype) if model.takes_noise_map else None
     return image, sigma
 
@@ -37,7 +38,7 @@ def test_shape_in_equals_shape_out(name, channels, skip):
     model = build_model(name, channels, skip=skip, **TINY[name]).eval()
     side = 4 * model.alignment
     image, sigma = _inputs(model, side, 2 * side)
-    assert model(image, sigma).shape == image.shape
+    assert model(image, sigma).shape == (2, channels, side, 2 * side)  # a multi-frame model: the centre frame
     assert model.receptive_field % 2 == 1
     assert model.tile_margin >= model.receptive_radius and model.tile_margin % model.alignment == 0
 
@@ -154,3 +155,37 @@ def test_unknown_names_get_a_suggestion():
         build_model("residual", 1, dept=3)
     with pytest.raises(ConfigError, match="levels must be 2 or 3"):
         build_model("unet-small", 1, levels=5)
+
+
+def test_stack_model_reach_along_the_stack_is_its_window():
+    """A change in any of the K frames reaches the output, a frame outside the window cannot (it is not an
+    input); the first convolution alone grows with K (9 (K - 1) C width more MACs per pixel)."""
+    torch.manual_seed(5)
+    model = build_model("unet-stack", 1, frames=5, levels=2, width=4).double().eval()
+    assert model.stack_receptive_field == 5 and model.describe()["stack_frames"] == 5
+    single = build_model("unet-small", 1, levels=2, width=4)
+    assert model.receptive_field == single.receptive_field
+    assert model.macs_per_pixel() - single.macs_per_pixel() == 9 * 4 * 1 * 4
+    image, _ = _inputs(model, 16, 16, dtype=torch.float64)
+    with torch.no_grad():
+        reference = model(image)
+        for frame in range(5):
+            changed = image.clone()
+            changed[0, frame, 8, 8] += 1.0
+            assert (model(changed) - reference).abs().max() > 1e-9, f"frame {frame} does not reach the output"
+
+
+def test_stack_model_skip_subtracts_from_the_centre_frame():
+    torch.manual_seed(6)
+    with_skip = build_model("unet-stack", 2, frames=3, levels=2, width=4, skip=True).eval()
+    without = build_model("unet-stack", 2, frames=3, levels=2, width=4, skip=False).eval()
+    without.load_state_dict(with_skip.state_dict())
+    image, _ = _inputs(with_skip, 12, 12)
+    with torch.no_grad():
+        assert torch.allclose(with_skip(image), image[:, 2:4] - without(image))
+
+
+@pytest.mark.parametrize("frames", [1, 4, 17, 2.5])
+def test_stack_model_needs_an_odd_window(frames):
+    with pytest.raises(ConfigError, match="frames must be odd"):
+        build_model("unet-stack", 1, frames=frames)

@@ -355,7 +355,8 @@ def _write_tiff(temporary: str, data: np.ndarray, text: str | None) -> None:
 
 
 def read_text(path: str | Path) -> str | None:
-    """The text stored by ``write_image`` (TIFF ImageDescription, PNG text chunk, npy sidecar), or None."""
+    """The text stored by ``write_image`` (TIFF ImageDescription, PNG text chunk, npy sidecar) or by
+    ``stacks.write_stack`` (ImageJ ``Info`` property, OME ``Image/Description``), or None."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix == ".npy":
@@ -369,6 +370,13 @@ def read_text(path: str | Path) -> str | None:
     import tifffile
 
     with tifffile.TiffFile(path) as tiff:
+        if tiff.is_imagej:
+            return (tiff.imagej_metadata or {}).get("Info") or None
+        if tiff.is_ome:
+            import xml.etree.ElementTree as ElementTree
+
+            found = ElementTree.fromstring(tiff.ome_metadata).find(".//{*}Image/{*}Description")
+            return found.text if found is not None and found.text else None
         return tiff.pages[0].description or None
 
 

@@ -48,6 +48,7 @@ from grainwright.inference.images.large_tiff import (
     can_stream,
     write_tiled_tiff,
 )
+from grainwright.inference.images.stacks import open_stack, same_flavour, write_stack
 from grainwright.inference.noise.estimation import (
     correct_fixed_pattern,
     detect_banding,
@@ -55,6 +56,7 @@ from grainwright.inference.noise.estimation import (
 )
 from grainwright.inference.runtime.faults import Fault, FaultKind, input_fault, model_fault, write_fault
 from grainwright.inference.runtime.runner import OnnxDenoiser, file_sha256, to_dtype
+from grainwright.inference.runtime.stack_window import check_stack, denoise_stack
 from grainwright.inference.runtime.tiling import TIFF_TILE_MULTIPLE, reflect_indices
 
 RECORD_TOOL = "grainwright denoise"
@@ -323,9 +325,13 @@ def denoise_file(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, 
             return FileResult(source, output, "skipped", "kept (made with another model or settings)")
         _guard(write_fault, output, output.parent.mkdir, parents=True, exist_ok=True)
         record = {**new_record(denoiser, source, expected), **(extra_record or {})}
-        streamed = output.suffix.lower() in (".tif", ".tiff") and source.suffix.lower() in (".tif", ".tiff") \
-            and _guard(input_fault, source, can_stream, source)
-        if streamed:
+        stacked = denoiser.spec.stack_frames > 1  # a multi-frame model slides its window along the file's frames
+        streamed = not stacked and output.suffix.lower() in (".tif", ".tiff") \
+            and source.suffix.lower() in (".tif", ".tiff") and _guard(input_fault, source, can_stream, source)
+        if stacked:
+            megapixels, notes = _stack(denoiser, source, output, record, overwrite=overwrite, as_float=as_float,
+                                       fixed_pattern=fixed_pattern, durable=durable, tiles_bar=tiles_bar)
+        elif streamed:
             megapixels, notes = _stream_tiff(denoiser, source, output, record, overwrite=overwrite,
                                              as_float=as_float, durable=durable, tiles_bar=tiles_bar)
             if fixed_pattern != "never":
@@ -422,3 +428,35 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
                compression=WRITABLE_COMPRESSION.get(reader.compression), count=reader.frames, overwrite=overwrite,
                durable=durable)
         return reader.frames * height * width / 1e6, notes
+
+
+def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
+           as_float: bool, fixed_pattern: str, durable: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
+    """A multi-frame model over a stack or volume, frame by frame in bounded memory
+    (:mod:`grainwright.inference.runtime.stack_window`); the output keeps the input's axes and voxel size."""
+    with _guard(input_fault, source, open_stack, source) as reader:
+        info = reader.info
+        _guard(input_fault, source, check_stack, denoiser, info.frames, info.channels, source)
+        y0, y1, x0, x1 = _central_crop(info.height, info.width)
+        notes = domain_warnings(denoiser, _guard(input_fault, source, reader.read, 0)[y0:y1, x0:x1])
+        corrected = []
+
+        def read(index: int) -> np.ndarray:
+            frame = _guard(input_fault, source, reader.read, index)
+            correct = fixed_pattern == "always" or (fixed_pattern == "auto" and detect_banding(frame).flagged)
+            corrected.append(correct)
+            return correct_fixed_pattern(frame) if correct else frame
+
+        # The record goes into the file's header, before the frames are read: name the rule, count afterwards.
+        record["fixed_pattern_corrected"] = f"{fixed_pattern}: decided per frame"
+        record["stack"] = {"frames": info.frames, "axis": info.axis, "window": denoiser.spec.stack_frames,
+                           "ends": "reflect"}
+        tiles_bar.reset(total=len(denoiser.plan(info.height, info.width).tiles) * info.frames)
+        outputs = _guarded(denoise_stack(denoiser, read, info.frames, progress=tiles_bar.update), model_fault, source)
+        out_info = same_flavour(info, dtype=np.float32 if as_float else info.dtype, suffix=output.suffix)
+        frames = (values if as_float else to_dtype(values, info.dtype, denoiser.spec) for values in outputs)
+        _guard(write_fault, output, write_stack, output, frames, out_info, text=json.dumps(record),
+               overwrite=overwrite, durable=durable)
+    if any(corrected):
+        notes.append(f"row/column banding removed before denoising in {sum(corrected)} of {info.frames} frame(s)")
+    return info.frames * info.height * info.width / 1e6, notes

@@ -16,7 +16,10 @@ from grainwright.inference.common.errors import InputError
 
 METADATA_KEY = "grainwright"
 METADATA_FORMAT = "grainwright-model"
-METADATA_VERSION = 1
+# Version 2 added the "stack" key of multi-frame models (K frames in, the centre frame out); single-frame models
+# are still written as version 1, so older runtimes keep reading them and refuse only what they cannot run.
+METADATA_VERSION = 2
+STACK_METADATA_VERSION = 2
 
 
 def _session(path: Path) -> ort.InferenceSession:
@@ -114,6 +117,10 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
         f"tile margin       {metadata.get('tile_margin', '-')} px",
         f"noise map input   {'yes' if metadata.get('takes_noise_map') else 'no'}",
     ]
+    stack = metadata.get("stack")
+    if stack:
+        lines.append(f"stack window      {stack.get('frames')} frames along {stack.get('axis', '-')} (centre frame out, "
+                     f"{stack.get('channel_order', '-')} channels, ends by {stack.get('ends', '-')})")
     if io:
         for kind in ("inputs", "outputs"):
             for name, type_name, shape in io[kind]:

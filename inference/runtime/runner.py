@@ -110,6 +110,8 @@ class ModelSpec:
     dtype: str | None = None
     training_sigma: float | None = None
     training_bit_depth: int | None = None
+    stack_frames: int = 1
+    stack_axis: str | None = None
     metadata: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -134,6 +136,7 @@ class ModelSpec:
             return None if value is None else kind(value)
 
         normalization = metadata.get("normalization") or {}
+        stack = metadata.get("stack") or {}
         return cls(
             receptive_field=int(metadata["receptive_field"]),
             alignment=int(metadata.get("alignment", 1)),
@@ -147,6 +150,8 @@ class ModelSpec:
             dtype=normalization.get("dtype"),
             training_sigma=number("sigma_native", source=metadata.get("training_noise") or {}),
             training_bit_depth=number("bit_depth", int, source=normalization),
+            stack_frames=int(stack.get("frames", 1)),
+            stack_axis=stack.get("axis"),
             metadata=dict(metadata),
         )
 
@@ -337,8 +342,16 @@ class OnnxDenoiser:
             total = result if total is None else total + result
         denoised = total if self.ensemble == 1 else total / np.float32(self.ensemble)
         if not self.spec.takes_noise_map and self.strength != 1.0:
-            denoised = windows + np.float32(self.strength) * (denoised - windows)
+            denoised = self._input_frame(windows) + np.float32(self.strength) * (denoised - self._input_frame(windows))
         return np.asarray(denoised, dtype=np.float32)
+
+    def _input_frame(self, windows: np.ndarray) -> np.ndarray:
+        """The channels of ``windows`` the output stands for: all of them, or a multi-frame model's centre frame."""
+        if self.spec.stack_frames == 1:
+            return windows
+        channels = windows.shape[1] // self.spec.stack_frames
+        first = (self.spec.stack_frames // 2) * channels
+        return windows[:, first:first + channels]
 
     def kept_tiles(
         self,
@@ -396,6 +409,9 @@ class OnnxDenoiser:
         ndarray
             Same shape as ``image``; its dtype (clipped to the native range and rounded) unless ``as_float``.
         """
+        if self.spec.stack_frames > 1:
+            raise InputError(self.path, f"this model reads {self.spec.stack_frames} consecutive frames per output "
+                             "frame; give it a stack (grainwright.inference.runtime.stack_window.denoise_stack)")
         array = np.asarray(image)
         flat = array.ndim == 2
         if flat:
