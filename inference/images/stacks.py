@@ -18,6 +18,7 @@ stack axes in one file (T and Z), a gap in a folder's numbering.
 """
 from __future__ import annotations
 
+import json
 import re
 import xml.etree.ElementTree as ElementTree
 from collections.abc import Iterable, Iterator
@@ -423,8 +424,6 @@ def write_stack(
         else:
             _write_tiff_stack(temporary, checked, info, text)
     if suffix == ".npy" and text is not None:
-        import json
-
         write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1), durable=durable)
     return path
 

@@ -437,8 +437,8 @@ def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str,
     with _guard(input_fault, source, open_stack, source) as reader:
         info = reader.info
         _guard(input_fault, source, check_stack, denoiser, info.frames, info.channels, source)
-        y0, y1, x0, x1 = _central_crop(info.height, info.width)
-        notes = domain_warnings(denoiser, _guard(input_fault, source, reader.read, 0)[y0:y1, x0:x1])
+        sample_rows, sample_cols = centre_box(info.height, info.width, SAMPLE_EDGE)
+        notes = domain_warnings(denoiser, _guard(input_fault, source, reader.read, 0)[sample_rows, sample_cols])
         corrected = []
 
         def read(index: int) -> np.ndarray:
