@@ -21,6 +21,7 @@ COMMANDS: dict[str, str] = {
     "export": "grainwright.console.commands.export",
     "info": "grainwright.console.commands.info",
     "denoise": "grainwright.console.commands.denoise",
+    "watch": "grainwright.console.commands.watch",
     "compare": "grainwright.console.commands.compare",
     "demo": "grainwright.console.commands.demo",
     "bench": "grainwright.console.commands.bench",

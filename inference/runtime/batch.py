@@ -346,6 +346,21 @@ def denoise_file(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, 
     return FileResult(source, output, "done", "", megapixels, time.perf_counter() - start, notes)
 
 
+def denoise_frame(denoiser: OnnxDenoiser, frame: np.ndarray, *, fixed_pattern: str = "auto", as_float: bool = False,
+                  progress: Callable[[int], Any] | None = None) -> tuple[np.ndarray, bool, float | None]:
+    """Denoise one in-memory ``(H, W, C)`` frame exactly as :func:`denoise_file` does for a decoded file.
+
+    Returns the output (the frame's dtype, clipped and rounded, or float32 native values with ``as_float``),
+    whether row/column banding was removed first (``fixed_pattern``, see :func:`denoise_files`) and the noise
+    level used (native units; None for models without a noise map).
+    """
+    correct = fixed_pattern == "always" or (fixed_pattern == "auto" and detect_banding(frame).flagged)
+    model_input = correct_fixed_pattern(frame) if correct else frame
+    level = denoiser.sigma_for(model_input)
+    values = denoiser.run(model_input, sigma=level, as_float=True, progress=progress)
+    return (values if as_float else to_dtype(values, frame.dtype, denoiser.spec)), correct, level
+
+
 def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
                as_float: bool, fixed_pattern: str, durable: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
     frames = _guard(input_fault, source, read_frames, source)
@@ -360,14 +375,11 @@ def _in_memory(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[
     tiles_bar.reset(total=len(plan.tiles) * count)
     levels, results, corrected = [], [], []
     for frame in frames:
-        correct = fixed_pattern == "always" or (fixed_pattern == "auto" and detect_banding(frame).flagged)
+        values, correct, level = _guard(model_fault, source, denoise_frame, denoiser, frame,
+                                        fixed_pattern=fixed_pattern, as_float=as_float, progress=tiles_bar.update)
+        results.append(values)
         corrected.append(correct)
-        model_input = correct_fixed_pattern(frame) if correct else frame
-        level = denoiser.sigma_for(model_input)
         levels.append(level)
-        values = _guard(model_fault, source, denoiser.run, model_input, sigma=level, as_float=True,
-                        progress=tiles_bar.update)
-        results.append(values if as_float else to_dtype(values, frames.dtype, denoiser.spec))
     record["fixed_pattern_corrected"] = corrected
     if any(corrected):
         notes.append(f"row/column banding removed before denoising in {sum(corrected)} of {count} frame(s)")
