@@ -23,10 +23,10 @@ from test_faults import _mount_tmpfs
 from test_runner import build_conv_model
 
 from grainwright.console.cli import main
+from grainwright.inference.common import atomic
 from grainwright.inference.common.atomic import is_temporary
 from grainwright.inference.images import imageio
 from grainwright.inference.images.imageio import read_frames, write_image
-from grainwright.inference.runtime import line_service as service_module
 from grainwright.inference.runtime.batch import read_record
 from grainwright.inference.runtime.frame_engine import FrameEngine
 from grainwright.inference.runtime.line_arrivals import ArrivalWatcher
@@ -486,10 +486,14 @@ def test_a_move_across_filesystems_is_copy_fsync_delete(tmp_path, monkeypatch):
     source.parent.mkdir()
     source.write_bytes(b"frame bytes")
 
-    def cross_device(src, dst):
-        raise OSError(errno.EXDEV, "Invalid cross-device link")
+    replace = os.replace
 
-    monkeypatch.setattr(service_module.os, "rename", cross_device)
+    def cross_device(src, dst):  # the source is on another filesystem; the copy's own rename is not
+        if Path(src) == source:
+            raise OSError(errno.EXDEV, "Invalid cross-device link")
+        return replace(src, dst)
+
+    monkeypatch.setattr(atomic.os, "replace", cross_device)
     (tmp_path / "b").mkdir()
     (tmp_path / "b" / "f.png").write_bytes(b"an earlier frame of that name")
     moved = move_durably(source, tmp_path / "b" / "f.png")

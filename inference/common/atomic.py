@@ -15,6 +15,7 @@ temporary file in the destination folder, which is renamed over the final name o
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import os
 import secrets
@@ -175,3 +176,24 @@ def write_text_atomic(path: str | Path, text: str, *, durable: bool = False) -> 
 def write_json_atomic(path: str | Path, document: Any, *, durable: bool = False, default: Any = None) -> Path:
     """Write ``document`` as indented JSON (trailing newline) to ``path`` atomically."""
     return write_text_atomic(path, json.dumps(document, indent=2, default=default) + "\n", durable=durable)
+
+
+def move_file(source: str | Path, target: str | Path, *, durable: bool = True) -> Path:
+    """Move a file to ``target`` (replacing it), durably: a rename within a filesystem; across filesystems
+    (``EXDEV``) an atomic copy, ``fsync``, then delete of the source, so a crash leaves the file whole in at least
+    one place. ``durable`` also ``fsync``s both folders. Returns ``target``."""
+    source, target = Path(source), Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        os.replace(source, target)
+    except OSError as error:
+        if error.errno != errno.EXDEV:
+            raise
+        with atomic_path(target, durable=True) as temporary:
+            shutil.copyfile(source, temporary)
+            shutil.copystat(source, temporary)
+        os.unlink(source)
+    if durable:
+        fsync_folder(target.parent)
+        fsync_folder(source.parent)
+    return target

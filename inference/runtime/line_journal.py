@@ -36,7 +36,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from grainwright.inference.common.atomic import atomic_path, fsync_folder
+from grainwright.inference.common.atomic import move_file, write_bytes_atomic, write_text_atomic
 
 JOURNAL_NAME = "watch-journal.jsonl"
 TERMINAL_EVENTS = ("done", "quarantined")
@@ -164,27 +164,22 @@ class Journal:
         Crash-safe: generation 1 is a hard link (or copy) of the current journal made before the new journal
         replaces it atomically, so at every moment the journal name holds a complete journal.
         """
-        kept = [json.dumps(entry, separators=(",", ":"), default=str) for entry in keep]
-        with atomic_path(self.path, durable=True) as temporary:
-            if self.keep_generations > 0:
-                self._shift_generations()
-            with open(temporary, "w", encoding="utf-8") as out:
-                out.write("".join(line + "\n" for line in kept))
-        fsync_folder(self.path.parent)
+        text = "".join(json.dumps(entry, separators=(",", ":"), default=str) + "\n" for entry in keep)
+        if self.keep_generations > 0:
+            self._shift_generations()
+        write_text_atomic(self.path, text, durable=True)
         self.close()
         self._handle = os.open(self.path, os.O_WRONLY | os.O_APPEND)
         self._good_size = os.fstat(self._handle).st_size
-        self.lines = len(kept)
+        self.lines = text.count("\n")
 
     def _shift_generations(self) -> None:
-        oldest = self.generation(self.keep_generations)
         with contextlib.suppress(FileNotFoundError):
-            oldest.unlink()
+            self.generation(self.keep_generations).unlink()
         for number in range(self.keep_generations - 1, 0, -1):
             with contextlib.suppress(FileNotFoundError):
-                os.replace(self.generation(number), self.generation(number + 1))
+                move_file(self.generation(number), self.generation(number + 1), durable=False)
         try:
             os.link(self.path, self.generation(1))
         except OSError:  # no hard links on this filesystem: a copy, written atomically
-            with atomic_path(self.generation(1), durable=True) as temporary:
-                Path(temporary).write_bytes(self.path.read_bytes())
+            write_bytes_atomic(self.generation(1), self.path.read_bytes(), durable=True)

@@ -37,11 +37,9 @@ from __future__ import annotations
 
 import contextlib
 import enum
-import errno
 import fcntl
 import json
 import os
-import shutil
 import signal
 import socket
 import threading
@@ -54,8 +52,8 @@ from pathlib import Path
 from typing import Any
 
 from grainwright.inference.common.atomic import (
-    atomic_path,
     fsync_folder,
+    move_file,
     remove_stale_temporaries,
     write_json_atomic,
     write_text_atomic,
@@ -224,25 +222,9 @@ def describe_holder(found: dict[str, Any] | None) -> str:
 
 
 def move_durably(source: Path, target: Path) -> Path:
-    """Move ``source`` to ``target`` (a free name is chosen when it exists) and make the move durable.
-
-    Within a filesystem a rename; across filesystems (``EXDEV``) an atomic copy, ``fsync``, then delete of the
-    source. Returns the final path.
-    """
-    target = free_name(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    try:
-        os.rename(source, target)
-    except OSError as error:
-        if error.errno != errno.EXDEV:
-            raise
-        with atomic_path(target, durable=True) as temporary:
-            shutil.copyfile(source, temporary)
-            shutil.copystat(source, temporary)
-        os.unlink(source)
-    fsync_folder(target.parent)
-    fsync_folder(source.parent)
-    return target
+    """Move ``source`` to ``target``, or to a free name beside it when taken, durably (a copy, ``fsync`` and
+    delete across filesystems: :func:`grainwright.inference.common.atomic.move_file`). Returns the final path."""
+    return move_file(source, free_name(target))
 
 
 def free_name(target: Path) -> Path:

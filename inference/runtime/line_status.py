@@ -28,6 +28,7 @@ from __future__ import annotations
 import os
 import resource
 from collections import deque
+from pathlib import Path
 
 import numpy as np
 
@@ -70,8 +71,7 @@ class LatencyWindow:
 def resident_mib() -> float:
     """Resident memory of this process in MiB (Linux ``/proc/self/statm``; elsewhere the peak so far)."""
     try:
-        with open("/proc/self/statm") as handle:
-            pages = int(handle.read().split()[1])
+        pages = int(Path("/proc/self/statm").read_text().split()[1])
         return pages * os.sysconf("SC_PAGE_SIZE") / 2**20
     except (OSError, ValueError, IndexError):
         peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
