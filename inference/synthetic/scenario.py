@@ -213,12 +213,9 @@ def _serial_number(rng: np.random.Generator) -> str:
 # Details
 
 
-def _crack_coverage(rng: np.random.Generator, length: float, horizontal: bool) -> tuple[np.ndarray, int, int]:
-    """Coverage of a hairline crack in a local patch: a wandering polyline about one pixel wide.
-
-    Returns the coverage patch and the offsets to add to the patch's origin: the polyline starts at the patch
-    centre-left (or centre-top).
-    """
+def _crack_coverage(rng: np.random.Generator, length: float, horizontal: bool) -> np.ndarray:
+    """Coverage of a hairline crack in a local patch just large enough for it (3-pixel margins): a wandering
+    polyline about one pixel wide, running along x (or y)."""
     points = [(0.0, 0.0)]
     heading = rng.normal(0.0, math.radians(12))
     travelled = 0.0
@@ -238,7 +235,7 @@ def _crack_coverage(rng: np.random.Generator, length: float, horizontal: bool) -
     canvas = Image.new("L", (size[0] * SUPERSAMPLE, size[1] * SUPERSAMPLE), 0)
     scaled = [((px - x0) * SUPERSAMPLE, (py - y0) * SUPERSAMPLE) for px, py in pts]
     ImageDraw.Draw(canvas).line(scaled, fill=255, width=max(1, round(0.9 * SUPERSAMPLE)), joint="curve")
-    return _downsample(canvas), int(x0), int(y0)
+    return _downsample(canvas)
 
 
 def _pore_coverage(radius: float) -> np.ndarray:
@@ -301,23 +298,10 @@ def _place_background(
 # The frame
 
 
-def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) -> tuple[np.ndarray, list[Detail], str]:
-    """Render a clean frame in DN (float64, (H, W)), its details with their boxes, and its serial number.
-
-    Parameters
-    ----------
-    height, width : int
-        Frame size in pixels (at least 48 each).
-    seed : int or numpy.random.SeedSequence
-        The same seed gives the same frame.
-    """
-    if height < 48 or width < 48:
-        raise ValueError(f"scenario frames need at least 48x48 pixels, got {height}x{width}")
-    rng = np.random.default_rng(seed)
-    shape = (height, width)
+def _part_masks(rng: np.random.Generator, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+    """Coverage of the part (a rounded rectangle that may run off the frame, like a long part passing the line
+    camera) and of its bore (a round hole through it), as float64 ``(H, W)`` in [0, 1]."""
     S = SUPERSAMPLE
-
-    # Part outline (rounded rectangle, may run off the frame like a long part passing the line camera) and a bore.
     margins = rng.uniform(0.04, 0.14, 4) * np.array([width, height, width, height])
     margins[rng.random(4) < 0.25] = -10  # this side runs off the frame
     left, top = margins[0], margins[1]
@@ -334,10 +318,14 @@ def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) ->
         fill=255,
     )
     part = _downsample(outline).astype(np.float64)
-    bore = _downsample(bore_canvas).astype(np.float64) * part
-    solid = part - bore
+    return part, _downsample(bore_canvas).astype(np.float64) * part
 
-    # Machined face on one side of a slanted split line, cast body on the other.
+
+def _surface_level(rng: np.random.Generator, part: np.ndarray, bore: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The clean level in DN of conveyor, bore and part (machined face on one side of a slanted split line, cast
+    body on the other, bevelled edges catching the light), and the machined share of each pixel."""
+    height, width = shape = part.shape
+    solid = part - bore
     yy, xx = np.mgrid[0:height, 0:width].astype(np.float64)
     split_angle = rng.normal(0.0, math.radians(10))
     split_at = rng.uniform(0.35, 0.65) * width
@@ -355,15 +343,16 @@ def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) ->
     edge = ndimage.gaussian_gradient_magnitude(solid, 1.0) + 0.5 * ndimage.gaussian_gradient_magnitude(
         machined * solid, 0.8
     )
-    level += rng.uniform(1500.0, 2200.0) * edge
+    return level + rng.uniform(1500.0, 2200.0) * edge, machined
 
-    # Everything solid away from edges, split by surface; features must keep clear of the occupied parts.
-    inner = ndimage.binary_erosion(solid > 0.999, iterations=6)
-    on_machined = inner & (machined > 0.999)
-    on_cast = inner & (machined < 0.001)
-    occupied = ~(on_machined | on_cast)
 
-    # Stamped serial: a depression (darker) with a bright rim on the lit side, on the cast body if it fits.
+def _stamp_serial(rng: np.random.Generator, level: np.ndarray, surfaces: tuple[np.ndarray, ...],
+                  occupied: np.ndarray) -> tuple[np.ndarray, str]:
+    """Stamp a serial number where it fits on one of ``surfaces``: a depression (darker) with a bright rim on the
+    lit side. Marks its box in ``occupied``; returns the level and the serial ("" when
+    it fitted nowhere)."""
+    height, width = level.shape
+    S = SUPERSAMPLE
     serial = _serial_number(rng)
     font_px = int(np.clip(min(height, width) / 12, 10, 40))
     font = ImageFont.load_default(size=font_px * S)
@@ -373,44 +362,56 @@ def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) ->
     for _ in range(40):
         tx, ty = int(rng.integers(0, max(1, width - text_w))), int(rng.integers(0, max(1, height - text_h)))
         box = [tx, ty, text_w, text_h]
-        if _box_on(on_cast, box) or _box_on(on_machined, box):
+        if any(_box_on(surface, box) for surface in surfaces):
             canvas = Image.new("L", (width * S, height * S), 0)
             ImageDraw.Draw(canvas).text(((tx + 2) * S - bbox[0], (ty + 2) * S - bbox[1]), serial, fill=255, font=font)
             glyphs = _downsample(canvas).astype(np.float64)
             rim = np.clip(np.roll(glyphs, (-1, -1), axis=(0, 1)) - glyphs, 0.0, 1.0)
-            level = level * (1.0 - 0.4 * glyphs) + 0.25 * level * rim
             occupied[max(0, ty - 3) : ty + text_h + 3, max(0, tx - 3) : tx + text_w + 3] = True
-            break
-    else:
-        serial = ""
+            return level * (1.0 - 0.4 * glyphs) + 0.25 * level * rim, serial
+    return level, ""
 
-    # Cracks and pores: darkening proportional to the local level, so their contrast follows the illumination.
+
+def _draw_detail(rng: np.random.Generator,
+                 kind: str) -> tuple[np.ndarray, tuple[int, int, int, int], bool, float] | None:
+    """A crack or pore: its coverage patch, its feature box inside the patch ``(x, y, w, h)``, whether it runs
+    along x, and its darkening strength; None for a crack too short or crooked to box."""
+    if kind == "crack":
+        horizontal = bool(rng.random() < 0.5)
+        cover = _crack_coverage(rng, rng.uniform(20.0, 45.0), horizontal)
+        local = _crack_boxes(cover, horizontal)
+        if local is None:
+            return None
+        return cover, local, horizontal, rng.uniform(0.22, 0.4)
+    cover = _pore_coverage(rng.uniform(1.3, 3.0))
+    core = np.flatnonzero(cover[cover.shape[0] // 2] >= 0.5)
+    local = (int(core[0]), int(core[0]), int(core.size), int(core.size))
+    horizontal = bool(rng.random() < 0.5)
+    return cover, local, horizontal, rng.uniform(0.3, 0.5)
+
+
+def _place_details(rng: np.random.Generator, level: np.ndarray, surfaces: tuple[np.ndarray, ...],
+                   occupied: np.ndarray) -> tuple[np.ndarray, list[Detail]]:
+    """Cracks and pores on free spots of ``surfaces``, each with a background box beside it on the same surface.
+
+    Returns the darkening (a fraction of the local level, so the contrast follows the illumination) and the
+    details; marks what they take in ``occupied``.
+    """
+    height, width = level.shape
     details: list[Detail] = []
-    darkening = np.zeros(shape)
+    darkening = np.zeros(level.shape)
     area = height * width
     n_cracks = int(np.clip(round(area / 128**2 * 0.5), 1, 12))
     n_pores = int(np.clip(round(area / 128**2 * 1.0), 1, 24))
-    surfaces = (on_machined, on_cast)
     for kind, count in (("crack", n_cracks), ("pore", n_pores)):
         placed = 0
         for _attempt in range(40 * count):
             if placed == count:
                 break
-            if kind == "crack":
-                horizontal = bool(rng.random() < 0.5)
-                cover, ox, oy = _crack_coverage(rng, rng.uniform(20.0, 45.0), horizontal)
-                local = _crack_boxes(cover, horizontal)
-                if local is None:
-                    continue
-                strength = rng.uniform(0.22, 0.4)
-            else:
-                radius = rng.uniform(1.3, 3.0)
-                cover = _pore_coverage(radius)
-                r = cover.shape[0] // 2
-                core = np.flatnonzero(cover[r] >= 0.5)
-                local = (int(core[0]), int(core[0]), int(core.size), int(core.size))
-                horizontal = bool(rng.random() < 0.5)
-                strength = rng.uniform(0.3, 0.5)
+            drawn = _draw_detail(rng, kind)
+            if drawn is None:
+                continue
+            cover, local, horizontal, strength = drawn
             ph, pw = cover.shape
             px, py = int(rng.integers(0, max(1, width - pw))), int(rng.integers(0, max(1, height - ph)))
             patch = [px, py, pw, ph]
@@ -431,9 +432,32 @@ def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) ->
             depth = float(strength * level[region][cover > 0.5].mean()) if (cover > 0.5).any() else 0.0
             placed += 1
             details.append(Detail(f"{kind}-{placed}", kind, feature, background, depth))
+    return darkening, details
 
-    level = level * (1.0 - darkening)
-    clean = np.clip(level * _illumination(rng, shape), 0.0, FULL_SCALE)
+
+def render_clean(height: int, width: int, seed: int | np.random.SeedSequence) -> tuple[np.ndarray, list[Detail], str]:
+    """Render a clean frame in DN (float64, (H, W)), its details with their boxes, and its serial number.
+
+    Parameters
+    ----------
+    height, width : int
+        Frame size in pixels (at least 48 each).
+    seed : int or numpy.random.SeedSequence
+        The same seed gives the same frame.
+    """
+    if height < 48 or width < 48:
+        raise ValueError(f"scenario frames need at least 48x48 pixels, got {height}x{width}")
+    rng = np.random.default_rng(seed)
+    part, bore = _part_masks(rng, height, width)
+    level, machined = _surface_level(rng, part, bore)
+    # Everything solid away from edges, split by surface; the serial and the details keep clear of the rest.
+    inner = ndimage.binary_erosion(part - bore > 0.999, iterations=6)
+    on_machined = inner & (machined > 0.999)
+    on_cast = inner & (machined < 0.001)
+    occupied = ~(on_machined | on_cast)
+    level, serial = _stamp_serial(rng, level, (on_cast, on_machined), occupied)
+    darkening, details = _place_details(rng, level, (on_machined, on_cast), occupied)
+    clean = np.clip(level * (1.0 - darkening) * _illumination(rng, (height, width)), 0.0, FULL_SCALE)
     return clean, details, serial
 
 
@@ -529,7 +553,8 @@ def write_scenario(
         return rois
 
     emit(n_train, height, width, train_seeds, TRAIN_DIR, TRAIN_CLEAN_DIR, "frame")
-    write_json_atomic(out / ROIS_FILE, emit(n_holdout, height, width, holdout_seeds, HOLDOUT_NOISY_DIR, HOLDOUT_CLEAN_DIR, "holdout"))
+    holdout = emit(n_holdout, height, width, holdout_seeds, HOLDOUT_NOISY_DIR, HOLDOUT_CLEAN_DIR, "holdout")
+    write_json_atomic(out / ROIS_FILE, holdout)
     if large_size is not None:
         rois = emit(1, large_size[0], large_size[1], large_seeds, LARGE_NOISY_DIR, LARGE_CLEAN_DIR, "large")
         write_json_atomic(out / LARGE_ROIS_FILE, rois)
