@@ -54,6 +54,7 @@ from grainwright.models.checkpoint import (
     resolve_checkpoint,
 )
 from grainwright.models.onnx_io import (
+    CalibrationImage,
     pad_to_alignment,
     read_calibration,
     run_session,
@@ -298,6 +299,92 @@ def int8_path_for(path: Path) -> Path:
     return path.with_name(f"{path.stem}.int8{path.suffix or '.onnx'}")
 
 
+def _check_outputs(checkpoint: Path, output: Path, int8: bool, calibration: str | Path | None,
+                   overwrite: bool) -> None:
+    """Refuse, before any work, an output that is the checkpoint, INT8 without calibration images, or files that
+    exist (unless ``overwrite``)."""
+    if output.resolve() == checkpoint.resolve():
+        raise InputError(output, "is the checkpoint itself; choose another output name")
+    if int8 and calibration is None:
+        raise ConfigError("--int8 needs --calibration DIR: static quantisation is calibrated on your own images")
+    for target in [output] + ([int8_path_for(output)] if int8 else []):
+        if target.exists() and not overwrite:
+            raise InputError(target, "already exists; pass --overwrite to replace it")
+
+
+def _load_for_export(checkpoint: Path) -> tuple[dict[str, Any], Normalization, Any]:
+    """The checkpoint's payload, its normalisation (checked against the network's channels) and the network."""
+    payload = load_checkpoint(checkpoint)
+    try:
+        normalization = Normalization.from_dict(payload["normalization"])
+    except GrainwrightError as error:
+        raise InputError(checkpoint, f"bad normalisation description: {error}") from None
+    if normalization.channels != payload["channels"]:
+        raise InputError(checkpoint, f"normalisation is for {normalization.channels} channel(s), "
+                                     f"the network for {payload['channels']}")
+    return payload, normalization, model_from_checkpoint(payload, checkpoint)
+
+
+def _noise_maps(model: Any, sigma_level: float,
+                rng: np.random.Generator) -> Callable[[np.ndarray, bool], np.ndarray | None]:
+    """``noise_map_for(batch, random)``: the noise-level input for a ``(N, C, H, W)`` batch (None for a model
+    without one): the typical level everywhere, or with ``random`` a level varying over the image (0.25 to 4 times
+    the typical one), as signal-dependent noise does."""
+    def noise_map_for(batch: np.ndarray, random: bool) -> np.ndarray | None:
+        if not model.takes_noise_map:
+            return None
+        shape = (batch.shape[0], 1, *batch.shape[2:])
+        if random:
+            return rng.uniform(0.25, 4.0, shape).astype(np.float32) * np.float32(sigma_level)
+        return np.full(shape, sigma_level, np.float32)
+
+    return noise_map_for
+
+
+def _parity_checks(session: Any, model: Any, normalization: Normalization, images: list[CalibrationImage],
+                   noise_map_for: Callable[[np.ndarray, bool], np.ndarray | None],
+                   rng: np.random.Generator) -> dict[str, Any]:
+    """ONNX Runtime against torch on a random image of odd size (the graph pads to the alignment and crops back)
+    and on the centre crop of the first calibration image, as the largest absolute difference in fractions of the
+    native range."""
+    random_image = rng.uniform(normalization.low, normalization.high, (1, model.input_channels, *PARITY_SHAPE))
+    random_image = random_image.astype(np.float32)
+    parity: dict[str, Any] = {
+        "tolerance": PARITY_TOLERANCE,
+        "units": "fractions of the native range (high - low), i.e. the working range before any transform",
+        "random": {"shape": list(random_image.shape),
+                   "max_abs_diff": parity_difference(session, model, normalization, random_image,
+                                                     noise_map_for(random_image, random=True))},
+        "calibration": None,
+    }
+    if images:
+        crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
+        crop = np.concatenate([crop] * model.stack_frames, axis=1)  # a multi-frame model: a still window
+        parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
+                                 "max_abs_diff": parity_difference(session, model, normalization, crop,
+                                                                   noise_map_for(crop, random=False))}
+    return parity
+
+
+def _export_int8(proto: Any, model: Any, normalization: Normalization, images: list[CalibrationImage],
+                 noise_map_for: Callable[[np.ndarray, bool], np.ndarray | None], metadata: dict[str, Any],
+                 result: ExportResult, *, min_psnr: float, overwrite: bool, threads: int, seed: int) -> str:
+    """Quantise, and write the INT8 model beside the FP32 one when it passes the PSNR gate; returns the message."""
+    from grainwright.models.quantize import quantize_model
+
+    report, int8_proto = quantize_model(proto, model, normalization, images, noise_map_for,
+                                        min_psnr=min_psnr, threads=threads, seed=seed)
+    result.int8_report = report
+    if not report["passed"]:
+        return (f"INT8 model not written: {report['psnr_vs_fp32_db']:.1f} dB against the FP32 output on "
+                f"{report['held_out_patches']} held-out patches, below the {min_psnr:g} dB threshold")
+    int8_metadata = {**metadata, "precision": "int8", "int8": report}
+    result.int8_path = write_model(attach_metadata(int8_proto, int8_metadata), int8_path_for(result.path),
+                                   overwrite=overwrite)
+    return (f"wrote {result.int8_path} (INT8 vs FP32 on {report['held_out_patches']} held-out patches: "
+            f"{report['psnr_vs_fp32_db']:.1f} dB, {report['speed_ratio_vs_fp32']:.2f}x the FP32 speed)")
+
+
 def export_checkpoint(
     source: str | Path,
     output: str | Path,
@@ -343,23 +430,8 @@ def export_checkpoint(
     """
     checkpoint = resolve_checkpoint(source)
     output = Path(output)
-    if output.resolve() == checkpoint.resolve():
-        raise InputError(output, "is the checkpoint itself; choose another output name")
-    if int8 and calibration is None:
-        raise ConfigError("--int8 needs --calibration DIR: static quantisation is calibrated on your own images")
-    targets = [output] + ([int8_path_for(output)] if int8 else [])
-    for target in targets:
-        if target.exists() and not overwrite:
-            raise InputError(target, "already exists; pass --overwrite to replace it")
-    payload = load_checkpoint(checkpoint)
-    try:
-        normalization = Normalization.from_dict(payload["normalization"])
-    except GrainwrightError as error:
-        raise InputError(checkpoint, f"bad normalisation description: {error}") from None
-    if normalization.channels != payload["channels"]:
-        raise InputError(checkpoint, f"normalisation is for {normalization.channels} channel(s), "
-                                     f"the network for {payload['channels']}")
-    model = model_from_checkpoint(payload, checkpoint)
+    _check_outputs(checkpoint, output, int8, calibration, overwrite)
+    payload, normalization, model = _load_for_export(checkpoint)
     if int8 and model.stack_frames > 1:
         raise ConfigError("--int8 is not available for multi-frame (stack) models yet; export them in float32")
     images = read_calibration(calibration, normalization) if calibration is not None else []
@@ -367,32 +439,8 @@ def export_checkpoint(
     proto = export_graph(model, normalization)
     session = session_for(proto, threads)
     rng = np.random.default_rng(seed)
-    sigma_level = typical_sigma_native(payload, normalization)
-
-    def noise_map_for(batch: np.ndarray, random: bool) -> np.ndarray | None:
-        if not model.takes_noise_map:
-            return None
-        shape = (batch.shape[0], 1, *batch.shape[2:])
-        if random:  # a map that varies over the image, as signal-dependent noise does
-            return rng.uniform(0.25, 4.0, shape).astype(np.float32) * np.float32(sigma_level)
-        return np.full(shape, sigma_level, np.float32)
-
-    random_image = rng.uniform(normalization.low, normalization.high, (1, model.input_channels, *PARITY_SHAPE))
-    random_image = random_image.astype(np.float32)  # odd size: the graph pads to the alignment and crops back
-    parity: dict[str, Any] = {
-        "tolerance": PARITY_TOLERANCE,
-        "units": "fractions of the native range (high - low), i.e. the working range before any transform",
-        "random": {"shape": list(random_image.shape),
-                   "max_abs_diff": parity_difference(session, model, normalization, random_image,
-                                                     noise_map_for(random_image, random=True))},
-        "calibration": None,
-    }
-    if images:
-        crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
-        crop = np.concatenate([crop] * model.stack_frames, axis=1)  # a multi-frame model: a still window
-        parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
-                                 "max_abs_diff": parity_difference(session, model, normalization, crop,
-                                                                   noise_map_for(crop, random=False))}
+    noise_map_for = _noise_maps(model, typical_sigma_native(payload, normalization), rng)
+    parity = _parity_checks(session, model, normalization, images, noise_map_for, rng)
     worst = max(entry["max_abs_diff"] for entry in (parity["random"], parity["calibration"]) if entry)
     if not worst <= PARITY_TOLERANCE:
         raise GrainwrightError(
@@ -405,23 +453,9 @@ def export_checkpoint(
     result = ExportResult(output, metadata)
     result.messages.append(f"wrote {output} (parity {worst:.2g} of the range, limit {PARITY_TOLERANCE:g})")
     log(result.messages[-1])
-
     if int8:
-        from grainwright.models.quantize import quantize_model
-
-        report, int8_proto = quantize_model(proto, model, normalization, images, noise_map_for,
-                                            min_psnr=min_int8_psnr, threads=threads, seed=seed)
-        result.int8_report = report
-        if report["passed"]:
-            int8_metadata = {**metadata, "precision": "int8", "int8": report}
-            result.int8_path = write_model(attach_metadata(int8_proto, int8_metadata), int8_path_for(output),
-                                           overwrite=overwrite)
-            result.messages.append(
-                f"wrote {result.int8_path} (INT8 vs FP32 on {report['held_out_patches']} held-out patches: "
-                f"{report['psnr_vs_fp32_db']:.1f} dB, {report['speed_ratio_vs_fp32']:.2f}x the FP32 speed)")
-        else:
-            result.messages.append(
-                f"INT8 model not written: {report['psnr_vs_fp32_db']:.1f} dB against the FP32 output on "
-                f"{report['held_out_patches']} held-out patches, below the {min_int8_psnr:g} dB threshold")
+        result.messages.append(_export_int8(proto, model, normalization, images, noise_map_for, metadata, result,
+                                            min_psnr=min_int8_psnr, overwrite=overwrite, threads=threads,
+                                            seed=seed))
         log(result.messages[-1])
     return result
