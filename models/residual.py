@@ -5,7 +5,7 @@ learning). Layer 1 is conv + ReLU, layers 2 .. depth-1 are conv (+ batch norm) +
 conv back to ``C`` channels. With ``skip=False`` the stack predicts the clean image directly, which masked
 blind-spot training needs (the skip would hand each pixel its own noisy value).
 
-Reference: K. Zhang, W. Zuo, Y. Chen, D. Meng, L. Zhang, "Beyond a Gaussian DenoisingNetwork: Residual Learning of Deep
+Reference: K. Zhang, W. Zuo, Y. Chen, D. Meng, L. Zhang, "Beyond a Gaussian Denoiser: Residual Learning of Deep
 CNN for Image Denoising", IEEE Transactions on Image Processing 26(7), 2017 (17 x 64 there; 10 x 48 here, sized
 for a CPU).
 """

@@ -789,7 +789,7 @@ def _content(settings: dict[str, Any], findings: list[str], ranking: list[dict[s
     if options.quick:
         notes.append("Quick settings: at most three points of each parameter grid, small crops.")
     return ReportContent(
-        title="OnnxDenoiser comparison",
+        title="Denoiser comparison",
         settings=settings,
         findings=findings,
         ranking_columns=ranking_columns,
