@@ -5,22 +5,31 @@ files Pillow would reduce to 8 bits), TIFF (8/16-bit integer and 32-bit
 float, any channel count, multi-page files as stacks of frames, through tifffile) and ``.npy``.
 
 Every problem with an input raises ``InputError(path, problem)``: missing file, unreadable or truncated file,
-zero-size image, unsupported dtype (complex, 32/64-bit integers), NaN/Inf pixels (unless replaced) and frames
-of different shapes in one file.
+zero-size image, unsupported dtype (complex, 32/64-bit integers), NaN/Inf pixels (unless replaced), frames
+of different shapes in one file, and a declared size over the limits of
+:mod:`grainwright.inference.images.limits` (checked on the header, before any pixel is decoded).
+:func:`read_centre_of_file` reads only the middle of a large tiled or striped TIFF or ``.npy`` file.
 """
 from __future__ import annotations
 
+import contextlib
 import glob
 import json
 import struct
+import warnings
 import zlib
+from collections.abc import Iterator
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable
 
 import numpy as np
 
 from grainwright.inference.common.atomic import atomic_path, is_temporary, write_text_atomic
-from grainwright.inference.common.errors import InputError
+from grainwright.inference.common.errors import GrainwrightError, InputError
+from grainwright.inference.images.crops import centre_box
+from grainwright.inference.images.large_tiff import TiffRowReader, can_stream
+from grainwright.inference.images.limits import check_declared_size, current_limits, within_limits
 
 SUPPORTED_SUFFIXES = (".png", ".tif", ".tiff", ".npy")
 
@@ -91,6 +100,19 @@ def read_frames(path: str | Path, nonfinite: str = "error") -> np.ndarray:
     numpy.ndarray
         ``(N, H, W, C)``; boolean data comes back as uint8 (0/1).
     """
+    path = _checked_path(path, nonfinite)
+    suffix = path.suffix.lower()
+    with _decoding(path):
+        if suffix == ".npy":
+            frames = _read_npy(path)
+        elif suffix == ".png":
+            frames = _read_png(path)
+        else:
+            frames = _read_tiff(path)
+    return _check_frames(path, frames, nonfinite)
+
+
+def _checked_path(path: str | Path, nonfinite: str) -> Path:
     path = Path(path)
     if nonfinite not in ("error", "replace"):
         raise ValueError(f"nonfinite must be 'error' or 'replace', not {nonfinite!r}")
@@ -98,23 +120,22 @@ def read_frames(path: str | Path, nonfinite: str = "error") -> np.ndarray:
         raise InputError(path, "no such file")
     if path.is_dir():
         raise InputError(path, "is a folder, not an image file")
-    suffix = path.suffix.lower()
-    if suffix not in SUPPORTED_SUFFIXES:
+    if path.suffix.lower() not in SUPPORTED_SUFFIXES:
         raise InputError(path, f"unsupported file type '{path.suffix}' (supported: {', '.join(SUPPORTED_SUFFIXES)})")
     if path.stat().st_size == 0:
         raise InputError(path, "empty file (0 bytes)")
+    return path
+
+
+@contextlib.contextmanager
+def _decoding(path: Path) -> Iterator[None]:
+    """Turn a decoder's failure into one line naming the file."""
     try:
-        if suffix == ".npy":
-            frames = _read_npy(path)
-        elif suffix == ".png":
-            frames = _read_png(path)
-        else:
-            frames = _read_tiff(path)
-    except InputError:
+        yield
+    except GrainwrightError:
         raise
     except Exception as error:  # decoders raise many types for truncated or corrupt files
         raise InputError(path, f"cannot read the file, it may be truncated or corrupt ({type(error).__name__}: {error})") from None
-    return _check_frames(path, frames, nonfinite)
 
 
 def read_image(path: str | Path, nonfinite: str = "error") -> np.ndarray:
@@ -125,15 +146,104 @@ def read_image(path: str | Path, nonfinite: str = "error") -> np.ndarray:
     return frames[0]
 
 
+@dataclass(frozen=True)
+class FileCentre:
+    """The central square of a file's first frames, with the file's full size."""
+
+    frames: np.ndarray  # (n, h, w, C), native dtype: the crop of each of the first n frames
+    count: int  # frames in the file
+    shape: tuple[int, int, int]  # (H, W, C) of every frame
+    piecewise: bool  # read without decoding the whole file
+
+
+def read_centre_of_file(path: str | Path, edge: int, frames: int = 1, nonfinite: str = "error") -> FileCentre:
+    """Read the central ``edge`` x ``edge`` square (or all, if smaller) of the first ``frames`` frames of a file.
+
+    A tiled or striped TIFF (see :func:`grainwright.inference.images.large_tiff.can_stream`) is read only in
+    the strips or tiles holding the square, and a ``.npy`` file row by row, so neither meets the size limits
+    however large the file. Other files are decoded whole, within the limits, and cropped. Checks (pixel
+    type, NaN/Inf) apply to the crop.
+    """
+    path = _checked_path(path, nonfinite)
+    suffix = path.suffix.lower()
+    with _decoding(path):
+        if suffix in (".tif", ".tiff") and can_stream(path):
+            with TiffRowReader(path) as reader:
+                rows, cols = centre_box(*reader.shape[:2], edge)
+                crop = np.stack([reader.read_block(frame, rows.start, rows.stop, cols.start, cols.stop)
+                                 for frame in range(min(frames, reader.frames))])
+                count, shape, piecewise = reader.frames, reader.shape, True
+        elif suffix == ".npy":
+            count, *shape = _npy_header(path).frames_shape
+            rows, cols = centre_box(*shape[:2], edge)
+            crop, piecewise = _npy_crop(path, frames, rows, cols), True
+        else:
+            whole = read_frames(path, nonfinite=nonfinite)
+            rows, cols = centre_box(*whole.shape[1:3], edge)
+            crop = np.ascontiguousarray(whole[:frames, rows, cols])
+            count, shape, piecewise = whole.shape[0], whole.shape[1:], False
+    return FileCentre(_check_frames(path, crop, nonfinite), int(count), tuple(int(n) for n in shape), piecewise)
+
+
+@dataclass(frozen=True)
+class _NpyHeader:
+    frames_shape: tuple[int, int, int, int]  # (N, H, W, C) the array is read as
+    dtype: np.dtype
+    fortran_order: bool
+    data_offset: int  # bytes before the data
+
+
+def _npy_header(path: Path) -> _NpyHeader:
+    """Read and check a ``.npy`` header (NumPy format versions 1.0 and 2.0) without touching the data."""
+    with open(path, "rb") as handle:
+        version = np.lib.format.read_magic(handle)
+        if version == (1, 0):
+            shape, fortran_order, dtype = np.lib.format.read_array_header_1_0(handle)
+        elif version == (2, 0):
+            shape, fortran_order, dtype = np.lib.format.read_array_header_2_0(handle)
+        else:
+            raise InputError(path, f".npy format version {version[0]}.{version[1]} is not supported (1.0 or 2.0)")
+        data_offset = handle.tell()
+    if dtype.hasobject:
+        raise InputError(path, "holds Python objects, not pixel data (refused: loading them could run code)")
+    if len(shape) == 2:
+        frames_shape = (1, *shape, 1)
+    elif len(shape) == 3:
+        frames_shape = (1, *shape) if shape[-1] <= 4 else (*shape, 1)
+    elif len(shape) == 4:
+        frames_shape = tuple(shape)
+    else:
+        raise InputError(path, f"array of shape {tuple(shape)} is not an image (expected 2 to 4 dimensions)")
+    size = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+    if path.stat().st_size < data_offset + size:
+        raise InputError(path, f"truncated .npy file (the header declares {size} bytes of data, the file holds "
+                               f"{max(0, path.stat().st_size - data_offset)})")
+    return _NpyHeader(frames_shape, dtype, bool(fortran_order), data_offset)
+
+
 def _read_npy(path: Path) -> np.ndarray:
-    array = np.load(path, allow_pickle=False)
-    if array.ndim == 2:
-        return array[None, :, :, None]
-    if array.ndim == 3:
-        return array[None] if array.shape[-1] <= 4 else array[..., None]
-    if array.ndim == 4:
-        return array
-    raise InputError(path, f"array of shape {array.shape} is not an image (expected 2 to 4 dimensions)")
+    header = _npy_header(path)
+    count, height, width, channels = header.frames_shape
+    check_declared_size(path, height, width, channels, header.dtype, count)
+    return np.load(path, allow_pickle=False).reshape(header.frames_shape)
+
+
+def _npy_crop(path: Path, frames: int, rows: slice, cols: slice) -> np.ndarray:
+    """Rows and columns of the first frames of a ``.npy`` file, read row by row (C order) without mapping it."""
+    header = _npy_header(path)
+    count, height, width, channels = header.frames_shape
+    if header.fortran_order:  # rare for images: let NumPy map it and copy the crop
+        mapped = np.load(path, mmap_mode="r", allow_pickle=False).reshape(header.frames_shape, order="F")
+        return np.array(mapped[:frames, rows, cols])
+    pixel = channels * header.dtype.itemsize
+    out = np.empty((min(frames, count), rows.stop - rows.start, cols.stop - cols.start, channels), header.dtype)
+    with open(path, "rb") as handle:
+        for frame in range(out.shape[0]):
+            for index, y in enumerate(range(rows.start, rows.stop)):
+                handle.seek(header.data_offset + ((frame * height + y) * width + cols.start) * pixel)
+                out[frame, index] = np.frombuffer(handle.read(out.shape[2] * pixel), header.dtype).reshape(
+                    out.shape[2], channels)
+    return out
 
 
 def _read_png(path: Path) -> np.ndarray:
@@ -143,10 +253,19 @@ def _read_png(path: Path) -> np.ndarray:
         header = handle.read(33)
     if header[:8] != PNG_SIGNATURE:
         raise InputError(path, "not a PNG file (bad signature)")
+    if len(header) < 33 or header[12:16] != b"IHDR":
+        raise InputError(path, "truncated or corrupt PNG (no IHDR header first)")
+    width, height = struct.unpack(">II", header[16:24])
     bit_depth, colour_type = header[24], header[25]
+    channels = PNG_DECODED_CHANNELS.get(colour_type, 4)
+    check_declared_size(path, height, width, channels, np.uint16 if bit_depth == 16 else np.uint8)
     if bit_depth == 16 and colour_type in (2, 4, 6):  # Pillow would reduce these to 8 bits
         return _png16_decode(path)[0][None]
-    with Image.open(path) as image:
+    _raise_pillow_limit()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", Image.DecompressionBombWarning)  # our own limit was checked above
+        image = Image.open(path)
+    with image:
         image.load()
         if image.mode == "P":
             image = image.convert("RGBA" if "transparency" in image.info else "RGB")
@@ -160,10 +279,36 @@ def _read_png(path: Path) -> np.ndarray:
     return array[None]
 
 
+def _raise_pillow_limit() -> None:
+    """Let Pillow decode what our own limit (already checked) allows: Pillow warns over its threshold and
+    refuses at twice it, so a raised ``GRAINWRIGHT_MAX_PIXELS`` raises Pillow's too (never lowers it)."""
+    from PIL import Image
+
+    limit = current_limits().max_pixels
+    if Image.MAX_IMAGE_PIXELS is not None and limit > Image.MAX_IMAGE_PIXELS:
+        Image.MAX_IMAGE_PIXELS = limit
+
+
+def _series_size(path: Path, shape: tuple[int, ...], axes: str) -> tuple[int, int, int, int]:
+    """``(frames, height, width, channels)`` of a tifffile series from its declared shape and axes."""
+    if "Y" not in axes or "X" not in axes:
+        raise InputError(path, f"TIFF series with axes '{axes}' has no image plane")
+    sizes = dict(zip(axes, shape))
+    frames = int(np.prod([size for axis, size in zip(axes, shape) if axis not in "YXSC"], dtype=np.int64))
+    channels = int(np.prod([size for axis, size in zip(axes, shape) if axis in "SC"], dtype=np.int64))
+    return frames, int(sizes["Y"]), int(sizes["X"]), channels
+
+
 def _read_tiff(path: Path) -> np.ndarray:
     import tifffile
 
     with tifffile.TiffFile(path) as tiff:
+        declared = [(_series_size(path, series.shape, series.axes), series.dtype) for series in tiff.series]
+        if declared:
+            frames = sum(size[0] for size, _ in declared)
+            (_, height, width, channels), dtype = declared[0]
+            if not within_limits(height, width, channels, dtype, frames):
+                check_declared_size(path, height, width, channels, dtype, frames, streamable=can_stream(path))
         stacks = [_series_to_frames(path, series.asarray(), series.axes) for series in tiff.series]
     if not stacks:
         raise InputError(path, "TIFF file holds no image")
@@ -389,6 +534,8 @@ def read_text(path: str | Path) -> str | None:
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 PNG_COLOUR_TYPES = {1: 0, 2: 4, 3: 2, 4: 6}  # channels -> PNG colour type
 PNG_CHANNELS = {value: key for key, value in PNG_COLOUR_TYPES.items()}
+# Channels a PNG colour type decodes to here (palette files become RGB or RGBA; counted as RGB).
+PNG_DECODED_CHANNELS = {0: 1, 2: 3, 3: 3, 4: 2, 6: 4}
 
 
 def _png_chunk(kind: bytes, data: bytes) -> bytes:
@@ -449,8 +596,13 @@ def _png16_decode(path: Path) -> tuple[np.ndarray, str | None]:
         raise InputError(path, "interlaced 16-bit PNG is not supported; save it without interlacing or as TIFF")
     channels = PNG_CHANNELS[colour]
     stride = width * channels * 2
-    raw = zlib.decompress(b"".join(compressed))
-    if len(raw) != height * (stride + 1):
+    check_declared_size(path, height, width, channels, np.uint16)
+    expected = height * (stride + 1)
+    # Inflate no more than the header declares: a stream longer than that is refused, not held in memory.
+    raw = zlib.decompressobj().decompress(b"".join(compressed), expected + 1)
+    if len(raw) > expected:
+        raise InputError(path, "corrupt PNG (image data longer than the header says)")
+    if len(raw) != expected:
         raise InputError(path, "truncated PNG (image data shorter than the header says)")
     lines = np.frombuffer(raw, np.uint8).reshape(height, stride + 1)
     pixels = _png_unfilter(path, lines[:, 0], lines[:, 1:], width, channels * 2)

@@ -5,8 +5,9 @@ reader never memory-maps the file: it seeks to each strip or tile (the TIFF 6.0 
 decodes it with tifffile's codec for that page and keeps only the rows asked for. The writer hands tifffile an
 iterator of tiles, which tifffile encodes and writes one at a time.
 
-Pages that cannot be read piecewise (compressed with the whole image in one strip) are reported by
-:func:`can_stream` so the caller decodes them whole instead.
+Pages that cannot be read piecewise (compressed with the whole image in one strip, or strips or tiles larger than
+the frame limit of :mod:`grainwright.inference.images.limits`) are reported by :func:`can_stream` so the caller
+decodes them whole instead, which the size limits then govern.
 """
 from __future__ import annotations
 
@@ -18,6 +19,7 @@ import tifffile
 
 from grainwright.inference.common.atomic import atomic_path
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.limits import current_limits
 
 # Frames at least this large (pixels) are streamed when they can be; smaller ones are decoded whole, which is
 # faster and bounded anyway (a 16-bit 4-megapixel frame is 8 MB).
@@ -35,7 +37,9 @@ def _page_streamable(page: tifffile.TiffPage) -> bool:
     if page.dtype is None or page.bitspersample != page.dtype.itemsize * 8 or page.imagedepth != 1:
         return False
     if page.is_tiled or len(page.dataoffsets) > (1 if page.planarconfig == 1 else page.samplesperpixel):
-        return True
+        # each strip or tile is decoded whole: one larger than the frame limit would defeat the purpose
+        rows, columns = (page.tilelength, page.tilewidth) if page.is_tiled else (page.rowsperstrip, page.imagewidth)
+        return min(rows, page.imagelength) * columns <= current_limits().max_pixels
     return page.compression == COMPRESSION_NONE and page.planarconfig == 1 and page.predictor == 1
 
 
@@ -98,20 +102,25 @@ class TiffRowReader:
 
     def read_rows(self, frame: int, y0: int, y1: int) -> np.ndarray:
         """Rows ``y0:y1`` of frame ``frame`` as ``(y1 - y0, W, C)``, native dtype."""
+        return self.read_block(frame, y0, y1, 0, self.shape[1])
+
+    def read_block(self, frame: int, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        """Rows ``y0:y1``, columns ``x0:x1`` of frame ``frame`` as ``(y1 - y0, x1 - x0, C)``, native dtype; decodes
+        only the strips or tiles that hold them."""
         page = self.pages[frame]
         height, width, samples = self.shape
-        if not 0 <= y0 < y1 <= height:
-            raise ValueError(f"rows {y0}:{y1} outside 0:{height}")
+        if not (0 <= y0 < y1 <= height and 0 <= x0 < x1 <= width):
+            raise ValueError(f"block {y0}:{y1}, {x0}:{x1} outside {height} x {width}")
         if not page.is_tiled and len(page.dataoffsets) == 1:  # one uncompressed strip: rows are contiguous
             row_bytes = width * samples * self.dtype.itemsize
             data = self._raw(page.dataoffsets[0] + y0 * row_bytes, (y1 - y0) * row_bytes)
             rows = np.frombuffer(data, self.dtype.newbyteorder(self._tiff.byteorder))
-            return rows.reshape(y1 - y0, width, samples).astype(self.dtype)
-        return self._read_segments(page, y0, y1)
+            return rows.reshape(y1 - y0, width, samples)[:, x0:x1].astype(self.dtype)
+        return self._read_segments(page, y0, y1, x0, x1)
 
-    def _read_segments(self, page: tifffile.TiffPage, y0: int, y1: int) -> np.ndarray:
+    def _read_segments(self, page: tifffile.TiffPage, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         height, width, samples = self.shape
-        out = np.zeros((y1 - y0, width, samples), self.dtype)
+        out = np.zeros((y1 - y0, x1 - x0, samples), self.dtype)
         if page.is_tiled:
             seg_height, seg_width = page.tilelength, page.tilewidth
         else:
@@ -121,7 +130,7 @@ class TiffRowReader:
         planes = samples if page.planarconfig == 2 else 1
         for plane in range(planes):
             for seg_row in range(y0 // seg_height, (y1 - 1) // seg_height + 1):
-                for seg_col in range(across):
+                for seg_col in range(x0 // seg_width, (x1 - 1) // seg_width + 1):
                     index = plane * per_plane + seg_row * across + seg_col
                     count = page.databytecounts[index]
                     if count == 0:
@@ -131,11 +140,10 @@ class TiffRowReader:
                     top, left = seg_row * seg_height, seg_col * seg_width
                     segment = segment[0]  # (rows, cols, samples) of this segment, possibly padded at the edges
                     src_top, src_bottom = max(y0, top) - top, min(y1, top + seg_height, height) - top
-                    cols = min(seg_width, width - left)
+                    src_left, src_right = max(x0, left) - left, min(x1, left + seg_width, width) - left
                     channel = slice(plane, plane + 1) if planes > 1 else slice(None)
-                    out[top + src_top - y0 : top + src_bottom - y0, left : left + cols, channel] = (
-                        segment[src_top:src_bottom, :cols]
-                    )
+                    out[top + src_top - y0 : top + src_bottom - y0, left + src_left - x0 : left + src_right - x0,
+                        channel] = segment[src_top:src_bottom, src_left:src_right]
         return out
 
 

@@ -15,7 +15,7 @@ import numpy as np
 
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.inference.images.crops import centre_crop
-from grainwright.inference.images.imageio import find_images, read_frames
+from grainwright.inference.images.imageio import find_images, read_centre_of_file
 from grainwright.inference.images.layouts import LAYOUT_FOLDERS
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.noise.estimation import (
@@ -31,7 +31,8 @@ from grainwright.inference.noise.models import (
     PoissonGaussianNoise,
 )
 
-# Images larger than this are analysed on their central crop, to bound time and memory.
+# Images larger than this are analysed on their central crop, to bound time and memory; a tiled or striped TIFF
+# or a .npy file is read only there, so it may be of any size (other formats meet the limits of images.limits).
 MAX_ANALYSED_SIDE = 2048
 # Below this noise level (percent of the full range) an image is treated as clean.
 CLEAN_SIGMA_PERCENT = 0.2
@@ -54,6 +55,7 @@ class ImageReport:
     analysis: NoiseAnalysis
     static_stack: bool | None = None
     pair_sigma: list[float] | None = None
+    analysed_shape: list[int] | None = None  # the central crop analysed (and whose values are given)
 
     def to_dict(self) -> dict[str, Any]:
         data = {k: v for k, v in self.__dict__.items() if k != "analysis"}
@@ -123,26 +125,30 @@ def _is_static(first: np.ndarray, second: np.ndarray) -> bool:
 
 def inspect_file(path: Path, role: str, bit_depth: int | None = None, partner: Path | None = None,
                  nonfinite: str = "error") -> ImageReport:
-    """Read one file and analyse its first frame (and, for a partner file or a stack, the pair)."""
-    frames = read_frames(path, nonfinite=nonfinite)
-    if min(frames.shape[1:3]) < MIN_ANALYSED_SIDE:
-        raise InputError(path, f"{frames.shape[1]} x {frames.shape[2]} pixels is too small to analyse its noise "
+    """Read one file's central crop (first two frames) and analyse its first frame (and, for a partner file or
+    a stack, the pair). Range, bit depth and values come from the crop."""
+    crop = read_centre_of_file(path, MAX_ANALYSED_SIDE, frames=2, nonfinite=nonfinite)
+    height, width, _ = crop.shape
+    if min(height, width) < MIN_ANALYSED_SIDE:
+        raise InputError(path, f"{height} x {width} pixels is too small to analyse its noise "
                                f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
+    frames = crop.frames
     norm = Normalization.for_array(frames, bit_depth=bit_depth)
-    image = centre_crop(frames[0], MAX_ANALYSED_SIDE)
+    image = frames[0]
     analysis = analyse_noise(image, low=norm.low, high=norm.high)
     report = ImageReport(
-        path=str(path), role=role, frames=int(frames.shape[0]), shape=list(frames.shape[1:]),
+        path=str(path), role=role, frames=crop.count, shape=list(crop.shape),
         dtype=frames.dtype.name, bit_depth=norm.bit_depth, low=norm.low, high=norm.high,
         minimum=float(frames.min()), maximum=float(frames.max()), analysis=analysis,
+        analysed_shape=list(image.shape) if image.shape != crop.shape else None,
     )
-    if frames.shape[0] > 1:
-        report.static_stack = _is_static(image, centre_crop(frames[1], MAX_ANALYSED_SIDE))
+    if crop.count > 1:
+        report.static_stack = _is_static(image, frames[1])
     if partner is not None:
-        other = read_frames(partner, nonfinite=nonfinite)
-        if other.shape[1:] != frames.shape[1:]:
-            raise InputError(partner, f"shape {other.shape[1:]} does not match {path} {frames.shape[1:]}")
-        difference = centre_crop(other[0], MAX_ANALYSED_SIDE).astype(np.float64) - image.astype(np.float64)
+        other = read_centre_of_file(partner, MAX_ANALYSED_SIDE, frames=1, nonfinite=nonfinite)
+        if other.shape != crop.shape:
+            raise InputError(partner, f"shape {other.shape} does not match {path} {crop.shape}")
+        difference = other.frames[0].astype(np.float64) - image.astype(np.float64)
         spread = difference.reshape(-1, difference.shape[-1]).std(axis=0)
         # noisy minus clean is the noise itself; the difference of two noisy shots has twice its variance.
         report.pair_sigma = [float(s) for s in (spread if role == "noisy+clean" else spread / np.sqrt(2.0))]
@@ -358,9 +364,11 @@ def format_text(report: InspectionReport) -> str:
         depth = f"{image.bit_depth}-bit" if image.bit_depth is not None else "float"
         frames = f", {image.frames} frames" if image.frames > 1 else ""
         lines.append(f"{image.path}  [{image.role}]")
+        crop = (f" in the central {image.analysed_shape[0]} x {image.analysed_shape[1]} analysed"
+                if image.analysed_shape else "")
         lines.append(
             f"  image     {'x'.join(str(s) for s in image.shape)} {image.dtype}, {depth} "
-            f"(full range {image.low:g}..{image.high:g}), values {image.minimum:g}..{image.maximum:g}{frames}"
+            f"(full range {image.low:g}..{image.high:g}), values {image.minimum:g}..{image.maximum:g}{crop}{frames}"
         )
         sigmas = ", ".join(f"{s:.3g}" for s in a.sigma)
         percents = ", ".join(f"{p:.2f}%" for p in a.sigma_percent)

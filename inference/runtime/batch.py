@@ -398,7 +398,8 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
         sample_rows, sample_cols = centre_box(height, width, SAMPLE_EDGE)
 
         def central_sample(frame: int) -> np.ndarray:
-            return reader.read_rows(frame, sample_rows.start, sample_rows.stop)[:, sample_cols]
+            return reader.read_block(frame, sample_rows.start, sample_rows.stop, sample_cols.start,
+                                     sample_cols.stop)
 
         notes = domain_warnings(denoiser, central_sample(0))
         # The kept rectangle is also the output TIFF tile, so it sits on the 16-pixel TIFF grid.
