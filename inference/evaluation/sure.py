@@ -137,6 +137,20 @@ def sure_mse(
         output = denoise(noisy)
     output = np.asarray(output, dtype=np.float64)
 
+    divergence = _weighted_divergence(denoise, noisy, output, variance, weight, epsilon, probes, seed)
+    mse = float(np.sum(weight * (noisy - output) ** 2)) / count - mean_variance + 2.0 * divergence / count
+    mse_standard_error = math.sqrt(2.0 * float(np.sum(variance**2))) / count
+    # Linearised: d(PSNR) = 10 / ln(10) * d(MSE) / MSE.
+    psnr_standard_error = 10.0 / math.log(10.0) * mse_standard_error / mse if mse > 0 else math.inf
+    return SureEstimate(mse=mse, psnr=psnr_from_mse(mse, peak), psnr_standard_error=psnr_standard_error,
+                        divergence=divergence / count / max(mean_variance, 1e-300), epsilon=float(epsilon),
+                        probes=probes)
+
+
+def _weighted_divergence(denoise: Denoise, noisy: np.ndarray, output: np.ndarray, variance: np.ndarray,
+                         weight: np.ndarray, epsilon: float, probes: int, seed: int) -> float:
+    """Monte-Carlo estimate of ``sum(v * d f / d y)`` over the scored elements: the mean over ``probes``
+    standard normal probes ``b`` (zero outside the mask) of ``sum(v * b * (f(y + eps * b) - f(y))) / eps``."""
     # A spawned stream, so the probe never replays a noise field drawn with default_rng(seed) (a probe equal to
     # the noise would bias the divergence).
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(1,)))
@@ -145,24 +159,7 @@ def sure_mse(
         probe = rng.standard_normal(noisy.shape) * weight
         perturbed = np.asarray(denoise(noisy + epsilon * probe), dtype=np.float64)
         divergence += float(np.sum(variance * probe * (perturbed - output))) / epsilon
-    divergence /= probes
-
-    mse = float(np.sum(weight * (noisy - output) ** 2)) / count - mean_variance + 2.0 * divergence / count
-    mse_standard_error = math.sqrt(2.0 * float(np.sum(variance**2))) / count
-    psnr = psnr_from_mse(mse, peak)
-    if mse > 0:
-        # Linearised: d(PSNR) = 10 / ln(10) * d(MSE) / MSE.
-        psnr_standard_error = 10.0 / math.log(10.0) * mse_standard_error / mse
-    else:
-        psnr_standard_error = math.inf
-    return SureEstimate(
-        mse=mse,
-        psnr=psnr,
-        psnr_standard_error=psnr_standard_error,
-        divergence=divergence / count / max(mean_variance, 1e-300),
-        epsilon=float(epsilon),
-        probes=probes,
-    )
+    return divergence / probes
 
 
 def sure_mse_stabilized(
