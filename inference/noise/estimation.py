@@ -630,72 +630,45 @@ def _variance_exponent(fit: PoissonGaussianFit, low: float) -> float | None:
     return float(slope)
 
 
-def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None) -> NoiseAnalysis:
-    """Estimate and characterise the noise of one image and suggest a model, a transform and corrections.
+def _suggested_model(fit: PoissonGaussianFit, exponent: float | None, sigma: np.ndarray, low: float,
+                     span: float) -> tuple[Any, str, str | None, bool, list[str]]:
+    """The noise model (working units) the variance-versus-signal fit points to: gamma speckle when the variance
+    grows about as the signal squared, Poisson-Gaussian when it grows with the signal, else Gaussian. Returns the
+    model, its kind, the transform to train in, whether the fit is trusted and the notes saying why."""
+    from grainwright.inference.noise.models import GammaSpeckle, GaussianNoise, PoissonGaussianNoise
 
-    Parameters
-    ----------
-    image : array
-        ``(H, W)`` or ``(H, W, C)``, native values.
-    low, high : float
-        The full range (e.g. ``Normalization.low`` / ``.high``: 0 and 4095 for 12-bit data); ``high`` defaults
-        to the image's maximum.
-
-    Returns
-    -------
-    NoiseAnalysis
-    """
-    from grainwright.inference.noise.models import (
-        GammaSpeckle,
-        GaussianNoise,
-        ImpulseNoise,
-        MixtureNoise,
-        PoissonGaussianNoise,
-    )
-
-    image = _as_hwc(image).astype(np.float64)
-    if min(image.shape[:2]) < MIN_ANALYSED_SIDE:
-        raise ValueError(f"an image of {image.shape[0]} x {image.shape[1]} pixels is too small to analyse its noise "
-                         f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
-    high = float(image.max()) if high is None else float(high)
-    span = high - low if high > low else 1.0
-    sigma = estimate_sigma(image)
-    fit = fit_poisson_gaussian(image)
-    exponent = _variance_exponent(fit, low)
-    local_sigma = None
-    if fit.signal_dependent:
-        local_sigma = fit.sigma_at(ndimage.median_filter(image, size=(3, 3, 1), mode="mirror"))
-    impulse = detect_impulses(image, noise_sigma=local_sigma)
-    correlation = detect_correlation(image)
-    banding = detect_banding(image)
     notes: list[str] = []
-
     working_gain = fit.gain / span
     working_intercept = (fit.gain * low + fit.intercept) / span**2
     if fit.signal_dependent and exponent is not None and exponent > 1.6:
         levels, variances = np.asarray(fit.levels) - low, np.asarray(fit.variances)
         looks = float(np.median(levels[levels > 0] ** 2 / variances[levels > 0]))
-        model, kind, transform = GammaSpeckle(looks=looks), "speckle-gamma", "log"
-        confident = fit.confident
         notes.append(f"noise grows in proportion to the signal (variance exponent {exponent:.1f}): "
                      "multiplicative speckle; train in the log domain")
-    elif fit.signal_dependent:
+        return GammaSpeckle(looks=looks), "speckle-gamma", "log", fit.confident, notes
+    if fit.signal_dependent:
         read = float(np.sqrt(max(working_intercept, 0.0)))
-        model, kind, transform = PoissonGaussianNoise(gain=working_gain, read=read), "poisson-gaussian", "anscombe"
-        confident = fit.confident
         notes.append("noise grows with the signal (shot noise): Poisson-Gaussian model, train in the "
                      "generalized-Anscombe domain")
-        if not confident:
+        if not fit.confident:
             notes.append("the Poisson-Gaussian fit is uncertain (few flat regions, narrow or clipped signal range)")
         if working_intercept < 0:
             notes.append(
                 f"the fitted variance reaches zero at a signal of {-fit.intercept / max(fit.gain, 1e-30):.4g} "
                 "(native): a black-level offset (pedestal); read noise cannot be separated from it and is set to 0"
             )
-    else:
-        model = GaussianNoise(sigma=float(np.mean(sigma)) / span)
-        kind, transform, confident = "gaussian", None, True
-        notes.append("noise level does not depend on the signal: additive Gaussian model")
+        model = PoissonGaussianNoise(gain=working_gain, read=read)
+        return model, "poisson-gaussian", "anscombe", fit.confident, notes
+    notes.append("noise level does not depend on the signal: additive Gaussian model")
+    return GaussianNoise(sigma=float(np.mean(sigma)) / span), "gaussian", None, True, notes
+
+
+def _with_flags(model: Any, kind: str, confident: bool, notes: list[str], impulse: ImpulseFlag,
+                banding: BandingFlag, correlation: CorrelationFlag) -> tuple[Any, str, bool]:
+    """Impulses join the model as a mixture; banding and correlation add their advice to ``notes``; impulses
+    and correlation make the suggestion uncertain."""
+    from grainwright.inference.noise.models import ImpulseNoise, MixtureNoise
+
     if impulse.flagged:
         model = MixtureNoise(components=[model, ImpulseNoise(fraction=min(1.0, 2.0 * impulse.fraction))])
         kind += "+impulse"
@@ -712,6 +685,41 @@ def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None
             f"{correlation.vertical:.2f}): self-supervised schemes assume pixel-independent noise and will keep "
             "part of it; prefer pairs (supervised or Noise2Noise) or raw, undemosaiced, unsharpened data"
         )
+    return model, kind, confident
+
+
+def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None) -> NoiseAnalysis:
+    """Estimate and characterise the noise of one image and suggest a model, a transform and corrections.
+
+    Parameters
+    ----------
+    image : array
+        ``(H, W)`` or ``(H, W, C)``, native values.
+    low, high : float
+        The full range (e.g. ``Normalization.low`` / ``.high``: 0 and 4095 for 12-bit data); ``high`` defaults
+        to the image's maximum.
+
+    Returns
+    -------
+    NoiseAnalysis
+    """
+    image = _as_hwc(image).astype(np.float64)
+    if min(image.shape[:2]) < MIN_ANALYSED_SIDE:
+        raise ValueError(f"an image of {image.shape[0]} x {image.shape[1]} pixels is too small to analyse its noise "
+                         f"(at least {MIN_ANALYSED_SIDE} x {MIN_ANALYSED_SIDE})")
+    high = float(image.max()) if high is None else float(high)
+    span = high - low if high > low else 1.0
+    sigma = estimate_sigma(image)
+    fit = fit_poisson_gaussian(image)
+    exponent = _variance_exponent(fit, low)
+    local_sigma = None
+    if fit.signal_dependent:
+        local_sigma = fit.sigma_at(ndimage.median_filter(image, size=(3, 3, 1), mode="mirror"))
+    impulse = detect_impulses(image, noise_sigma=local_sigma)
+    correlation = detect_correlation(image)
+    banding = detect_banding(image)
+    model, kind, transform, confident, notes = _suggested_model(fit, exponent, sigma, low, span)
+    model, kind, confident = _with_flags(model, kind, confident, notes, impulse, banding, correlation)
     return NoiseAnalysis(
         low=float(low),
         high=float(high),
