@@ -150,6 +150,35 @@ def _noise_note(denoiser: OnnxDenoiser) -> str | None:
     return "per pixel from the training noise model" if denoiser.noise_model is not None else None
 
 
+def _checked_jobs(inputs: list[str | Path], out_dir: Path, *, recursive: bool, out_format: str | None,
+                  into_input_folder: bool) -> list[Job]:
+    """The files to denoise and their outputs; refuses an unknown format, no inputs, and (unless
+    ``into_input_folder``) an output folder that holds an input."""
+    suffix = None if out_format is None else "." + out_format.lower().lstrip(".")
+    if suffix is not None and suffix not in SUPPORTED_SUFFIXES:
+        raise GrainwrightError(f"--format must be one of {', '.join(s[1:] for s in SUPPORTED_SUFFIXES)}")
+    jobs = plan_jobs(inputs, out_dir, recursive=recursive, suffix=suffix)
+    if not jobs:
+        raise GrainwrightError("no input images found (supported: " + ", ".join(SUPPORTED_SUFFIXES) + ")")
+    if not into_input_folder:
+        for job in jobs:
+            if job.output.parent.resolve() == job.source.parent.resolve():
+                raise GrainwrightError(f"output folder {job.output.parent} holds the input {job.source}; choose "
+                                       "another -o folder, or allow it with --into-input-folder")
+    return jobs
+
+
+def _refuse_mixed_outputs(jobs: list[Job], expected: dict[str, Any], out_dir: Path) -> None:
+    """Refuse to go on when existing outputs were made with another model or other settings."""
+    changed = [job.output for job in jobs if job.output.exists()
+               and (record := read_record(job.output)) is not None and not _same_run(record, expected)]
+    if changed:
+        raise GrainwrightError(
+            f"{len(changed)} existing output(s) in {out_dir} were made with another model or other settings "
+            f"(first: {changed[0]}); use --overwrite to redo them, --keep-mixed to keep them and go on, or "
+            "another -o folder")
+
+
 def denoise_files(
     denoiser: OnnxDenoiser,
     inputs: list[str | Path],
@@ -203,27 +232,11 @@ def denoise_files(
     if fixed_pattern not in FIXED_PATTERN_MODES:
         raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
                                f"got {fixed_pattern!r}")
-    out_dir = Path(out_dir)
-    suffix = None if out_format is None else "." + out_format.lower().lstrip(".")
-    if suffix is not None and suffix not in SUPPORTED_SUFFIXES:
-        raise GrainwrightError(f"--format must be one of {', '.join(s[1:] for s in SUPPORTED_SUFFIXES)}")
-    jobs = plan_jobs(inputs, out_dir, recursive=recursive, suffix=suffix)
-    if not jobs:
-        raise GrainwrightError("no input images found (supported: " + ", ".join(SUPPORTED_SUFFIXES) + ")")
-    if not into_input_folder:
-        for job in jobs:
-            if job.output.parent.resolve() == job.source.parent.resolve():
-                raise GrainwrightError(f"output folder {job.output.parent} holds the input {job.source}; choose "
-                                       "another -o folder, or allow it with --into-input-folder")
+    jobs = _checked_jobs(inputs, Path(out_dir), recursive=recursive, out_format=out_format,
+                         into_input_folder=into_input_folder)
     expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
     if not overwrite and not keep_mixed:
-        changed = [job.output for job in jobs if job.output.exists()
-                   and (record := read_record(job.output)) is not None and not _same_run(record, expected)]
-        if changed:
-            raise GrainwrightError(
-                f"{len(changed)} existing output(s) in {out_dir} were made with another model or other settings "
-                f"(first: {changed[0]}); use --overwrite to redo them, --keep-mixed to keep them and go on, or "
-                "another -o folder")
+        _refuse_mixed_outputs(jobs, expected, Path(out_dir))
 
     files_bar = tqdm(total=len(jobs), unit="file", disable=not progress, position=0)
     tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)
