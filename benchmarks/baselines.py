@@ -57,6 +57,41 @@ def _write_json(path: Path, payload: dict[str, Any]) -> None:
     write_text_atomic(path, json.dumps(payload, indent=2))
 
 
+def _summary(rows: dict[str, dict[str, list]]) -> list[dict[str, Any]]:
+    """Per method over all images: mean PSNR (defaults and tuned), seconds and CPU seconds per megapixel, and the
+    CPU time against the reference method's."""
+    reference = rows.get(REFERENCE_METHOD)
+    reference_cpu = sum(reference["cpu"]) / sum(reference["megapixels"]) if reference else None
+    summary = []
+    for row, record in rows.items():
+        megapixels = sum(record["megapixels"])
+        cpu_rate = sum(record["cpu"]) / megapixels
+        summary.append({
+            "method": row,
+            "default_psnr": float(np.mean(record["default"])),
+            "tuned_psnr": None if np.isnan(record["tuned"]).all() else float(np.nanmean(record["tuned"])),
+            "seconds_per_megapixel": sum(record["seconds"]) / megapixels,
+            "cpu_seconds_per_megapixel": cpu_rate,
+            # CPU time: less disturbed than wall time by other jobs on a shared machine.
+            f"cpu_time_vs_{REFERENCE_METHOD}": cpu_rate / reference_cpu if reference_cpu else None,
+        })
+    return summary
+
+
+def _print_table(summary: list[dict[str, Any]], sigma_8bit: float, image_count: int, grid_kind: str) -> None:
+    print(f"\nGaussian sigma {sigma_8bit:g}/255, {image_count} image(s), mean PSNR; "
+          f"'tuned' = {GROUND_TRUTH_LABEL} ({grid_kind} grid); one run, shared machine: compare ratios")
+    header = (f"{'method':<34} {'default dB':>10} {'tuned dB':>9} {'s/MP':>9} {'CPU s/MP':>9} "
+              f"{'CPU vs ' + REFERENCE_METHOD:>11}")
+    print(header)
+    print("-" * len(header))
+    for item in summary:
+        tuned = "-" if item["tuned_psnr"] is None else f"{item['tuned_psnr']:.2f}"
+        ratio = item[f"cpu_time_vs_{REFERENCE_METHOD}"]
+        print(f"{item['method']:<34} {item['default_psnr']:>10.2f} {tuned:>9} {item['seconds_per_megapixel']:>9.3f} "
+              f"{item['cpu_seconds_per_megapixel']:>9.3f} {'-' if ratio is None else f'{ratio:.3g}x':>11}")
+
+
 def run_bench(args: argparse.Namespace) -> int:
     """Run ``grainwright bench baselines`` (the arguments of :mod:`grainwright.console.commands.bench_baselines`)."""
     names = list(BASELINES) if args.methods == "all" else [m.strip() for m in args.methods.split(",") if m.strip()]
@@ -106,33 +141,8 @@ def run_bench(args: argparse.Namespace) -> int:
             record["megapixels"].append(megapixels)
         per_image.append(entry)
 
-    reference = rows.get(REFERENCE_METHOD)
-    reference_cpu = sum(reference["cpu"]) / sum(reference["megapixels"]) if reference else None
-    summary = []
-    for row, record in rows.items():
-        megapixels = sum(record["megapixels"])
-        cpu_rate = sum(record["cpu"]) / megapixels
-        summary.append({
-            "method": row,
-            "default_psnr": float(np.mean(record["default"])),
-            "tuned_psnr": None if np.isnan(record["tuned"]).all() else float(np.nanmean(record["tuned"])),
-            "seconds_per_megapixel": sum(record["seconds"]) / megapixels,
-            "cpu_seconds_per_megapixel": cpu_rate,
-            # CPU time: less disturbed than wall time by other jobs on a shared machine.
-            f"cpu_time_vs_{REFERENCE_METHOD}": cpu_rate / reference_cpu if reference_cpu else None,
-        })
-
-    print(f"\nGaussian sigma {args.sigma:g}/255, {len(images)} image(s), mean PSNR; "
-          f"'tuned' = {GROUND_TRUTH_LABEL} ({grid_kind} grid); one run, shared machine: compare ratios")
-    header = (f"{'method':<34} {'default dB':>10} {'tuned dB':>9} {'s/MP':>9} {'CPU s/MP':>9} "
-              f"{'CPU vs ' + REFERENCE_METHOD:>11}")
-    print(header)
-    print("-" * len(header))
-    for item in summary:
-        tuned = "-" if item["tuned_psnr"] is None else f"{item['tuned_psnr']:.2f}"
-        ratio = item[f"cpu_time_vs_{REFERENCE_METHOD}"]
-        print(f"{item['method']:<34} {item['default_psnr']:>10.2f} {tuned:>9} {item['seconds_per_megapixel']:>9.3f} "
-              f"{item['cpu_seconds_per_megapixel']:>9.3f} {'-' if ratio is None else f'{ratio:.3g}x':>11}")
+    summary = _summary(rows)
+    _print_table(summary, args.sigma, len(images), grid_kind)
 
     if args.json:
         _write_json(Path(args.json), {

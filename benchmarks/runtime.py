@@ -125,6 +125,53 @@ def _peak_rss(denoise_command: list[str], model: Path, megapixels: int, threads:
             "seconds": seconds, "command": " ".join(command[1:])}
 
 
+def _throughput(fp32: OnnxDenoiser, quantised: OnnxDenoiser | None, image: np.ndarray, tiles: list[int],
+                repeat: int, folder: Path, rate: Callable[[float], dict[str, float]]) -> dict[str, Any]:
+    """The bare session call against the file-to-file path (FP32, and INT8 when given) and the file-to-file path
+    by kept-tile edge: ``repeat`` rounds interleaved so that load changes hit every contender alike, medians
+    reported (figures ``raw_seconds``, ``throughput`` and ``tile_sweep``)."""
+    source = write_image(folder / "in" / "frame.tif", image)
+    contenders = {"fp32": fp32} | ({"int8": quantised} if quantised else {})
+    for denoiser in contenders.values():  # warm up kernels and arenas on a small image
+        denoiser.run(image[:256, :256])
+    timings: dict[str, list[float]] = {}
+    default_tile = fp32.tile
+    for _ in range(repeat):
+        for label, denoiser in contenders.items():
+            timings.setdefault(f"{label} bare", []).append(_timed(_bare_call(denoiser, image)))
+            timings.setdefault(f"{label} file", []).append(
+                _timed(_file_path(denoiser, source, folder / f"out-{label}")))
+        for tile in tiles:
+            fp32.tile = tile
+            timings.setdefault(f"tile {tile}", []).append(_timed(_file_path(fp32, source, folder / "out-tile")))
+        fp32.tile = default_tile
+    medians = {key: statistics.median(values) for key, values in timings.items()}
+    throughput = {key: rate(value) for key, value in medians.items() if not key.startswith("tile")}
+    for label in contenders:
+        throughput[f"{label} file/bare"] = medians[f"{label} bare"] / medians[f"{label} file"]
+    if quantised:
+        throughput["int8/fp32 bare speed"] = medians["fp32 bare"] / medians["int8 bare"]
+        throughput["int8/fp32 file speed"] = medians["fp32 file"] / medians["int8 file"]
+    tile_sweep = {
+        tile: {**rate(medians[f"tile {tile}"]), "file/bare": medians["fp32 bare"] / medians[f"tile {tile}"],
+               "overlap_cost": _computed_overhead(fp32, image.shape[0], tile)}
+        for tile in tiles
+    }
+    return {"raw_seconds": timings, "throughput": throughput, "tile_sweep": tile_sweep}
+
+
+def _per_frame(model: Path, int8: Path | None, image: np.ndarray) -> dict[str, float]:
+    """Seconds per 1-megapixel frame (1024 x 1024, in memory) at 1 and 2 threads, FP32 and INT8 when given."""
+    frame = image[:1024, :1024]
+    per_frame = {}
+    for threads in (1, 2):
+        for label, path in [("fp32", model)] + ([("int8", int8)] if int8 is not None else []):
+            denoiser = OnnxDenoiser(path, threads=threads)
+            denoiser.run(image[:256, :256])
+            per_frame[f"{label} {threads} thread(s)"] = _timed(lambda: denoiser.run(frame))
+    return per_frame
+
+
 def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
     """Run ``grainwright bench runtime`` (the arguments of :mod:`grainwright.console.commands.bench_runtime`);
     ``denoise_command`` launches ``grainwright denoise`` in a fresh process for the peak-memory runs (the command
@@ -159,45 +206,8 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
 
     with tempfile.TemporaryDirectory(prefix="grainwright-bench-") as temp:
         folder = Path(temp)
-        source = write_image(folder / "in" / "frame.tif", image)
-        small = image[:256, :256]
-        contenders = {"fp32": fp32} | ({"int8": quantised} if quantised else {})
-        for denoiser in contenders.values():  # warm up kernels and arenas on a small image
-            denoiser.run(small)
-        timings: dict[str, list[float]] = {}
-        default_tile = fp32.tile
-        for _ in range(args.repeat):  # interleaved so that load changes hit every contender alike
-            for label, denoiser in contenders.items():
-                timings.setdefault(f"{label} bare", []).append(_timed(_bare_call(denoiser, image)))
-                timings.setdefault(f"{label} file", []).append(
-                    _timed(_file_path(denoiser, source, folder / f"out-{label}")))
-            for tile in tiles:
-                fp32.tile = tile
-                timings.setdefault(f"tile {tile}", []).append(_timed(_file_path(fp32, source, folder / "out-tile")))
-            fp32.tile = default_tile
-        figures["raw_seconds"] = timings
-        medians = {key: statistics.median(values) for key, values in timings.items()}
-        figures["throughput"] = {key: rate(value) for key, value in medians.items() if not key.startswith("tile")}
-        for label in contenders:
-            figures["throughput"][f"{label} file/bare"] = medians[f"{label} bare"] / medians[f"{label} file"]
-        if quantised:
-            figures["throughput"]["int8/fp32 bare speed"] = medians["fp32 bare"] / medians["int8 bare"]
-            figures["throughput"]["int8/fp32 file speed"] = medians["fp32 file"] / medians["int8 file"]
-        figures["tile_sweep"] = {
-            tile: {**rate(medians[f"tile {tile}"]), "file/bare": medians["fp32 bare"] / medians[f"tile {tile}"],
-                   "overlap_cost": _computed_overhead(fp32, args.size, tile)}
-            for tile in tiles
-        }
-
-        frame = image[:1024, :1024]
-        per_frame = {}
-        for threads in (1, 2):
-            for label, path in [("fp32", model)] + ([("int8", int8)] if quantised else []):
-                denoiser = OnnxDenoiser(path, threads=threads)
-                denoiser.run(small)
-                per_frame[f"{label} {threads} thread(s)"] = _timed(lambda: denoiser.run(frame))
-        figures["seconds_per_1mp_frame"] = per_frame
-
+        figures.update(_throughput(fp32, quantised, image, tiles, args.repeat, folder, rate))
+        figures["seconds_per_1mp_frame"] = _per_frame(model, int8 if quantised else None, image)
         rss_model = Path(args.rss_model) if args.rss_model else model
         figures["peak_rss"] = [_peak_rss(denoise_command, rss_model, size, args.threads, folder) for size in rss_sizes]
         if len(figures["peak_rss"]) >= 2:
