@@ -201,6 +201,36 @@ def _best(results: dict[str, Any], names: list[str]) -> str:
     return max(done, key=lambda name: results["trials"][name]["mean"]["1"])
 
 
+def _winner(results: dict[str, Any]) -> dict[str, Any]:
+    """The spec of the best Gaussian trial outside the long runs."""
+    gaussian = [key for key, record in results["trials"].items()
+                if record["spec"]["case"] == "gaussian" and record["stage"] != "long"]
+    return results["trials"][_best(results, gaussian)]["spec"]
+
+
+def _stage_plan(stage: str, results: dict[str, Any],
+                args: argparse.Namespace) -> tuple[list[dict[str, Any]], float, str, int | None]:
+    """A stage's trials (built on the results so far), CPU-seconds each, the suffix of their names and the fixed
+    step count (None: by CPU time)."""
+    trials = results["trials"]
+    if stage == "architecture":
+        return architecture_trials(), args.cpu_seconds, "", None
+    if stage == "larger":
+        return larger_trials(), args.cpu_seconds, "", None
+    if stage == "regime":
+        architecture = _best(results, [spec["name"] for spec in architecture_trials()])
+        return regime_trials(trials[architecture]["spec"]), args.cpu_seconds, "", None
+    if stage == "noise":
+        residuals = [key for key, record in trials.items()
+                     if record["spec"]["case"] == "gaussian" and record["spec"]["model"] == "residual"]
+        return noise_trials(trials[_best(results, residuals)]["spec"]), args.cpu_seconds, "", None
+    if stage == "long" and args.long_steps:
+        return [_winner(results)], 0.0, f", {args.long_steps} steps", args.long_steps
+    if stage == "long":
+        return [_winner(results)], args.long_cpu_seconds, f", {args.long_cpu_seconds:.0f} CPU-s", None
+    raise ConfigError(f"--stages: unknown stage '{stage}' (architecture, larger, regime, noise, long)")
+
+
 def run_search(args: argparse.Namespace) -> int:
     """Run (or resume) the search; results go to ``args.json`` after every trial.
 
@@ -255,30 +285,10 @@ def run_search(args: argparse.Namespace) -> int:
                                                           for size in ENSEMBLES) + " dB", flush=True)
         return names
 
-    def winner() -> dict[str, Any]:
-        gaussian = [key for key, record in results["trials"].items()
-                    if record["spec"]["case"] == "gaussian" and record["stage"] != "long"]
-        return results["trials"][_best(results, gaussian)]["spec"]
-
     for stage in stages:  # in the order given, each building on what is done so far
-        if stage == "architecture":
-            run_stage(architecture_trials(), stage, args.cpu_seconds)
-        elif stage == "larger":
-            run_stage(larger_trials(), stage, args.cpu_seconds)
-        elif stage == "regime":
-            architecture = _best(results, [spec["name"] for spec in architecture_trials()])
-            run_stage(regime_trials(results["trials"][architecture]["spec"]), stage, args.cpu_seconds)
-        elif stage == "noise":
-            residuals = [key for key, record in results["trials"].items()
-                         if record["spec"]["case"] == "gaussian" and record["spec"]["model"] == "residual"]
-            run_stage(noise_trials(results["trials"][_best(results, residuals)]["spec"]), stage, args.cpu_seconds)
-        elif stage == "long" and args.long_steps:
-            run_stage([winner()], stage, 0.0, suffix=f", {args.long_steps} steps", steps=args.long_steps)
-        elif stage == "long":
-            run_stage([winner()], stage, args.long_cpu_seconds, suffix=f", {args.long_cpu_seconds:.0f} CPU-s")
-        else:
-            raise ConfigError(f"--stages: unknown stage '{stage}' (architecture, larger, regime, noise, long)")
-    results["winner"] = winner()
+        specs, cpu_seconds, suffix, steps = _stage_plan(stage, results, args)
+        run_stage(specs, stage, cpu_seconds, suffix, steps)
+    results["winner"] = _winner(results)
     _save(path, results)
     print(render_markdown(results))
     return 0
