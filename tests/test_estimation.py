@@ -167,3 +167,18 @@ def test_analyse_noise_names_the_model_and_transform(noise, kind, transform):
         if key != "kind":
             assert model[key] == pytest.approx(value, rel=0.15, abs=0.002)
     assert analysis.to_dict()["model"]["kind"] == kind
+
+
+def test_speckle_over_a_narrow_signal_span_is_still_called_speckle():
+    """Gamma speckle (4 looks) on a scene whose flat regions span less than a factor of 2 of signal: variance grows
+    as the square of the signal (exponent 2); Poisson-Gaussian noise on the same scene as its first power.
+    Open data: scikit-image's camera, squeezed into [0.3, 0.5] of the range."""
+    rng = np.random.default_rng(5)
+    clean = 0.3 + 0.2 * SAMPLES["camera"]()[:256, :256] / 255.0
+    analysis = analyse_noise(clean * rng.gamma(4.0, 1.0 / 4.0, clean.shape), 0.0, 2.0)
+    levels = np.asarray(analysis.fit.levels)
+    assert levels.max() < 2.0 * levels.min()  # the case the analysis could not judge before
+    assert analysis.kind.startswith("speckle-gamma") and analysis.transform == "log"
+    assert analysis.variance_exponent == pytest.approx(2.0, abs=0.3)
+    shot = analyse_noise(0.01 * rng.poisson(clean / 0.01) + 0.002 * rng.standard_normal(clean.shape), 0.0, 2.0)
+    assert shot.kind.startswith("poisson-gaussian") and shot.variance_exponent == pytest.approx(1.0, abs=0.3)

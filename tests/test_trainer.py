@@ -377,3 +377,63 @@ def test_impulses_on_some_images_do_not_split_the_vote_on_the_noise_kind():
     found = summarise_noise(analyses)
     assert found.kind == "speckle-gamma" and found.transform == "log" and found.kind_images == 4
     assert found.model.looks == pytest.approx(3.5) and found.flags["impulse"] == 2
+
+
+@pytest.mark.parametrize("option, value", [("--minutes", "0"), ("--steps", "0"), ("--minutes", "-1"),
+                                           ("--steps", "-3")])
+def test_zero_or_negative_budgets_are_refused_with_one_line(tmp_path, capsys, option, value):
+    folder = _noisy_folder(tmp_path / "data")
+    assert main(["train", "--data", str(folder), option, value, "--out", str(tmp_path / "run")]) == 2
+    error = capsys.readouterr().err.strip()
+    assert len(error.splitlines()) == 1 and f"{option} must be a positive number" in error
+    assert not (tmp_path / "run").exists()
+    with pytest.raises(ConfigError, match="both budget.steps and budget.minutes are 0"):
+        train_command(None, str(folder), out=str(tmp_path / "run"), announce=_quiet,
+                      assignments=["budget.steps=0", "budget.minutes=0"])
+
+
+class _Killed(BaseException):
+    """Stands in for kill -9: nothing after it runs (no finally-block saves in the loop catch it)."""
+
+
+def _kill_at_step(monkeypatch, step: int) -> None:
+    import grainwright.trainer.loop as loop
+
+    real, calls = loop.training_step, {"count": 0}
+
+    def step_or_die(*args, **kwargs):
+        calls["count"] += 1
+        if calls["count"] > step:
+            raise _Killed()
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(loop, "training_step", step_or_die)
+
+
+@pytest.mark.slow
+def test_a_kill_after_the_first_validation_keeps_those_steps(tmp_path, monkeypatch):
+    """checkpoint.every_minutes far away: the save after the first validation is what a resume starts from."""
+    folder = _noisy_folder(tmp_path / "data")
+    _kill_at_step(monkeypatch, 15)
+    with pytest.raises(_Killed):
+        train_command(None, str(folder), scheme="neighbor2neighbor", steps=40, out=str(tmp_path / "run"),
+                      announce=_quiet, assignments=TINY + ["checkpoint.every_minutes=100"])
+    assert load_checkpoint(tmp_path / "run" / "checkpoints" / "last.pt")["step"] == 10  # validation every 10 steps
+    monkeypatch.undo()
+    summary, _ = train_command(None, None, resume=str(tmp_path / "run"), announce=_quiet)
+    assert summary["steps"] == 40
+
+
+@pytest.mark.slow
+def test_the_first_checkpoint_interval_is_short(tmp_path, monkeypatch):
+    """Without validation, last.pt is saved after FIRST_SAVE_SECONDS (0 here) rather than every_minutes."""
+    import grainwright.trainer.loop as loop
+
+    folder = _noisy_folder(tmp_path / "data")
+    monkeypatch.setattr(loop, "FIRST_SAVE_SECONDS", 0.0)
+    _kill_at_step(monkeypatch, 5)
+    with pytest.raises(_Killed):
+        train_command(None, str(folder), scheme="neighbor2neighbor", steps=40, out=str(tmp_path / "run"),
+                      announce=_quiet, assignments=TINY + ["checkpoint.every_minutes=100",
+                                                           "validation.every_steps=1000"])
+    assert load_checkpoint(tmp_path / "run" / "checkpoints" / "last.pt")["step"] == 1  # then every 100 minutes

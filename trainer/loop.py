@@ -7,8 +7,11 @@ fraction of ``budget.minutes``. Every ``validation.every_steps`` steps the model
 patches (PSNR/SSIM against ground truth when there is any, else the scheme's own loss with fixed draws); the best
 score is saved as ``checkpoints/best.pt`` (replaced by the final state when the budget completes, unless
 ``validation.keep_final`` is false) and a plateau stops the run. ``checkpoints/last.pt`` is saved every few
-minutes, at the end and on SIGINT/SIGTERM, with the optimiser, schedule, random-generator states and step, so a
-resumed run continues exactly where it stopped.
+minutes (the first time after at most ``FIRST_SAVE_SECONDS``, and again after the first validation), at the end
+and on SIGINT/SIGTERM, with the optimiser, schedule, random-generator states and step, so a resumed run continues
+exactly where it stopped. A run killed without warning (``kill -9``, power loss) loses the steps since the last
+save: at most ``FIRST_SAVE_SECONDS`` or the steps to the first validation early on, at most
+``checkpoint.every_minutes`` later.
 """
 from __future__ import annotations
 
@@ -30,6 +33,9 @@ from grainwright.trainer.schemes.base import Scheme, apply_model
 
 # TensorBoard scalars are means over this many steps: writing four events every step cost ~1% of a step.
 SCALAR_EVERY_STEPS = 10
+# Longest wait for the first last.pt after the one written before the first step (then checkpoint.every_minutes);
+# a save of a small model takes well under a second.
+FIRST_SAVE_SECONDS = 30.0
 
 
 @dataclass
@@ -241,6 +247,7 @@ class _Training:
                                * setup.scheme.forward_passes_per_pixel)
         self.timed_steps, self.timed_seconds = 0, 0.0  # this session's steps only (not a resumed run's earlier)
         self.last_save = time.monotonic()
+        self.saves_this_session = 0
 
     def progress(self) -> float:
         """The fraction of the budget spent: steps over ``budget.steps``, else seconds over ``budget.minutes``."""
@@ -284,10 +291,15 @@ class _Training:
     def save_last(self) -> None:
         save_checkpoint(self.run.last, self._payload(with_resume=True))
         self.last_save = time.monotonic()
+        self.saves_this_session += 1
 
     def save_last_when_due(self) -> None:
-        """``last.pt`` every ``checkpoint.every_minutes`` of wall time."""
-        if time.monotonic() - self.last_save >= self.config["checkpoint"]["every_minutes"] * 60.0:
+        """``last.pt`` every ``checkpoint.every_minutes`` of wall time; the first time after at most
+        ``FIRST_SAVE_SECONDS``, so that a run killed early loses seconds of work, not a whole interval."""
+        interval = self.config["checkpoint"]["every_minutes"] * 60.0
+        if self.saves_this_session <= 1:  # only the save before the first step so far
+            interval = min(interval, FIRST_SAVE_SECONDS)
+        if time.monotonic() - self.last_save >= interval:
             self.save_last()
 
     def validation_due(self) -> bool:
@@ -310,6 +322,8 @@ class _Training:
         else:
             state.stale += 1
         state.elapsed += time.monotonic() - started
+        if len(state.history) == 1:
+            self.save_last()  # the first validation: a kill after it no longer loses every step
 
     def finish(self, stopped: str, log: "_Log") -> None:
         """The final checkpoints: a completed budget validates its final state (and by default keeps it as

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import datetime
 import json
+import math
 import os
 import warnings
 from dataclasses import dataclass
@@ -440,6 +441,10 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
                   announce: Callable[[str], None] = print) -> tuple[dict[str, Any], RunFolder]:
     """Run ``grainwright train``; return the training summary and the run folder."""
     assignments = list(assignments)
+    if steps is not None and not steps > 0:
+        raise ConfigError(f"--steps must be a positive number of optimiser steps, got {steps}")
+    if minutes is not None and not 0 < minutes < math.inf:
+        raise ConfigError(f"--minutes must be a positive number of minutes, got {minutes}")
     if scheme is not None:
         assignments.append(f'scheme="{scheme}"')
     if steps is not None:
@@ -464,6 +469,9 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
             raise ConfigError("--data DIR is required (the folder holding the training images)")
         assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')
         config = load_config(config_path, assignments)
+    if config["budget"]["steps"] == 0 and config["budget"]["minutes"] == 0:
+        raise ConfigError("budget: both budget.steps and budget.minutes are 0, which would train nothing; give "
+                          "--steps N or --minutes N")
     previous_threads = torch.get_num_threads()
     torch.set_num_threads(config["threads"] or physical_cores())
     try:

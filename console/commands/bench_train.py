@@ -15,7 +15,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--schemes", default="supervised,noise2noise,masked,neighbor2neighbor,recorrupted",
                         metavar="LIST", help="comma-separated schemes for the Gaussian case")
     parser.add_argument("--cases", default="gaussian,poisson-gaussian,speckle", metavar="LIST",
-                        help="comma-separated noise cases")
+                        help="comma-separated noise cases (also: speckle-4, gamma speckle of 4 looks trained with the "
+                        "config's own scheme and no noise.toml)")
     parser.add_argument("--config", default="noisy-only", metavar="CONFIG",
                         help="training config for every scheme: a file or a shipped name (default noisy-only: the "
                              "model and patch regime of the recorded size search); its scheme is overridden")

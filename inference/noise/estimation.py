@@ -10,6 +10,8 @@ from scipy import ndimage
 
 # Smallest image side analyse_noise accepts.
 MIN_ANALYSED_SIDE = 8
+# Smallest ratio of the highest to the lowest signal level over which the variance exponent is fitted.
+MIN_EXPONENT_SPAN = 1.4
 # Median of |N(0, 1)|: converts a median absolute deviation to a standard deviation.
 MAD_TO_SIGMA = 0.6744897501960817
 
@@ -552,7 +554,8 @@ class NoiseAnalysis:
         Variance against signal, native units (signal measured from 0, not from ``low``).
     variance_exponent : float or None
         Slope of log(variance) against log(signal above ``low``): about 0 for additive, 1 for Poisson-like
-        and 2 for multiplicative (speckle) noise; None when the signal levels span less than a factor of 2.
+        and 2 for multiplicative (speckle) noise; None when the signal levels span less than a factor of
+        ``MIN_EXPONENT_SPAN`` (1.4).
     impulse, banding, correlation : flags
     kind : str
         The noise model suggested: ``"gaussian"``, ``"poisson-gaussian"`` or ``"speckle-gamma"`` (with
@@ -624,7 +627,9 @@ def _variance_exponent(fit: PoissonGaussianFit, low: float) -> float | None:
     levels = np.asarray(fit.levels) - low
     variances = np.asarray(fit.variances)
     keep = (levels > 0) & (variances > 0)
-    if keep.sum() < 3 or levels[keep].max() < 2.0 * levels[keep].min():
+    # Measured on gamma speckle (4 looks) of bench train's training images: over signal spans of 1.5 to 2 the slope
+    # read 1.74 to 2.15, on Poisson and Poisson-Gaussian data 0.95 to 1.15; below a span of about 1.2 it wanders.
+    if keep.sum() < 3 or levels[keep].max() < MIN_EXPONENT_SPAN * levels[keep].min():
         return None
     slope = np.polyfit(np.log(levels[keep]), np.log(variances[keep]), 1, w=np.sqrt(np.asarray(fit.counts)[keep]))[0]
     return float(slope)
