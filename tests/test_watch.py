@@ -544,3 +544,21 @@ def test_the_command_refuses_bad_settings_in_one_line(folders, model, capsys):
     assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "in")]) == 2
     err = capsys.readouterr().err.splitlines()
     assert len(err) == 2 and "watched folder not found" in err[0] and "must not be the watched folder" in err[1]
+
+
+# -- the benchmark, at toy size -----------------------------------------------------------------------------------
+
+@pytest.mark.slow
+def test_the_watch_benchmark_counts_every_frame_once(tmp_path, model):
+    from grainwright.benchmarks.line_service import rss_growth, run_bench
+
+    lines: list[str] = []
+    launcher = [sys.executable, "-m", "grainwright.console", "watch"]
+    figures = run_bench(model, launcher, frames=4, size=32, threads=1, loads=(0.5,), seconds=1.0, log=lines.append)
+    [load] = figures["load"]
+    assert figures["capacity"]["service_fps"] > 0 and figures["capacity"]["bare_fps"] > 0
+    assert load["dropped"] >= 1 and load["done"] == load["dropped"] and load["drained"]
+    assert load["lost"] == 0 and load["duplicated"] == 0 and load["latency_s"]["p50"] >= 0
+    assert figures["service_exit_code"] == 0 and any("service / bare" in line for line in lines)
+    assert rss_growth([(0.0, 100.0), (300.0, 100.0), (1800.0, 104.0)]) == pytest.approx(0.04)
+    assert rss_growth([(0.0, 100.0), (60.0, 101.0)]) is None

@@ -13,6 +13,7 @@ BENCH_TARGETS: dict[str, str] = {
     "runtime": "grainwright.console.commands.bench_runtime",
     "baselines": "grainwright.console.commands.bench_baselines",
     "sizes": "grainwright.console.commands.bench_sizes",
+    "watch": "grainwright.console.commands.bench_watch",
 }
 
 

@@ -52,7 +52,6 @@ from pathlib import Path
 from typing import Any
 
 from grainwright.inference.common.atomic import (
-    fsync_folder,
     move_file,
     remove_stale_temporaries,
     write_json_atomic,
@@ -221,10 +220,11 @@ def describe_holder(found: dict[str, Any] | None) -> str:
     return f"process {found.get('pid')} on {found.get('host')} since {found.get('since')}"
 
 
-def move_durably(source: Path, target: Path) -> Path:
-    """Move ``source`` to ``target``, or to a free name beside it when taken, durably (a copy, ``fsync`` and
-    delete across filesystems: :func:`grainwright.inference.common.atomic.move_file`). Returns the final path."""
-    return move_file(source, free_name(target))
+def move_durably(source: Path, target: Path, *, durable: bool = True) -> Path:
+    """Move ``source`` to ``target``, or to a free name beside it when taken (a copy, ``fsync`` and delete across
+    filesystems: :func:`grainwright.inference.common.atomic.move_file`; ``durable`` also ``fsync``s both folders).
+    Returns the final path."""
+    return move_file(source, free_name(target), durable=durable)
 
 
 def free_name(target: Path) -> Path:
@@ -615,15 +615,18 @@ class LineService:
             self._compact()
 
     def _dispose_input(self, frame: QueuedFrame, policy: str, folder: Path, label: str) -> None:
-        """Apply an input policy once the outcome is durable; a failure leaves the input where it is."""
+        """Apply an input policy once the outcome is durable; a failure leaves the input where it is.
+
+        The folders are not ``fsync``ed here: the outcome is already in the journal, so a move or delete lost in a
+        power cut only brings the input back, and the restart finishes the move or delete without redoing it.
+        """
         source = frame.arrival.path
         self._dequeue(frame)
         try:
             if policy == "move":
-                move_durably(source, folder / source.name)
+                move_durably(source, folder / source.name, durable=False)
             elif policy == "delete":
                 os.unlink(source)
-                fsync_folder(source.parent)
         except FileNotFoundError:
             pass
         except OSError as error:
