@@ -5,6 +5,7 @@ import errno
 import os
 import shutil
 import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -145,3 +146,36 @@ def test_a_real_full_filesystem(tmp_path, capsys):
             assert imageio.read_frames(path).shape == (1, 256, 300, 1)  # every output left is whole
     finally:
         subprocess.run(["umount", str(small)], capture_output=True)
+
+
+def _without_declared_channels(model: Path) -> Path:
+    import onnx
+
+    graph = onnx.load(str(model))
+    graph.graph.input[0].type.tensor_type.shape.dim[1].dim_param = "C"
+    onnx.save(graph, str(model))
+    return model
+
+
+@pytest.mark.parametrize("declared", [True, False])
+def test_an_rgb_image_into_a_grey_model_without_metadata_gets_one_line(tmp_path, capsys, declared):
+    # A hand-made model without grainwright metadata, run with --receptive-field: with the channel count fixed
+    # in its graph the image is refused before running; with a symbolic one ONNX Runtime's failure is named once.
+    model = build_conv_model(tmp_path / "bare.onnx", metadata=False)
+    if not declared:
+        _without_declared_channels(model)
+    rng = np.random.default_rng(5)
+    write_image(tmp_path / "in" / "colour.png", rng.integers(0, 1000, (40, 48, 3)).astype(np.uint16))
+    write_image(tmp_path / "in" / "grey.png", rng.integers(0, 1000, (40, 48, 1)).astype(np.uint16))
+    code = subprocess.run([sys.executable, "-m", "grainwright.console.cli", "denoise", str(model),
+                           str(tmp_path / "in"), "-o", str(tmp_path / "out"), "--receptive-field", "9", "-q",
+                           "--threads", "1"], capture_output=True, text=True)
+    assert code.returncode == 1 and "done 1, skipped 0, failed 1" in code.stdout
+    assert code.stderr.count("\n") == 1 and "Traceback" not in code.stderr, code.stderr  # one line, nothing else
+    assert code.stderr.startswith(f"failed: {tmp_path / 'in' / 'colour.png'}: ")
+    if declared:
+        assert "image has 3 channel(s), the model bare.onnx takes 1" in code.stderr
+    else:
+        assert "the model failed on this image" in code.stderr
+    assert (tmp_path / "out" / "grey.png").exists()
+

@@ -231,6 +231,7 @@ class OnnxDenoiser:
         options.inter_op_num_threads = 1
         options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
         options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+        options.log_severity_level = 4  # fatal only: a failure is reported once, by the caller, naming the file
         try:
             self.session = ort.InferenceSession(str(self.path), options, providers=["CPUExecutionProvider"])
         except Exception as error:  # ORT raises its own exception types for unreadable graphs
@@ -244,8 +245,11 @@ class OnnxDenoiser:
         inputs = {node.name for node in self.session.get_inputs()}
         if "image" not in inputs:
             raise InputError(self.path, f"model has no input named 'image' (inputs: {sorted(inputs)})")
-        # The graph itself says whether it takes a noise map; hand-supplied figures need not.
+        # The graph itself says whether it takes a noise map and, when fixed, how many channels; hand-supplied
+        # figures need not.
         spec = dataclasses.replace(spec, takes_noise_map="noise_sigma" in inputs)
+        if spec.channels is None:  # metadata (which may stack frames on the channel axis) says it otherwise
+            spec = dataclasses.replace(spec, channels=self._declared_channels())
         self.spec = spec
         if spec.takes_noise_map and noise_sigma == "training" and spec.training_sigma is None:
             raise ConfigError(f"{self.path}: metadata has no training noise level; give a number or 'estimate'")
@@ -256,6 +260,11 @@ class OnnxDenoiser:
         self.strength = float(strength)
         self.noise_sigma = noise_sigma
         self.ensemble = int(ensemble)
+
+    def _declared_channels(self) -> int | None:
+        """The channel count the graph's ``image`` input declares (N x C x H x W), or None when symbolic."""
+        shape = next(node.shape for node in self.session.get_inputs() if node.name == "image")
+        return shape[1] if len(shape) == 4 and isinstance(shape[1], int) and shape[1] > 0 else None
 
     def _read_metadata(self) -> dict[str, Any] | None:
         text = self.session.get_modelmeta().custom_metadata_map.get(METADATA_KEY)
@@ -310,8 +319,11 @@ class OnnxDenoiser:
         return max(1, DEFAULT_BATCH_PIXELS // (height * width))
 
     def check_channels(self, channels: int, path: str | Path | None = None) -> None:
+        """Refuse, before running, an image whose channel count differs from the model's (from its metadata or
+        its graph's declared input)."""
         if self.spec.channels is not None and channels != self.spec.channels:
-            raise InputError(path, f"image has {channels} channel(s), the model takes {self.spec.channels}")
+            raise InputError(path, f"image has {channels} channel(s), the model {self.path.name} takes "
+                                   f"{self.spec.channels}")
 
     def sigma_for(self, image: np.ndarray | None, sigma: float | None = None) -> float | None:
         """Noise-map level in native units before the strength factor (None for models without a map)."""
