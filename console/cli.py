@@ -14,6 +14,7 @@ from types import ModuleType
 from grainwright.console import HELP_CAUTION
 from grainwright.inference import __version__
 from grainwright.inference.common.errors import GrainwrightError
+from grainwright.inference.runtime.faults import os_error_line
 
 COMMANDS: dict[str, str] = {
     "inspect": "grainwright.console.commands.inspect",
@@ -67,6 +68,9 @@ def main(argv: list[str] | None = None) -> int:
     except GrainwrightError as error:
         print(f"grainwright {args.command}: error: {error}", file=sys.stderr)
         return 2
+    except OSError as error:  # a full disk, a read-only mount, a permission: one line, not a traceback
+        print(f"grainwright {args.command}: error: {os_error_line(error)}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print(f"grainwright {args.command}: interrupted", file=sys.stderr)
         return 130

@@ -19,7 +19,7 @@ from typing import Any, Callable
 import numpy as np
 import torch
 
-from grainwright.inference.common.atomic import atomic_folder, write_text_atomic
+from grainwright.inference.common.atomic import atomic_folder, remove_stale_temporaries, write_text_atomic
 from grainwright.inference.common.errors import (
     ConfigError,
     GrainwrightError,
@@ -461,6 +461,8 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         if data is not None:
             assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')
         config = load_config(run.config, assignments)
+        for folder in (run.root, run.checkpoints):
+            remove_stale_temporaries(folder)  # a checkpoint or summary half-written when the run was killed
         state = load_checkpoint(run.last)
         if "step" not in state:
             raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
@@ -484,6 +486,7 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         else:
             stamp = datetime.datetime.now().strftime("%Y%m%d-%H%M%S")
             target = Path(out) if out else Path("runs") / f"{stamp}-{setup.config['scheme']}"
+            remove_stale_temporaries(target.parent)  # run folders of killed runs that never got their name
             run = create_run_folder(target, validate(setup.config), noise)
         announce(f"{LAYOUT_TEXT[layout.name]}: {setup.summary['training_images']} training and "
                  f"{setup.summary['validation_images']} validation images; scheme {setup.config['scheme']}; "

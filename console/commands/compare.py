@@ -3,9 +3,11 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
 
 from grainwright.benchmarks.size_plot import size_search_svg
 from grainwright.console import HELP_CAUTION
+from grainwright.inference.common.atomic import remove_stale_temporaries
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.evaluation.compare import (
     NOISE_CHOICES,
@@ -48,6 +50,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    for folder in (Path(args.out).parent, Path(args.out)):
+        remove_stale_temporaries(folder)  # report folders or files half-written by a killed comparison
     size_plot = None
     if args.size_search:
         if not args.profile:

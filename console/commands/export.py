@@ -2,8 +2,10 @@
 from __future__ import annotations
 
 import argparse
+from pathlib import Path
 
 from grainwright.console.torch_needed import require_torch
+from grainwright.inference.common.atomic import remove_stale_temporaries
 
 HELP = "export a checkpoint or run folder to one self-contained ONNX file, optionally also INT8"
 
@@ -33,6 +35,7 @@ def run(args: argparse.Namespace) -> int:
     require_torch("export")
     from grainwright.models.export import export_checkpoint
 
+    remove_stale_temporaries(Path(args.output).parent)  # ONNX files half-written by a killed export
     result = export_checkpoint(
         args.source, args.output, calibration=args.calibration, int8=args.int8,
         min_int8_psnr=args.min_int8_psnr, overwrite=args.overwrite,

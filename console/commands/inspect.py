@@ -5,6 +5,7 @@ import argparse
 import json
 import sys
 
+from grainwright.inference.common.atomic import remove_stale_temporaries
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.noise.analysis import format_text, inspect_paths
 from grainwright.inference.noise.models import save_noise
@@ -52,6 +53,7 @@ def _save(report, path: str, overwrite: bool) -> None:
     from pathlib import Path
 
     target = Path(path)
+    remove_stale_temporaries(target.parent)
     if target.exists() and not overwrite:
         raise InputError(target, "already exists (use --overwrite to replace it)")
     first = report.images[0]

@@ -38,6 +38,14 @@ def temporary_name(path: Path) -> Path:
     return path.with_name(f".{path.name}{TEMPORARY_MARK}{_host()}.{os.getpid()}.{secrets.token_hex(4)}")
 
 
+def final_path(path: str | Path) -> Path:
+    """The name a temporary file or folder was going to get (``path`` itself when it is not one of ours)."""
+    path = Path(path)
+    if not is_temporary(path):
+        return path
+    return path.with_name(path.name[1:].split(TEMPORARY_MARK, 1)[0])
+
+
 def is_temporary(path: str | Path) -> bool:
     """True for a grainwright temporary file (folder scans skip these)."""
     return TEMPORARY_MARK in Path(path).name and Path(path).name.startswith(".")
@@ -119,9 +127,10 @@ def atomic_path(path: str | Path, *, durable: bool = False) -> Iterator[Path]:
             with open(temporary, "rb+") as handle:
                 os.fsync(handle.fileno())
         os.replace(temporary, path)
-    except BaseException:
+    except BaseException as error:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(temporary)
+        _name_the_file(error, path)
         raise
     if durable:
         fsync_folder(path.parent)
@@ -155,9 +164,17 @@ def atomic_folder(path: str | Path, *, replace_existing: bool = False) -> Iterat
         if path.is_dir():
             path.rmdir()  # only an empty one: rmdir refuses anything else
         os.replace(temporary, path)
-    except BaseException:
+    except BaseException as error:
         shutil.rmtree(temporary, ignore_errors=True)
+        _name_the_file(error, path)
         raise
+
+
+def _name_the_file(error: BaseException, path: Path) -> None:
+    """A failed ``write()`` raises an ``OSError`` without a file name (a full disk, say): record the final name
+    beside it (``error.destination``), so that a one-line message can name the file."""
+    if isinstance(error, OSError) and not hasattr(error, "destination"):
+        error.destination = str(path)
 
 
 def write_bytes_atomic(path: str | Path, data: bytes, *, durable: bool = False) -> Path:

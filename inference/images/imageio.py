@@ -48,7 +48,8 @@ def find_images(paths: str | Path | Iterable[str | Path], recursive: bool = Fals
     ----------
     paths : path or iterable of paths
         Files are kept as given (a missing or unsupported file is kept too, so that reading it reports the
-        problem by name); folders contribute their files with a supported suffix (PNG, TIFF, npy); glob
+        problem by name); folders contribute their files with a supported suffix (PNG, TIFF, npy), except
+        hidden ones (name starting with a dot) and grainwright's temporary files; glob
         patterns (``*``, ``?``, ``[``) contribute their matching supported files.
     recursive : bool
         Descend into sub-folders of the given folders (and let ``**`` in patterns match across folders).
@@ -65,7 +66,8 @@ def find_images(paths: str | Path | Iterable[str | Path], recursive: bool = Fals
         entry = Path(entry)
         if entry.is_dir():
             pattern = "**/*" if recursive else "*"
-            found.extend(sorted(p for p in entry.glob(pattern) if p.is_file() and _supported(p)))
+            found.extend(sorted(p for p in entry.glob(pattern) if p.is_file() and _supported(p)
+                                and not _hidden(p.relative_to(entry))))
         elif entry.exists() or not any(ch in str(entry) for ch in "*?["):
             found.append(entry)
         else:
@@ -77,6 +79,12 @@ def find_images(paths: str | Path | Iterable[str | Path], recursive: bool = Fals
     for path in found:
         unique.setdefault(path, None)
     return list(unique)
+
+
+def _hidden(relative: Path) -> bool:
+    # Hidden files and folders are skipped in folder scans as shell globs skip them: a temporary file of an
+    # older version or another program (".frame03.a1b2.png") is not an image of the set.
+    return any(part.startswith(".") for part in relative.parts)
 
 
 def _supported(path: Path) -> bool:

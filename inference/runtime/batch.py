@@ -13,7 +13,9 @@
   batch whose model or settings changed refuses to start unless the caller allows mixing or overwriting;
 - a file that cannot be processed is reported (one line naming the file and the reason, classified by
   :mod:`grainwright.inference.runtime.faults`) and skipped; the batch goes on, except when the output device is
-  full or read-only, where it stops after that file since every later one would fail the same way.
+  full or read-only, where it stops after that file since every later one would fail the same way;
+- temporary files a killed earlier run left in the output folders are removed before starting (only this
+  host's, whose process is gone: see :func:`grainwright.inference.common.atomic.remove_stale_temporaries`).
 
 :func:`denoise_file` is the per-file engine shared by this batch, the line service and the cluster path.
 """
@@ -32,6 +34,7 @@ import numpy as np
 from tqdm import tqdm
 
 from grainwright.inference import __version__
+from grainwright.inference.common.atomic import remove_stale_temporaries
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.inference.images.crops import centre_box
 from grainwright.inference.images.imageio import (
@@ -237,6 +240,8 @@ def denoise_files(
     expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
     if not overwrite and not keep_mixed:
         _refuse_mixed_outputs(jobs, expected, Path(out_dir))
+    for folder in sorted({job.output.parent for job in jobs}):
+        remove_stale_temporaries(folder)  # what a killed earlier run left; never another host's or live process's
 
     files_bar = tqdm(total=len(jobs), unit="file", disable=not progress, position=0)
     tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)

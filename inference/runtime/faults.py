@@ -17,7 +17,9 @@ permission     the output folder or file may not be written           report, go
 write          any other failure writing the output                   report, go on
 =============  =====================================================  ==========================================
 
-A fault's text is one line naming the file and the operating system's reason. A failed write never leaves a
+A fault's text is one line naming the file and the operating system's reason. Outside the per-file engine, a
+command that fails to write (or read) a file gets one line too (:func:`os_error_line`, used by the command line
+for every command) and exits 1. A failed write never leaves a
 partial output (writes are atomic) and never touches an earlier output of the same name.
 """
 from __future__ import annotations
@@ -26,6 +28,8 @@ import enum
 import errno
 from dataclasses import dataclass
 from pathlib import Path
+
+from grainwright.inference.common.atomic import final_path
 
 
 class FaultKind(enum.Enum):
@@ -104,3 +108,15 @@ def input_fault(error: BaseException, source: Path) -> Fault:
     text = str(error)
     prefix = f"{source}: "
     return Fault(FaultKind.INPUT, source, text[len(prefix):] if text.startswith(prefix) else text)
+
+
+def os_error_line(error: OSError) -> str:
+    """One line for an operating-system error outside the per-file engine (a report, a noise description, a
+    checkpoint, an ONNX file): the file it concerns (the final name, not a temporary one) and the reason."""
+    names = [final_path(name) for name in (error.filename, error.filename2) if name is not None]
+    if not names and getattr(error, "destination", None):  # set by the atomic writers
+        names = [Path(error.destination)]
+    kind = write_fault(error, names[0] if names else Path()).kind
+    reason = "no space left on the device" if kind is FaultKind.NO_SPACE else (error.strerror or str(error))
+    where = " -> ".join(str(name) for name in names)
+    return " ".join((f"{where}: {reason}" if where else reason).split())
