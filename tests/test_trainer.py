@@ -346,6 +346,16 @@ def test_noisy_only_config_on_poisson_gaussian_trains_recorrupted_in_the_anscomb
     assert transform["kind"] == "anscombe" and transform["gain"] == pytest.approx(0.01, rel=0.25)
 
 
+@pytest.mark.slow
+def test_noisy_only_config_on_gaussian_noise_trains_recorrupted_in_the_linear_range(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")  # 8-bit camera crops with Gaussian noise of 25 levels
+    summary, run = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=TINY_UNET)
+    assert summary["noise_kind"] == "gaussian" and summary["scheme"] == "recorrupted"
+    assert summary["transform"] == "none" and summary["transform_decided_by"] == "analysis of the training images"
+    assert load_checkpoint(run.best)["noise"]["sigma"] == pytest.approx(SIGMA / 255, rel=0.15)
+
+
 def test_recorrupted_on_an_uncertain_fit_stops_with_one_line_and_writes_nothing(tmp_path):
     folder = _scenario_folder(tmp_path / "data", "speckle")
     with pytest.raises(ConfigError) as caught:
