@@ -562,3 +562,49 @@ def test_the_watch_benchmark_counts_every_frame_once(tmp_path, model):
     assert figures["service_exit_code"] == 0 and any("service / bare" in line for line in lines)
     assert rss_growth([(0.0, 100.0), (300.0, 100.0), (1800.0, 104.0)]) == pytest.approx(0.04)
     assert rss_growth([(0.0, 100.0), (60.0, 101.0)]) is None
+
+
+def test_a_frame_that_keeps_stopping_the_process_is_quarantined(folders, model):
+    _drop(folders / "in", "poison.png", _frame(90))
+    (folders / "out").mkdir()
+    start = '{"event":"start","input":"poison.png","size":1,"sha256":"x"}\n'
+    (folders / "out" / JOURNAL_NAME).write_text(start * 3)  # three attempts, each ended by the process dying
+    logs: list[str] = []
+    service = _service(folders, model, logs, retries=2, exit_when_idle=0.05)
+    assert service.run() == 1  # idle, with a frame quarantined
+    reason = (folders / "in" / "quarantine" / "poison.png.reason.txt").read_text()
+    assert "gave up after 3 attempts" in reason and not (folders / "out" / "poison.png").exists()
+
+
+def test_lag_is_logged_when_it_grows_and_when_the_queue_drains(folders, model):
+    clock = FakeClock()
+    logs: list[str] = []
+    service = _service(folders, model, logs, clock=clock, lag_warning=5.0)
+    service.open()
+    for index in range(3):
+        _drop(folders / "in", f"f{index}.png", _frame(95 + index))
+    clock.now = time.time() + 60  # the frames arrived a minute ago by this clock
+    service._scan()
+    assert service.lag() > 5.0
+    _drive(service, lambda: service.counters.done == 3)
+    service.close()
+    behind = [line for line in logs if line.startswith("falling behind")]
+    assert len(behind) == 1 and "nothing is dropped" in behind[0]
+    assert any(line.startswith("caught up") for line in logs)
+
+
+def test_the_reload_command_signals_the_holder(folders, model, monkeypatch, capsys):
+    service = _service(folders, model)
+    service.open()
+    received = []
+    previous = signal.signal(signal.SIGHUP, lambda number, frame: received.append(number))
+    try:
+        assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "out"), "--reload"]) == 0
+        deadline = time.monotonic() + 30
+        while not received and time.monotonic() < deadline:
+            time.sleep(0.01)
+    finally:
+        signal.signal(signal.SIGHUP, previous)
+        service.close()
+    assert received == [signal.SIGHUP] and f"process {os.getpid()}" in capsys.readouterr().out
+    assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "out"), "--reload"]) == 2
