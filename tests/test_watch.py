@@ -571,7 +571,7 @@ def test_a_frame_that_keeps_stopping_the_process_is_quarantined(folders, model):
     (folders / "out" / JOURNAL_NAME).write_text(start * 3)  # three attempts, each ended by the process dying
     logs: list[str] = []
     service = _service(folders, model, logs, retries=2, exit_when_idle=0.05)
-    assert service.run() == 1  # idle, with a frame quarantined
+    assert service.run() == 4  # idle, with a frame quarantined
     reason = (folders / "in" / "quarantine" / "poison.png.reason.txt").read_text()
     assert "gave up after 3 attempts" in reason and not (folders / "out" / "poison.png").exists()
 

@@ -1,7 +1,7 @@
-"""``grainwright watch MODEL.onnx IN_DIR -o OUT_DIR``: denoise frames as they arrive in a folder, torn-free.
+"""``grainwright watch MODEL.onnx IN_DIR -o OUT_DIR``: denoise frames as they arrive in a folder, each exactly once.
 
-The line service of :mod:`grainwright.inference.runtime.line_service`; docs/plant-machine.md tells how to run it
-under systemd. Exit codes: 0 stopped by SIGTERM/SIGINT (or idle with --exit-when-idle); 1 idle-stopped with
+The line service of :mod:`grainwright.inference.runtime.line_service`; docs/watch.md tells how to run it
+under systemd. Exit codes: 0 stopped by SIGTERM/SIGINT (or idle with --exit-when-idle); 4 idle-stopped with
 frames quarantined; 2 bad option, model or folder (one line, nothing touched); 3 another instance holds the watched
 or the output folder.
 """
@@ -32,9 +32,9 @@ HELP = "watch a folder and denoise each frame as it arrives (a long-running line
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.epilog = ("exit codes: 0 stopped by SIGTERM/SIGINT or idle; 1 idle-stopped with frames quarantined; "
-                     "2 bad option, model or folder; 3 the folder is held by another instance. SIGHUP reloads the "
-                     "model file.")
+    parser.epilog = ("exit codes: 0 stopped by SIGTERM/SIGINT or idle; 4 idle-stopped with frames quarantined; "
+                     "2 bad option, model or folder; 3 the folder is held by another instance; 1 an unexpected error "
+                     "(traceback). SIGHUP reloads the model file.")
     parser.add_argument("model", help="the .onnx file written by 'grainwright export'")
     parser.add_argument("watch", metavar="IN_DIR", help="the folder frames arrive in (not descended into)")
     parser.add_argument("-o", "--out-dir", required=True,

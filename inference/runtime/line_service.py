@@ -75,7 +75,8 @@ class ExitCode(enum.IntEnum):
     """Exit codes of ``grainwright watch`` (also in the command's help and the plant-machine page)."""
 
     STOPPED = 0  # stopped by SIGTERM/SIGINT (or idle with --exit-when-idle and nothing quarantined)
-    QUARANTINED = 1  # --exit-when-idle: stopped idle, but some frames were quarantined in this run
+    QUARANTINED = 4  # --exit-when-idle: stopped idle, but some frames were quarantined in this run
+    # (1 is left to Python itself: an unexpected error prints a traceback and exits 1)
     USAGE = 2  # bad option, unreadable model, folder missing: one line on stderr, nothing touched
     HELD = 3  # another instance holds the watched or the output folder
 
