@@ -20,6 +20,7 @@ COMMANDS: dict[str, str] = {
     "inspect": "grainwright.console.commands.inspect",
     "train": "grainwright.console.commands.train",
     "export": "grainwright.console.commands.export",
+    "starting-model": "grainwright.console.commands.starting_model",
     "info": "grainwright.console.commands.info",
     "denoise": "grainwright.console.commands.denoise",
     "watch": "grainwright.console.commands.watch",

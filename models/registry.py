@@ -15,11 +15,12 @@ from grainwright.models.multiframe import StackUNetDenoiser
 from grainwright.models.residual import ResidualDenoiser
 from grainwright.models.residual_noisemap import ResidualNoiseMapDenoiser
 from grainwright.models.unet_halfres import UNetHalfResDenoiser
+from grainwright.models.unet_noisemap import UNetNoiseMapDenoiser
 from grainwright.models.unet_small import UNetSmallDenoiser
 
 MODELS: dict[str, type[DenoisingNetwork]] = {
     cls.name: cls for cls in (ResidualDenoiser, ResidualNoiseMapDenoiser, UNetSmallDenoiser, UNetHalfResDenoiser,
-                              StackUNetDenoiser)
+                              StackUNetDenoiser, UNetNoiseMapDenoiser)
 }
 
 
@@ -48,7 +49,7 @@ def build_model(name: str, channels: int, **hyper: Any) -> DenoisingNetwork:
     ----------
     name : str
         A key of ``MODELS``: ``"residual"``, ``"residual-noisemap"``, ``"unet-small"``, ``"unet-halfres"`` or
-        ``"unet-stack"`` (K frames in, the centre frame out).
+        ``"unet-stack"`` (K frames in, the centre frame out) or ``"unet-noisemap"``.
     channels : int
         Image channels in and out (1 for grayscale, 3 for RGB, more for multi-band).
     **hyper

@@ -54,7 +54,7 @@ class UNetSmallDenoiser(DenoisingNetwork):
         self.skip = bool(skip)
         widths = [self.hyper["width"] * 2**level for level in range(self.hyper["levels"] + 1)]
         self.encoders = nn.ModuleList()
-        previous = channels
+        previous = self._stack_inputs()
         for level in range(self.hyper["levels"]):
             self.encoders.append(_double_conv(previous, widths[level]))
             previous = widths[level]
@@ -68,13 +68,17 @@ class UNetSmallDenoiser(DenoisingNetwork):
         self.head = nn.Conv2d(widths[0], channels, 1)
         self._widths = widths
 
+    def _stack_inputs(self) -> int:
+        """Input planes of the first convolution: the image channels (a subclass may add more)."""
+        return self.channels
+
     def forward(self, image: torch.Tensor, noise_sigma: torch.Tensor | None = None) -> torch.Tensor:
         prediction = self.predict(image)
         return image - prediction if self.skip else prediction
 
-    def predict(self, image: torch.Tensor) -> torch.Tensor:
-        """The U-Net itself, without the input-to-output skip."""
-        features = image
+    def predict(self, inputs: torch.Tensor) -> torch.Tensor:
+        """The U-Net itself, without the input-to-output skip, on the input planes (``_stack_inputs`` of them)."""
+        features = inputs
         skips = []
         for encoder in self.encoders:
             features = encoder(features)
@@ -90,16 +94,20 @@ class UNetSmallDenoiser(DenoisingNetwork):
         return 2 ** self.hyper["levels"]
 
     def macs_per_pixel(self) -> float:
+        return self._macs(self._stack_inputs(), self.channels)
+
+    def _macs(self, inputs: int, outputs: int) -> float:
+        """Multiply-accumulates per pixel with ``inputs`` planes into the first convolution, ``outputs`` out."""
         widths, levels = self._widths, self.hyper["levels"]
         total = 0.0
-        previous = self.channels
+        previous = inputs
         for level in range(levels):  # encoder: two 3x3 convolutions at 1 / 4**level of the pixels
             total += 9 * (previous * widths[level] + widths[level] ** 2) / 4**level
             previous = widths[level]
         total += 9 * (widths[-2] * widths[-1] + widths[-1] ** 2) / 4**levels
         for level in range(levels):  # decoder: the 1x1 up-convolution costs w_in * 4 w_out per pixel of level + 1
             total += (widths[level + 1] * widths[level] + 9 * (2 * widths[level] * widths[level] + widths[level] ** 2)) / 4**level
-        total += widths[0] * self.channels
+        total += widths[0] * outputs
         return total
 
     @property

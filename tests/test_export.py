@@ -40,6 +40,7 @@ TINY = {
     "unet-small": {"levels": 2, "width": 4},
     "unet-halfres": {"levels": 2, "width": 4},
     "unet-stack": {"frames": 3, "levels": 2, "width": 4},
+    "unet-noisemap": {"levels": 2, "width": 4},
 }
 
 

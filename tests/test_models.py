@@ -17,6 +17,7 @@ TINY = {
     "unet-small": {"levels": 2, "width": 4},
     "unet-halfres": {"levels": 2, "width": 4},
     "unet-stack": {"frames": 3, "levels": 2, "width": 4},
+    "unet-noisemap": {"levels": 2, "width": 4},
 }
 
 
@@ -189,3 +190,18 @@ def test_stack_model_skip_subtracts_from_the_centre_frame():
 def test_stack_model_needs_an_odd_window(frames):
     with pytest.raises(ConfigError, match="frames must be odd"):
         build_model("unet-stack", 1, frames=frames)
+def test_unet_noisemap_per_channel_is_the_grayscale_network_on_each_channel():
+    # One grayscale network applied channel by channel: the same output as the 1-channel model on each plane.
+    colour = build_model("unet-noisemap", 3, per_channel=True, **TINY["unet-noisemap"]).eval()
+    gray = build_model("unet-noisemap", 1, **TINY["unet-noisemap"]).eval()
+    gray.load_state_dict(colour.state_dict())
+    image, sigma = _inputs(colour, 16, 24)
+    with torch.no_grad():
+        output = colour(image, sigma)
+        for channel in range(3):
+            torch.testing.assert_close(output[:, channel:channel + 1], gray(image[:, channel:channel + 1], sigma))
+    # Reference: torch.utils.flop_counter.FlopCounterMode, 2 FLOPs per multiply-accumulate.
+    with FlopCounterMode(display=False) as counter:
+        colour(image[:1], sigma[:1])
+    assert counter.get_total_flops() / 2 / (16 * 24) == pytest.approx(colour.macs_per_pixel())
+    assert colour.macs_per_pixel() == pytest.approx(3 * gray.macs_per_pixel())

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import importlib
 
-HELP = "measure speed and quality side by side (models, train, runtime, baselines, sizes)"
+HELP = "measure speed and quality side by side (models, train, runtime, baselines, sizes, starting-model)"
 
 # Each target module is torch-free at import time and exposes HELP, add_arguments(parser) and run(args).
 BENCH_TARGETS: dict[str, str] = {
@@ -14,6 +14,7 @@ BENCH_TARGETS: dict[str, str] = {
     "baselines": "grainwright.console.commands.bench_baselines",
     "sizes": "grainwright.console.commands.bench_sizes",
     "watch": "grainwright.console.commands.bench_watch",
+    "starting-model": "grainwright.console.commands.bench_starting",
 }
 
 

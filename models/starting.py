@@ -1,0 +1,166 @@
+"""The shipped starting model: a generic, noise-level-conditioned grayscale denoiser, trained once on generated
+data (``configs/starting-model.toml``), usable with no training at all and as the start of fine-tuning.
+
+Files (package data of ``grainwright.models``):
+
+``starting-model.pt``     an ordinary checkpoint (``grainwright.models.checkpoint``, loaded with
+                          ``weights_only=True``), normalisation: float data in ``[0, 1]``
+``starting-model.json``   the manifest: recipe (the config, verbatim), architecture, steps, wall time, machine,
+                          seed, validation figures, and the SHA-256 of ``starting-model.pt``
+
+Code that wants the starting model calls :func:`starting_model_path` / :func:`starting_model_manifest` /
+:func:`load_starting_model`; :func:`starting_checkpoint_for` re-targets it to a user's data (normalisation taken
+from their sample images as for a trained run, transform from their noise description, one network applied
+channel by channel to colour or multi-band data), which ``grainwright starting-model export`` writes as an
+ordinary self-describing ONNX file.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from grainwright.inference.common.errors import ConfigError, GrainwrightError
+from grainwright.models.checkpoint import checkpoint_payload, load_checkpoint
+from grainwright.models.registry import build_model
+
+WEIGHTS = "starting-model.pt"
+MANIFEST = "starting-model.json"
+ARCHITECTURE = "unet-noisemap"
+
+
+def _package_file(name: str) -> Path:
+    return Path(str(resources.files("grainwright.models").joinpath(name)))
+
+
+def starting_model_path() -> Path:
+    """The shipped weights file (a checkpoint); ``GrainwrightError`` when the install lacks it."""
+    path = _package_file(WEIGHTS)
+    if not path.is_file():
+        raise GrainwrightError(f"{path}: the starting model is not installed (package data missing)")
+    return path
+
+
+def starting_model_manifest() -> dict[str, Any]:
+    """The manifest beside the weights (recipe, architecture, steps, wall time, machine, seed, sha256, figures)."""
+    path = _package_file(MANIFEST)
+    if not path.is_file():
+        raise GrainwrightError(f"{path}: the starting model's manifest is not installed (package data missing)")
+    return json.loads(path.read_text())
+
+
+def weights_sha256(path: str | Path | None = None) -> str:
+    """SHA-256 (hex) of the weights file (default: the shipped one)."""
+    return hashlib.sha256(Path(path or starting_model_path()).read_bytes()).hexdigest()
+
+
+def load_starting_model() -> dict[str, Any]:
+    """The shipped checkpoint payload, after checking its SHA-256 against the manifest."""
+    expected = starting_model_manifest()["weights_sha256"]
+    if weights_sha256() != expected:
+        raise GrainwrightError(f"{starting_model_path()}: SHA-256 differs from the manifest's; the file is damaged")
+    return load_checkpoint(starting_model_path())
+
+
+def starting_checkpoint_for(normalization: Any, noise: Any = None,
+                            payload: dict[str, Any] | None = None) -> dict[str, Any]:
+    """A checkpoint payload of the starting model for data normalised by ``normalization``.
+
+    Parameters
+    ----------
+    normalization : Normalization
+        The user's data (``Normalization.for_array`` on their images; with the Anscombe transform for
+        Poisson-Gaussian noise). The network works in the working range, so only this mapping changes.
+    noise : NoiseModel, optional
+        The user's noise description, recorded in the checkpoint (and so in the ONNX metadata).
+    payload : dict, optional
+        The starting checkpoint (default: the shipped one).
+
+    One or more channels: the grayscale network denoises each channel on its own (``per_channel``).
+    """
+    if normalization.transform and normalization.transform.get("kind") not in (None, "anscombe"):
+        raise ConfigError(f"the starting model takes Gaussian noise or Poisson-Gaussian noise (Anscombe domain); "
+                          f"the transform '{normalization.transform.get('kind')}' is not supported yet")
+    source = payload or load_starting_model()
+    hyper = dict(source["hyper"], per_channel=True)
+    model = build_model(source["architecture"], normalization.channels, **hyper)
+    model.load_state_dict(source["state_dict"])
+    summary = dict(source.get("training_summary") or {}, starting_model=True)
+    sigma_max = float(source["training_noise"]["sigma_native_range"][1])  # the shipped range is [0, 1]
+    if normalization.transform:  # the level the network sees in the transformed domain (working units)
+        training_noise = None
+    else:
+        span = normalization.full_range
+        training_noise = {"sigma_native": sigma_max / 2 * span, "sigma_native_range": [0.0, sigma_max * span],
+                          "effective_bit_depth": normalization.bit_depth,
+                          "source": "the starting model's training range"}
+    return checkpoint_payload(model, normalization, noise=noise, scheme="starting model (no training on this data)",
+                              training_summary=summary, training_noise=training_noise)
+
+
+def normalization_for_samples(samples: str | Path, noise_path: str | Path | None = None,
+                              bit_depth: int | None = None) -> tuple[Any, Any]:
+    """The normalisation of the user's data, taken from their sample images as for a trained run, and their noise
+    description (or None).
+
+    ``Normalization.for_array`` over all sample images (dtype, effective bit depth, range, channels); with a
+    Poisson or Poisson-Gaussian ``noise.toml``, the generalized Anscombe transform, so the network sees Gaussian
+    noise of unit variance (scaled to working units) as in ``grainwright train``.
+    """
+    import numpy as np
+    from grainwright.inference.common.errors import InputError
+    from grainwright.inference.images.imageio import find_images, read_frames
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.inference.noise.models import load_noise
+
+    files = find_images([samples])
+    if not files:
+        raise InputError(samples, "no sample images found (supported: PNG, TIFF, .npy)")
+    frames = [read_frames(path) for path in files]
+    channels = {frame.shape[-1] for frame in frames}
+    if len(channels) > 1:
+        raise InputError(samples, f"sample images differ in channel count ({sorted(channels)}); give one kind")
+    dtypes = {frame.dtype for frame in frames}
+    if len(dtypes) > 1:
+        raise InputError(samples, f"sample images differ in dtype ({', '.join(sorted(map(str, dtypes)))})")
+    stacked = np.concatenate([frame.reshape(1, -1, frame.shape[-1]) for frame in frames], axis=1)
+    normalization = Normalization.for_array(stacked, bit_depth)
+    noise = load_noise(noise_path) if noise_path is not None else None
+    if noise is not None:
+        if noise.kind in ("poisson", "poisson-gaussian"):
+            normalization = normalization.with_anscombe(noise.gain, getattr(noise, "read", 0.0))
+        elif noise.kind != "gaussian":
+            raise ConfigError(f"{noise_path}: noise kind '{noise.kind}': the starting model takes Gaussian or "
+                              "Poisson-Gaussian noise; train a model on your data for this kind")
+    return normalization, noise
+
+
+def export_starting_model(samples: str | Path, output: str | Path, *, noise_path: str | Path | None = None,
+                          bit_depth: int | None = None, int8: bool = False, min_int8_psnr: float = 40.0,
+                          overwrite: bool = False, threads: int = 2, payload: dict[str, Any] | None = None,
+                          log: Any = lambda message: None) -> Any:
+    """Write the starting model as an ordinary self-describing ONNX file for the data of ``samples``.
+
+    The checkpoint for the data (:func:`starting_checkpoint_for`) goes through the usual export
+    (``grainwright.models.export.export_checkpoint``: parity checks on random data and on a crop of the samples,
+    metadata, optional INT8 calibrated on the samples). ``payload``: another starting checkpoint (default: the
+    shipped one). Returns the ``ExportResult``.
+    """
+    import tempfile
+
+    from grainwright.models.checkpoint import save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    normalization, noise = normalization_for_samples(samples, noise_path, bit_depth)
+    payload = starting_checkpoint_for(normalization, noise, payload)
+    log(f"starting model for {normalization.channels}-channel {normalization.dtype} data"
+        f"{'' if normalization.bit_depth is None else f' ({normalization.bit_depth}-bit)'}, range "
+        f"[{normalization.low:g}, {normalization.high:g}]"
+        + (f", {normalization.transform['kind']} transform" if normalization.transform else "")
+        + ("; each channel denoised on its own by the grayscale network" if normalization.channels > 1 else ""))
+    with tempfile.TemporaryDirectory(prefix="grainwright-starting-") as folder:
+        checkpoint = save_checkpoint(Path(folder) / "starting-for-data.pt", payload)
+        return export_checkpoint(checkpoint, output, calibration=samples, int8=int8, min_int8_psnr=min_int8_psnr,
+                                 overwrite=overwrite, threads=threads, log=log)

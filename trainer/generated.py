@@ -1,0 +1,333 @@
+"""Training on generated data: the recipe of the shipped starting model.
+
+The data is an endless stream rather than a folder: dead-leaves images
+(:mod:`grainwright.inference.synthetic.dead_leaves`) mixed with scikit-image's sample photographs
+(:mod:`grainwright.inference.synthetic.sample_images`, flipped, rotated and rescaled). The scheme is supervised
+with additive white Gaussian noise whose standard deviation is drawn per patch, uniformly over
+``[0, generated.sigma_max]`` (fractions of the range), and handed to the noise-map architecture as its level, so
+one network covers the whole range (Zhang, Zuo and Zhang, "FFDNet", IEEE TIP 2018).
+
+A recipe is a plain TOML file: the trainer's usual keys (``grainwright.trainer.config.SCHEMA``) plus a
+``[generated]`` table (``GENERATED``). The loop, its schedule, checkpoints and resume are the trainer's own
+(:func:`grainwright.trainer.loop.train`); only the data source and the scheme's noise draw are specific.
+
+Determinism: patch positions, augmentations and noise come from the loop's seeded generator; the pool of
+dead-leaves images is a function of the seed and the step (image ``k`` of the stream is drawn from its own
+generator seeded with ``[seed, k]``), so a resumed run rebuilds exactly the pool it stopped with.
+"""
+from __future__ import annotations
+
+import copy
+import json
+import platform
+import time
+import tomllib
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import torch
+from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.synthetic.dead_leaves import DeadLeavesSettings, dead_leaves_image
+from grainwright.inference.synthetic.sample_images import TRAINING, VALIDATION, rescaled_copies, sample_photo
+from grainwright.models.checkpoint import RunFolder, load_checkpoint
+from grainwright.models.registry import build_model, hyper_defaults
+from grainwright.trainer.config import Key, _check_value, shipped_config, validate
+from grainwright.trainer.data import PatchSource
+from grainwright.trainer.loop import TrainingSetup, fastest_step, train
+from grainwright.trainer.schemes.supervised import Supervised
+
+GENERATED: dict[str, Key] = {
+    "sigma_max": Key("float", 75.0 / 255.0, "Largest Gaussian noise standard deviation, fraction of the range; "
+                     "each patch draws its own uniformly from [0, sigma_max].", 0.0, 1.0),
+    "photo_share": Key("float", 0.5, "Share of each batch cut from the sample photographs (the rest from "
+                       "dead-leaves images).", 0.0, 1.0),
+    "pool": Key("int", 48, "Dead-leaves images held at once.", 1, 4096),
+    "refresh_every": Key("int", 4, "Steps between replacing the oldest dead-leaves image of the pool.", 1, 10**6),
+    "image_size": Key("int", 256, "Edge of the dead-leaves images, pixels.", 16, 4096),
+    "radius_min": Key("float", 1.0, "Smallest shape radius, pixels.", 0.1, 1e4),
+    "radius_max": Key("float", 128.0, "Largest shape radius, pixels.", 0.2, 1e5),
+    "validation_images": Key("int", 8, "Dead-leaves images of their own seeds in the validation set.", 0, 1024),
+    "validation_sigmas": Key("str", "10,25,50", "Noise levels of the validation set, in 1/255 of the range "
+                             "(comma-separated)."),
+}
+VALIDATION_SEED_OFFSET = 1_000_003  # the validation images' stream index starts here: never a training image
+
+
+def load_recipe(path: str | Path, assignments: list[str] = ()) -> dict[str, Any]:
+    """Read a recipe: the trainer's keys (validated, defaults filled in) plus the ``[generated]`` table.
+
+    ``assignments`` are ``key=value`` overrides in TOML syntax (``budget.steps=20``, ``generated.pool=4``).
+    """
+    path = Path(path)
+    if not path.is_file() and path.parent == Path(".") and shipped_config(path.name) is not None:
+        path = shipped_config(path.name)
+    try:
+        raw = tomllib.loads(path.read_text())
+    except OSError as error:
+        raise InputError(path, f"cannot read the recipe ({error.strerror})") from None
+    except tomllib.TOMLDecodeError as error:
+        raise InputError(path, f"not valid TOML: {error}") from None
+    for assignment in assignments:
+        key, _, value = assignment.partition("=")
+        try:
+            parsed = tomllib.loads(f"value = {value}")["value"]
+        except tomllib.TOMLDecodeError:
+            raise ConfigError(f"--set {assignment}: the value is not valid TOML") from None
+        node = raw
+        *parents, last = key.strip().split(".")
+        for name in parents:
+            node = node.setdefault(name, {})
+        node[last] = parsed
+    generated_raw = raw.pop("generated", {})
+    generated = {name: copy.deepcopy(key.default) for name, key in GENERATED.items()}
+    for name, value in generated_raw.items():
+        if name not in GENERATED:
+            raise ConfigError(f"generated.{name}: unknown key (known: {', '.join(GENERATED)})")
+        generated[name] = _check_value(f"generated.{name}", GENERATED[name], value)
+    if generated["radius_min"] >= generated["radius_max"]:
+        raise ConfigError("generated.radius_min must be below generated.radius_max")
+    sigmas(generated)
+    config = validate(raw)
+    if config["scheme"] != "supervised":
+        raise ConfigError(f"scheme: the generated recipe trains 'supervised' only, got '{config['scheme']}'")
+    return {**config, "generated": generated}
+
+
+def sigmas(generated: dict[str, Any]) -> list[float]:
+    """The validation noise levels, fractions of the range."""
+    try:
+        return [float(part) / 255.0 for part in str(generated["validation_sigmas"]).split(",") if part.strip()]
+    except ValueError:
+        raise ConfigError(f"generated.validation_sigmas: expected numbers separated by commas, got "
+                          f"{generated['validation_sigmas']!r}") from None
+
+
+def dead_leaves_settings(generated: dict[str, Any]) -> DeadLeavesSettings:
+    return DeadLeavesSettings(size=generated["image_size"], radius_min=generated["radius_min"],
+                              radius_max=generated["radius_max"])
+
+
+def stream_image(seed: int, index: int, settings: DeadLeavesSettings) -> np.ndarray:
+    """Image ``index`` of the dead-leaves stream of ``seed`` (its own generator: any image can be redrawn)."""
+    return dead_leaves_image(np.random.default_rng([seed, index]), settings)
+
+
+class GeneratedPatches:
+    """The training data as a patch source: a pool of dead-leaves images renewed every few steps, plus the
+    sample photographs (a :class:`~grainwright.trainer.data.PatchSource`), one share of each batch from each.
+
+    ``sample`` has the signature of ``PatchSource.sample``, so the trainer's loop uses it unchanged; it returns
+    ``{"clean": (count, 1, size, size)}``.
+    """
+
+    channels = 1
+
+    def __init__(self, seed: int, generated: dict[str, Any], photos: PatchSource, start_step: int = 0):
+        self.seed, self.generated, self.photos = seed, generated, photos
+        self.settings = dead_leaves_settings(generated)
+        self.calls = start_step
+        # At step s the pool holds stream images first .. first + pool - 1 (first = s // refresh_every), image k
+        # in slot k % pool; every refresh_every steps the oldest gives way to the next one.
+        pool = generated["pool"]
+        self.first = start_step // generated["refresh_every"]
+        self.images = np.empty((pool, self.settings.size, self.settings.size), dtype=np.float32)
+        for index in range(self.first, self.first + pool):
+            self.images[index % pool] = stream_image(seed, index, self.settings)
+
+    def __len__(self) -> int:
+        return len(self.images) + len(self.photos)
+
+    def _advance(self) -> None:
+        pool = len(self.images)
+        while self.first < self.calls // self.generated["refresh_every"]:
+            self.images[self.first % pool] = stream_image(self.seed, self.first + pool, self.settings)
+            self.first += 1
+
+    def sample(self, rng: np.random.Generator, count: int, size: int, augment: bool = True,
+               flat_level: float | None = None) -> dict[str, np.ndarray]:
+        self._advance()
+        self.calls += 1
+        from_photos = int(round(count * self.generated["photo_share"]))
+        parts = []
+        if from_photos:
+            parts.append(self.photos.sample(rng, from_photos, size, augment, flat_level)["clean"])
+        leaves = count - from_photos
+        if leaves:
+            index = rng.integers(0, len(self.images), leaves)
+            top = rng.integers(0, self.settings.size - size + 1, leaves)
+            left = rng.integers(0, self.settings.size - size + 1, leaves)
+            rows = top[:, None, None] + np.arange(size)[None, :, None]
+            cols = left[:, None, None] + np.arange(size)[None, None, :]
+            patches = self.images[index[:, None, None], rows, cols]
+            if augment:  # the 8 flips / 90-degree rotations, as in PatchSource.sample
+                code = rng.integers(0, 8, leaves)
+                swap, flip_rows, flip_cols = ((code & bit).astype(bool) for bit in (4, 1, 2))
+                patches[swap] = patches[swap].transpose(0, 2, 1)
+                patches[flip_rows] = patches[flip_rows][:, ::-1]
+                patches[flip_cols] = patches[flip_cols][:, :, ::-1]
+            parts.append(patches[:, None])
+        return {"clean": np.ascontiguousarray(np.concatenate(parts), dtype=np.float32)}
+
+
+class LevelRangeSupervised(Supervised):
+    """Supervised training with additive white Gaussian noise of a level drawn per patch, uniformly over
+    ``[0, sigma_max]``; the level goes to the model as its noise map (batch key ``level``)."""
+
+    name = "supervised"
+
+    def __init__(self, config: dict[str, Any], sigma_max: float):
+        super().__init__(config, None, None, level_maps=True)
+        self.sigma_max = float(sigma_max)
+
+    def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator,
+                levels: np.ndarray | None = None) -> dict[str, np.ndarray]:
+        clean = patches["clean"]
+        if levels is None:
+            levels = rng.uniform(0.0, self.sigma_max, clean.shape[0])
+        levels = np.asarray(levels, dtype=np.float32).reshape(-1, 1, 1, 1)
+        noisy = clean + levels * rng.standard_normal(clean.shape, dtype=np.float32)
+        level = np.broadcast_to(levels, (clean.shape[0], 1) + clean.shape[2:])
+        return {"clean": clean, "noisy": np.ascontiguousarray(noisy, dtype=np.float32),
+                "level": np.ascontiguousarray(level, dtype=np.float32)}
+
+    def noise_level(self, batch: dict[str, np.ndarray]) -> np.ndarray | None:
+        return batch.get("level")
+
+
+def photo_source(names: tuple[str, ...]) -> PatchSource:
+    """The sample photographs ``names`` at every scale of ``sample_images.SCALES``, as one patch source."""
+    images = [copy_[..., None] for name in names for copy_ in rescaled_copies(sample_photo(name))]
+    return PatchSource({"clean": images})
+
+
+def validation_batches(recipe: dict[str, Any], scheme: LevelRangeSupervised) -> list[dict[str, np.ndarray]]:
+    """Fixed validation batches: patches of dead-leaves images of their own seeds and of the held-out sample
+    photographs (``sample_images.VALIDATION``), each at every level of ``generated.validation_sigmas``."""
+    generated, data = recipe["generated"], recipe["data"]
+    settings = dead_leaves_settings(generated)
+    images = [stream_image(recipe["seed"], VALIDATION_SEED_OFFSET + k, settings)[..., None]
+              for k in range(generated["validation_images"])]
+    images += [sample_photo(name)[..., None] for name in VALIDATION]
+    rng = np.random.default_rng([recipe["seed"], 1])
+    patches = PatchSource({"clean": images}).sample(rng, recipe["validation"]["patches"], data["patch_size"],
+                                                    augment=False)
+    batches = []
+    for sigma in sigmas(generated):
+        for start in range(0, len(patches["clean"]), data["batch_size"]):
+            chunk = {"clean": patches["clean"][start:start + data["batch_size"]]}
+            batches.append(scheme.prepare(chunk, rng, levels=np.full(len(chunk["clean"]), sigma)))
+    return batches
+
+
+STARTING_NORMALIZATION = Normalization("float32", None, 0.0, 1.0, 1)
+
+
+def prepare_generated(recipe: dict[str, Any], start_step: int = 0,
+                      announce: Callable[[str], None] = print) -> TrainingSetup:
+    """Everything the trainer's loop needs for ``recipe`` (see :func:`load_recipe`), starting at ``start_step``."""
+    config = {key: value for key, value in recipe.items() if key != "generated"}
+    generated = recipe["generated"]
+    hyper = {**hyper_defaults(config["model"]["name"]), **config["model"]["hyper"], "skip": True}
+    torch.manual_seed(config["seed"])
+    model = build_model(config["model"]["name"], 1, **hyper)
+    if not model.takes_noise_map:
+        raise ConfigError(f"model.name: the generated recipe needs a noise-map architecture, got '{model.name}'")
+    if config["data"]["patch_size"] % model.alignment or config["data"]["patch_size"] > generated["image_size"]:
+        raise ConfigError(f"data.patch_size: {config['data']['patch_size']} must be a multiple of "
+                          f"{model.alignment} and at most generated.image_size")
+    channels_last, precision = config["model"]["channels_last"], config["model"]["precision"]
+    if "auto" in (channels_last, precision):
+        layouts = (False, True) if channels_last == "auto" else (channels_last,)
+        precisions = ("float32", "bfloat16") if precision == "auto" else (precision,)
+        (channels_last, precision), seconds = fastest_step(model, 1, config["data"]["patch_size"],
+                                                           config["data"]["batch_size"], layouts, precisions)
+        announce("step arithmetic: " + ", ".join(f"{'channels-last' if layout else 'standard'} {kind} "
+                                                 f"{value * 1e3:.0f} ms" for (layout, kind), value in seconds.items())
+                 + f"; chosen {'channels-last' if channels_last else 'standard'} {precision}")
+    config["model"] = dict(config["model"], skip=True, hyper=dict(model.hyper), channels_last=channels_last,
+                           precision=precision)
+    scheme = LevelRangeSupervised(config, generated["sigma_max"])
+    source = GeneratedPatches(config["seed"], generated, photo_source(TRAINING), start_step)
+    summary = {"layout": "generated", "scheme": "supervised", "training_images": "dead-leaves stream + "
+               f"{len(TRAINING)} sample photographs", "validation_images": len(VALIDATION)
+               + generated["validation_images"], "data_folder": None, "transform": "none",
+               "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
+               "channels_last": channels_last, "precision": precision}
+    return TrainingSetup(config=config, scheme=scheme, model=model, train=source,
+                         validation=validation_batches(recipe, scheme), ground_truth=True,
+                         normalization=STARTING_NORMALIZATION, channels_last=channels_last, precision=precision,
+                         noise=None, data_fingerprint=None, summary=summary,
+                         training_noise={"sigma_native": generated["sigma_max"] / 2,
+                                         "sigma_native_range": [0.0, generated["sigma_max"]],
+                                         "effective_bit_depth": None, "source": "uniform range of the recipe"})
+
+
+def machine_description() -> dict[str, Any]:
+    """The machine a run happened on: CPU model, logical CPUs, Python, torch, load average at the call."""
+    import os
+
+    cpu = platform.processor() or "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    load = os.getloadavg() if hasattr(os, "getloadavg") else None
+    return {"cpu": cpu, "logical_cpus": os.cpu_count(), "python": platform.python_version(),
+            "torch": torch.__version__, "load_average_1_5_15": list(load) if load else None}
+
+
+def train_generated(recipe_path: str | Path, out: str | Path | None = None, *, resume: str | Path | None = None,
+                    assignments: list[str] = (), interrupt_at_step: int | None = None,
+                    announce: Callable[[str], None] = print) -> tuple[dict[str, Any], RunFolder]:
+    """Train a recipe on generated data into the run folder ``out`` (or continue ``resume``).
+
+    The run folder is the trainer's (``config.toml`` = the recipe resolved, ``checkpoints/last.pt`` and
+    ``best.pt``, ``training-summary.json``) plus ``machine.json`` (one entry per start or resume).
+    """
+    from grainwright.inference.common.atomic import write_text_atomic
+    from grainwright.inference.common.tomlio import write_toml
+
+    state = None
+    if resume is not None:
+        run = RunFolder(Path(resume))
+        if not run.last.is_file():
+            raise InputError(run.root, "nothing to resume: checkpoints/last.pt is missing")
+        recipe = load_recipe(run.config, list(assignments))
+        state = load_checkpoint(run.last)
+        if "step" not in state:
+            raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
+    else:
+        if out is None:
+            raise ConfigError("--out DIR is required for a new run")
+        recipe = load_recipe(recipe_path, list(assignments))
+        run = RunFolder(Path(out))
+        if run.root.exists() and any(run.root.iterdir()):
+            raise InputError(run.root, "run folder exists and is not empty (choose another --out, or --resume it)")
+    previous_threads = torch.get_num_threads()
+    torch.set_num_threads(recipe["threads"] or torch.get_num_threads())
+    try:
+        setup = prepare_generated(recipe, 0 if state is None else state["step"], announce)
+        if state is None:
+            run.root.mkdir(parents=True, exist_ok=True)
+            resolved = dict(setup.config, generated=recipe["generated"])
+            write_toml(run.config, resolved, header="grainwright starting-model recipe, resolved (every key)")
+        history_path = run.root / "machine.json"
+        history = json.loads(history_path.read_text()) if history_path.is_file() else []
+        history.append({"event": "resume" if state else "start", "step": 0 if state is None else state["step"],
+                        "time": time.strftime("%Y-%m-%dT%H:%M:%S%z"), **machine_description(),
+                        "torch_threads": torch.get_num_threads()})
+        write_text_atomic(history_path, json.dumps(history, indent=2) + "\n")
+        announce(f"generated data: dead-leaves stream + {len(TRAINING)} sample photographs; "
+                 f"{setup.model.name} ({setup.model.parameter_count()} parameters, {setup.precision}); "
+                 f"run folder {run.root}" + (f"; resuming at step {state['step']}" if state else ""))
+        summary = train(setup, run, resume=state, interrupt_at_step=interrupt_at_step)
+    finally:
+        torch.set_num_threads(previous_threads)
+    write_text_atomic(run.summary, json.dumps(summary, indent=2, default=float) + "\n")
+    return summary, run
+
