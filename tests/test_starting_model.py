@@ -59,24 +59,25 @@ def test_generated_patches_mix_dead_leaves_and_photos_deterministically():
 
 @pytest.mark.slow
 def test_twenty_steps_of_the_shipped_recipe_reproduce_exactly(tmp_path):
-    # Determinism of the recipe: two runs of its first 20 steps from its seed end with identical weights, and a
-    # run stopped at step 10 and resumed ends there too. float32 pinned: the test must not depend on whether
-    # this CPU runs bfloat16 natively (the recipe's own `auto` measures it).
+    # Determinism of the recipe: a run of its first 20 steps from its seed, and another stopped at step 10 and
+    # resumed (the dead-leaves pool rebuilt for that step), end with identical weights. float32 pinned: the test
+    # must not depend on whether this CPU runs bfloat16 natively (the recipe's own `auto` measures it).
     pinned = ["model.precision=\"float32\"", "validation.every_steps=10"]
-    states = []
-    for name in ("a", "b"):
-        summary, run = train_generated("starting-model", tmp_path / name, assignments=pinned,
-                                       interrupt_at_step=20, announce=lambda message: None)
-        assert summary["steps"] == 20
-        states.append(load_checkpoint(run.last)["state_dict"])
-    _, run = train_generated("starting-model", tmp_path / "c", assignments=pinned, interrupt_at_step=10,
-                             announce=lambda message: None)
-    train_generated(None, resume=run.root, interrupt_at_step=20, announce=lambda message: None)
-    states.append(load_checkpoint(run.last)["state_dict"])
-    for other in states[1:]:
-        for key, value in states[0].items():
-            assert torch.equal(value, other[key]), key
-    assert not torch.equal(states[0]["head.weight"], _tiny_starting_payload()["state_dict"]["head.weight"])
+    quiet = {"announce": lambda message: None}
+    summary, straight = train_generated("starting-model", tmp_path / "straight", assignments=pinned,
+                                        interrupt_at_step=20, **quiet)
+    assert summary["steps"] == 20 and summary["validation_history"][0]["step"] == 10
+    _, stopped = train_generated("starting-model", tmp_path / "stopped", assignments=pinned, interrupt_at_step=10,
+                                 **quiet)
+    train_generated(None, resume=stopped.root, interrupt_at_step=20, **quiet)
+    first, second = (load_checkpoint(run.last) for run in (straight, stopped))
+    assert first["step"] == second["step"] == 20
+    for key, value in first["state_dict"].items():
+        assert torch.equal(value, second["state_dict"][key]), key
+    # The weights moved from their seeded start.
+    torch.manual_seed(load_recipe("starting-model")["seed"])
+    start = build_model("unet-noisemap", 1, levels=3, width=16)
+    assert not torch.equal(start.head.weight, first["state_dict"]["head.weight"])
 
 
 @pytest.mark.parametrize("kind", ["uint8", "12-bit", "float32"])

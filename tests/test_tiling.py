@@ -119,6 +119,7 @@ TINY_HYPER = {
     "unet-small": {"levels": 3, "width": 4},
     "unet-halfres": {"levels": 2, "width": 4},
     "unet-stack": {"frames": 3, "levels": 2, "width": 4},  # its stack window: tests/test_stack_window.py
+    "unet-noisemap": {"levels": 2, "width": 4},
 }
 SINGLE_FRAME = sorted(name for name in TINY_HYPER if "frames" not in TINY_HYPER[name])
 
