@@ -78,6 +78,10 @@ def export_for_float(checkpoint: dict[str, Any], work: Path, threads: int) -> Pa
     return output
 
 
+def mean(row: dict[str, float]) -> float:
+    return float(np.mean(list(row.values())))
+
+
 def score(onnx_path: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], sigma: float | str,
           threads: int) -> dict[str, float]:
     from grainwright.inference.evaluation.metrics import psnr
@@ -165,7 +169,6 @@ def run_bench(args: argparse.Namespace) -> int:
             case["starting model, level estimated"] = score(onnx_path, images, "estimate", args.threads)
             case["starting model, level given"] = score(onnx_path, images, sigma_255 / 255.0, args.threads)
             best = case["opponent"]["best per image"]
-            mean = lambda row: float(np.mean(list(row.values())))  # noqa: E731
             case["gap_db"] = mean(case["starting model, level estimated"]) - mean(best)
             case["allowed_gap_db"] = -ALLOWED_GAP.get(sigma_255, 0.2)
             print(f"   opponent {mean(best):.2f} dB; starting model {mean(case['starting model, level estimated']):.2f}"

@@ -110,6 +110,7 @@ def normalization_for_samples(samples: str | Path, noise_path: str | Path | None
     noise of unit variance (scaled to working units) as in ``grainwright train``.
     """
     import numpy as np
+
     from grainwright.inference.common.errors import InputError
     from grainwright.inference.images.imageio import find_images, read_frames
     from grainwright.inference.images.normalization import Normalization

@@ -15,6 +15,7 @@ P. Fischer, T. Brox, "U-Net: Convolutional Networks for Biomedical Image Segment
 from __future__ import annotations
 
 import torch
+
 from grainwright.models.unet_small import UNetSmallDenoiser
 
 

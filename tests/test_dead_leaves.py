@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import stats
+
 from grainwright.inference.synthetic.dead_leaves import (
     DeadLeavesSettings,
     dead_leaves_image,
@@ -11,7 +13,6 @@ from grainwright.inference.synthetic.dead_leaves import (
     radius_cdf,
 )
 from grainwright.inference.synthetic.sample_images import EXCLUDED, TRAINING, VALIDATION, sample_photo
-from scipy import stats
 
 SMALL = DeadLeavesSettings(size=128, radius_min=1.0, radius_max=64.0)
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.runtime.modelinfo import read_model_metadata

@@ -22,11 +22,13 @@ import json
 import platform
 import time
 import tomllib
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 import torch
+
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.synthetic.dead_leaves import DeadLeavesSettings, dead_leaves_image
@@ -149,7 +151,7 @@ class GeneratedPatches:
                flat_level: float | None = None) -> dict[str, np.ndarray]:
         self._advance()
         self.calls += 1
-        from_photos = int(round(count * self.generated["photo_share"]))
+        from_photos = round(count * self.generated["photo_share"])
         parts = []
         if from_photos:
             parts.append(self.photos.sample(rng, from_photos, size, augment, flat_level)["clean"])

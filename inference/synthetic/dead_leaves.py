@@ -17,8 +17,8 @@ that covers it. Everything is drawn from one ``numpy.random.Generator``, so a se
 """
 from __future__ import annotations
 
+from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import Iterator
 
 import numpy as np
 from scipy import ndimage
