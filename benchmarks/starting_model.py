@@ -34,12 +34,14 @@ SPEED_EDGE = 2048
 def noisy_images(sigma_255: float, seed: int) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """``{name: (clean, noisy)}`` for the held-out images at noise level ``sigma_255 / 255``, ``(H, W, 1)``."""
     from grainwright.benchmarks.training import TEST_IMAGES, sample_image
+    from grainwright.inference.noise.models import noise_from_dict
 
+    noise = noise_from_dict({"kind": "gaussian", "sigma": sigma_255 / 255.0})
     rng = np.random.default_rng([seed, len("gaussian"), 1])  # bench train's stream for its Gaussian case
     images = {}
     for name in TEST_IMAGES:
         clean = sample_image(name)[..., None]
-        images[name] = (clean, (clean + sigma_255 / 255.0 * rng.standard_normal(clean.shape)).astype(np.float32))
+        images[name] = (clean, noise.sample(clean, rng))
     return images
 
 

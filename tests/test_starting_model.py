@@ -1,6 +1,9 @@
 """The starting model: its recipe (generated data, determinism, resume) and its export for a user's data."""
 from __future__ import annotations
 
+import hashlib
+import json
+
 import numpy as np
 import pytest
 import torch
@@ -140,3 +143,27 @@ def test_noise_descriptions_choose_the_domain(tmp_path):
         export_starting_model(tmp_path / "samples", tmp_path / "s.onnx", noise_path=tmp_path / "speckle.toml",
                               payload=_tiny_starting_payload())
     assert not (tmp_path / "s.onnx").exists()
+
+
+def test_a_finished_run_packages_as_weights_and_manifest(tmp_path):
+    from grainwright.inference.common.tomlio import write_toml
+    from grainwright.models.checkpoint import RunFolder, save_checkpoint
+    from grainwright.trainer.generated import package_run
+
+    recipe = load_recipe("starting-model", ["budget.steps=3"])
+    run = RunFolder(tmp_path / "run")
+    run.root.mkdir()
+    write_toml(run.config, recipe)
+    payload = _tiny_starting_payload()
+    save_checkpoint(run.best, dict(payload, training_summary={"steps": 2, "minutes": 0.1}))
+    with pytest.raises(ConfigError, match="stopped at step 2 of its budget 3"):
+        package_run(run.root, tmp_path / "into")
+    save_checkpoint(run.best, dict(payload, training_summary={"steps": 3, "minutes": 0.1}))
+    manifest = package_run(run.root, tmp_path / "into", extra={"benchmark": {"note": "none"}})
+    weights = tmp_path / "into" / "starting-model.pt"
+    assert manifest["weights_sha256"] == hashlib.sha256(weights.read_bytes()).hexdigest()
+    assert json.loads((tmp_path / "into" / "starting-model.json").read_text()) == manifest
+    assert manifest["steps"] == 3 and manifest["seed"] == recipe["seed"] and manifest["benchmark"]
+    assert "[generated]" in manifest["recipe"]["text"]
+    loaded = load_checkpoint(weights)  # weights_only, like every checkpoint
+    assert torch.equal(loaded["state_dict"]["head.weight"], payload["state_dict"]["head.weight"])

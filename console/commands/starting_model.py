@@ -2,7 +2,8 @@
 
 ``export`` writes the starting model as an ordinary ONNX file for your data (normalisation taken from your sample
 images, transform from your noise description), so ``denoise`` and ``compare`` work before any training;
-``show`` prints its manifest; ``train`` reproduces it from its recipe (``configs/starting-model.toml``).
+``show`` prints its manifest; ``train`` reproduces it from its recipe (``configs/starting-model.toml``); ``package`` writes a finished run as
+the shipped weights and manifest (maintainers).
 """
 from __future__ import annotations
 
@@ -39,12 +40,25 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     train.add_argument("--set", dest="assignments", metavar="KEY=VALUE", action="append", default=[],
                        help="override one recipe key, e.g. --set budget.steps=20 (repeatable)")
 
+    package = actions.add_parser("package", help="write a finished recipe run as the shipped starting model "
+                                 "(maintainers)")
+    package.add_argument("run_dir", metavar="RUN_DIR", help="a finished run of the recipe")
+    package.add_argument("--into", required=True, metavar="DIR", help="folder to write starting-model.pt and "
+                         "starting-model.json into (the source tree's models/)")
+    package.add_argument("--extra", metavar="FILE.json", help="a JSON object merged into the manifest (e.g. "
+                         "benchmark figures)")
+
 
 def run(args: argparse.Namespace) -> int:
-    if args.starting_action == "show":
-        from grainwright.models.starting import starting_model_manifest  # no torch needed to read it
+    if args.starting_action == "show":  # a JSON file in the package: no torch needed to read it
+        from importlib import resources
 
-        print(json.dumps(starting_model_manifest(), indent=2))
+        from grainwright.inference.common.errors import GrainwrightError
+
+        manifest = resources.files("grainwright.models").joinpath("starting-model.json")
+        if not manifest.is_file():
+            raise GrainwrightError(f"{manifest}: the starting model's manifest is not installed")
+        print(manifest.read_text())
         return 0
     require_torch(f"starting-model {args.starting_action}")
     if args.starting_action == "export":
@@ -53,6 +67,16 @@ def run(args: argparse.Namespace) -> int:
         result = export_starting_model(args.samples, args.output, noise_path=args.noise, bit_depth=args.bit_depth,
                                        int8=args.int8, overwrite=args.overwrite, threads=args.threads, log=print)
         return 1 if result.int8_report is not None and not result.int8_report["passed"] else 0
+    if args.starting_action == "package":
+        from pathlib import Path
+
+        from grainwright.trainer.generated import package_run
+
+        extra = json.loads(Path(args.extra).read_text()) if args.extra else None
+        manifest = package_run(args.run_dir, args.into, extra=extra)
+        print(f"wrote {manifest['weights_file']} ({manifest['weights_bytes']} bytes, sha256 "
+              f"{manifest['weights_sha256']}) and its manifest into {args.into}")
+        return 0
     from grainwright.trainer.generated import train_generated
 
     summary, _ = train_generated(args.recipe, args.out, resume=args.resume, assignments=args.assignments)
