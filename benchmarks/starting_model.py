@@ -155,7 +155,7 @@ def run_bench(args: argparse.Namespace) -> int:
     results["model"] = {"checkpoint": args.checkpoint or "shipped starting model",
                         "steps": (checkpoint.get("training_summary") or {}).get("steps")}
     results.setdefault("machine", []).append({"when": time.strftime("%Y-%m-%dT%H:%M:%S%z"), **machine_description()})
-    sigmas = [float(s) for s in args.sigmas.split(",")]
+    sigmas = [float(s) for s in args.sigmas.split(",") if s.strip()]
     with tempfile.TemporaryDirectory(prefix="grainwright-bench-starting-") as folder:
         work = Path(folder)
         onnx_path = export_for_float(checkpoint, work, args.threads)
