@@ -608,3 +608,18 @@ def test_the_reload_command_signals_the_holder(folders, model, monkeypatch, caps
         service.close()
     assert received == [signal.SIGHUP] and f"process {os.getpid()}" in capsys.readouterr().out
     assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "out"), "--reload"]) == 2
+
+
+def test_a_move_lost_after_the_done_line_is_finished_on_restart_without_redoing_the_frame(folders, model):
+    service = _service(folders, model, inputs="move", exit_when_idle=0.05)
+    _drop(folders / "in", "f0.png", _frame(97))
+    assert service.run() == 0
+    output = folders / "out" / "f0.png"
+    made = output.stat().st_mtime_ns
+    # the process died after its done line, before the move: the input is back in the watched folder
+    os.replace(folders / "in" / "done" / "f0.png", folders / "in" / "f0.png")
+    again = _service(folders, model, inputs="move", exit_when_idle=0.05)
+    assert again.run() == 0
+    assert again.counters.done == 0 and output.stat().st_mtime_ns == made
+    assert (folders / "in" / "done" / "f0.png").exists() and not (folders / "in" / "f0.png").exists()
+    assert _done_names(folders / "out") == ["f0.png"]

@@ -33,18 +33,11 @@ def _noise_sigma(text: str) -> float | str:
     return value
 
 
-def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("model", help="the .onnx file written by 'grainwright export'")
-    parser.add_argument("inputs", nargs="+", metavar="INPUT", help="image files, folders or glob patterns")
-    parser.add_argument("-o", "--out-dir", required=True, help="output folder; names mirror the inputs")
-    parser.add_argument("-r", "--recursive", action="store_true", help="descend into sub-folders of folder inputs")
+def add_engine_arguments(parser: argparse.ArgumentParser) -> None:
+    """The options that choose how the model runs and what it writes; shared with ``watch``."""
     parser.add_argument("--format", choices=("tif", "png", "npy"), help="write this format instead of the input's")
     parser.add_argument("--float32", action="store_true",
                         help="write float32 native values, unclipped (TIFF or npy) instead of the input's dtype")
-    parser.add_argument("--overwrite", action="store_true", help="redo and replace existing outputs")
-    parser.add_argument("--keep-mixed", action="store_true",
-                        help="go on although existing outputs were made with another model or settings")
-    parser.add_argument("--into-input-folder", action="store_true", help="allow -o to be an input's own folder")
     parser.add_argument("--tile", type=int, metavar="PIXELS",
                         help="edge of each tile's kept region (default: measured, grows with the model's margin)")
     parser.add_argument("--batch", type=int, metavar="TILES", help="tiles per ONNX Runtime call (default: measured)")
@@ -58,23 +51,40 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--ensemble", type=int, choices=ENSEMBLE_SIZES, default=1,
                         help="average over 1, 2, 4 or 8 flips and 90-degree rotations (costs that many runs)")
     parser.add_argument("--threads", type=int, metavar="N", help="ONNX Runtime threads (default: all cores)")
-    parser.add_argument("--receptive-field", type=int, metavar="PIXELS",
-                        help="for a model without grainwright metadata: its receptive field (odd, pixels)")
-    parser.add_argument("--alignment", type=int, default=1, metavar="N",
-                        help="with --receptive-field: input sizes must be multiples of N (default 1)")
     parser.add_argument("--fixed-pattern", choices=FIXED_PATTERN_MODES, default="auto",
                         help="remove row/column banding before denoising: auto (when detected in the frame, as the "
                         "trainer does), always or never; not applied to streamed large TIFFs")
-    parser.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
 
 
-def run(args: argparse.Namespace) -> int:
+def check_engine_arguments(args: argparse.Namespace) -> None:
+    """Refuse engine options that cannot work together, in one line."""
     if args.float32 and args.format == "png":
         raise ConfigError("--float32 needs TIFF or npy output, not PNG")
     for name in ("tile", "batch", "threads"):
         value = getattr(args, name)
         if value is not None and value < 1:
             raise ConfigError(f"--{name} must be at least 1, got {value}")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("model", help="the .onnx file written by 'grainwright export'")
+    parser.add_argument("inputs", nargs="+", metavar="INPUT", help="image files, folders or glob patterns")
+    parser.add_argument("-o", "--out-dir", required=True, help="output folder; names mirror the inputs")
+    parser.add_argument("-r", "--recursive", action="store_true", help="descend into sub-folders of folder inputs")
+    parser.add_argument("--overwrite", action="store_true", help="redo and replace existing outputs")
+    parser.add_argument("--keep-mixed", action="store_true",
+                        help="go on although existing outputs were made with another model or settings")
+    parser.add_argument("--into-input-folder", action="store_true", help="allow -o to be an input's own folder")
+    add_engine_arguments(parser)
+    parser.add_argument("--receptive-field", type=int, metavar="PIXELS",
+                        help="for a model without grainwright metadata: its receptive field (odd, pixels)")
+    parser.add_argument("--alignment", type=int, default=1, metavar="N",
+                        help="with --receptive-field: input sizes must be multiples of N (default 1)")
+    parser.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
+
+
+def run(args: argparse.Namespace) -> int:
+    check_engine_arguments(args)
     spec = None
     if args.receptive_field is not None:
         spec = ModelSpec(receptive_field=args.receptive_field, alignment=args.alignment)

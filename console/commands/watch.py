@@ -12,9 +12,9 @@ import os
 import signal
 import sys
 
-from grainwright.console.commands.denoise import _noise_sigma
-from grainwright.inference.common.errors import ConfigError, GrainwrightError
-from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES
+from grainwright.console import HELP_CAUTION
+from grainwright.console.commands.denoise import add_engine_arguments, check_engine_arguments
+from grainwright.inference.common.errors import GrainwrightError
 from grainwright.inference.runtime.frame_engine import FrameEngine
 from grainwright.inference.runtime.line_arrivals import ARRIVAL_RULES, DEFAULT_PATTERNS
 from grainwright.inference.runtime.line_service import (
@@ -26,15 +26,14 @@ from grainwright.inference.runtime.line_service import (
     describe_holder,
     holder,
 )
-from grainwright.inference.runtime.runner import ENSEMBLE_SIZES
 
+EPILOG = ("exit codes: 0 stopped by SIGTERM/SIGINT or idle; 4 idle-stopped with frames quarantined; 2 bad option, "
+          "model or folder; 3 the folder is held by another instance; 1 an unexpected error (traceback). SIGHUP "
+          "reloads the model file. " + HELP_CAUTION)
 HELP = "watch a folder and denoise each frame as it arrives (a long-running line service; no torch needed)"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.epilog = ("exit codes: 0 stopped by SIGTERM/SIGINT or idle; 4 idle-stopped with frames quarantined; "
-                     "2 bad option, model or folder; 3 the folder is held by another instance; 1 an unexpected error "
-                     "(traceback). SIGHUP reloads the model file.")
     parser.add_argument("model", help="the .onnx file written by 'grainwright export'")
     parser.add_argument("watch", metavar="IN_DIR", help="the folder frames arrive in (not descended into)")
     parser.add_argument("-o", "--out-dir", required=True,
@@ -72,19 +71,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="stop once nothing has waited for this long (catch-up runs, tests)")
     parser.add_argument("--reload", action="store_true",
                         help="do not start: ask the service running on IN_DIR to load the model file again")
-    parser.add_argument("--format", choices=("tif", "png", "npy"), help="write this format instead of the input's")
-    parser.add_argument("--float32", action="store_true",
-                        help="write float32 native values, unclipped (TIFF or npy) instead of the input's dtype")
-    parser.add_argument("--tile", type=int, metavar="PIXELS", help="edge of each tile's kept region")
-    parser.add_argument("--batch", type=int, metavar="TILES", help="tiles per ONNX Runtime call (default: measured)")
-    parser.add_argument("--strength", type=float, default=1.0, metavar="S", help="as for 'denoise' (default 1.0)")
-    parser.add_argument("--noise-sigma", type=_noise_sigma, default="estimate", metavar="LEVEL",
-                        help="noise-map models: as for 'denoise' (default estimate)")
-    parser.add_argument("--ensemble", type=int, choices=ENSEMBLE_SIZES, default=1,
-                        help="average over 1, 2, 4 or 8 flips and rotations")
-    parser.add_argument("--threads", type=int, metavar="N", help="ONNX Runtime threads (default: all cores)")
-    parser.add_argument("--fixed-pattern", choices=FIXED_PATTERN_MODES, default="auto",
-                        help="remove row/column banding before denoising: auto, always or never")
+    add_engine_arguments(parser)
 
 
 def _send_reload(folder: str) -> int:
@@ -102,12 +89,10 @@ def _send_reload(folder: str) -> int:
 def run(args: argparse.Namespace) -> int:
     if args.reload:
         return _send_reload(args.watch)
-    for name in ("tile", "batch", "threads"):
-        value = getattr(args, name)
-        if value is not None and value < 1:
-            raise ConfigError(f"--{name} must be at least 1, got {value}")
+    check_engine_arguments(args)
+    patterns = tuple(pattern.strip() for pattern in args.patterns.split(",") if pattern.strip())
     settings = LineSettings(
-        watch=args.watch, out_dir=args.out_dir, patterns=tuple(p.strip() for p in args.patterns.split(",") if p.strip()),
+        watch=args.watch, out_dir=args.out_dir, patterns=patterns,
         arrival=args.arrival, settle=args.settle, poll=args.poll, retries=args.retries, retry_wait=args.retry_wait,
         inputs=args.inputs, done_dir=args.done_dir, quarantine_dir=args.quarantine_dir, queue_limit=args.queue_limit,
         status_every=args.status_every, log_every=args.log_every, backoff_max=args.backoff_max,
