@@ -230,9 +230,9 @@ def rss_growth(series: list[tuple[float, float]], from_seconds: float = 300.0) -
     return later[-1] / later[0] - 1.0
 
 
-def run_bench(model: Path, launcher: list[str], *, frames: int = 100, size: int = 512, threads: int = 2, repeat: int = 1,
-              loads: tuple[float, ...] = (0.5, 0.9), seconds: float = 60.0, soak_minutes: float = 0.0,
-              soak_load: float = 0.5, fixed_pattern: str = "never",
+def run_bench(model: Path, launcher: list[str], *, frames: int = 100, size: int = 512, threads: int = 2,
+              repeat: int = 1, loads: tuple[float, ...] = (0.5, 0.9), seconds: float = 60.0,
+              soak_minutes: float = 0.0, soak_load: float = 0.5, fixed_pattern: str = "never",
               log: Callable[[str], None] = print) -> dict[str, Any]:
     """Measure the line service (see the module docstring); returns every figure as a JSON-ready dict.
 

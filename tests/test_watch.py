@@ -291,7 +291,8 @@ def test_the_journal_keeps_whole_lines_and_compacts(folders, model):
     _drive(service, lambda: service.counters.done == 20)
     service.close()
     assert len((folders / "out" / JOURNAL_NAME).read_text().splitlines()) < 12
-    assert (folders / "out" / "watch-journal.1.jsonl").exists() and not (folders / "out" / "watch-journal.2.jsonl").exists()
+    assert (folders / "out" / "watch-journal.1.jsonl").exists()
+    assert not (folders / "out" / "watch-journal.2.jsonl").exists()
     assert len([p for p in (folders / "out").iterdir() if p.suffix == ".png"]) == 20
 
 

@@ -5,7 +5,7 @@ the same settings and the same results as ``grainwright denoise`` on a file hold
 
 >>> from grainwright.inference.runtime.frame_engine import FrameEngine
 >>> engine = FrameEngine("model.onnx", threads=2, fixed_pattern="auto")     # doctest: +SKIP
->>> clean = engine.denoise(frame)          # (H, W) or (H, W, C) native array in, same shape and dtype out  # doctest: +SKIP
+>>> clean = engine.denoise(frame)     # (H, W) or (H, W, C) native array, same shape and dtype  # doctest: +SKIP
 >>> engine.model_sha256                    # which model made it, for the integrator's own records  # doctest: +SKIP
 
 The model file is hashed once when it is opened: replacing the file on disk later changes nothing until a new

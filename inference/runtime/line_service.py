@@ -491,7 +491,8 @@ class LineService:
             self.log(f"the watched folder {self.settings.watch} is readable again")
             self._scan_error = None
         now = self.clock()
-        fresh = [arrival for arrival in arrivals if arrival.name not in self._queued and not self._settled(arrival, now)]
+        fresh = [arrival for arrival in arrivals
+                 if arrival.name not in self._queued and not self._settled(arrival, now)]
         room = self.settings.queue_limit - len(self.queue)
         for arrival in fresh[:max(room, 0)]:
             self.queue.append(QueuedFrame(arrival))
@@ -765,7 +766,8 @@ class LineService:
 
     def _summary_line(self, now: float) -> str:
         latency, fps = self.latency.summary(now, now - self._started)
-        percentiles = "-" if latency["p50"] is None else f"{latency['p50']:.2f}/{latency['p95']:.2f}/{latency['p99']:.2f} s"
+        percentiles = "-" if latency["p50"] is None else \
+            f"{latency['p50']:.2f}/{latency['p95']:.2f}/{latency['p99']:.2f} s"
         blocked = f", OUTPUT BLOCKED: {self._blocked}" if self._blocked else ""
         return (f"done {self.counters.done}, quarantined {self.counters.quarantined}, failed attempts "
                 f"{self.counters.failed_attempts}, queue {self._waiting()}, lag {self.lag(now):.1f} s, latency "
