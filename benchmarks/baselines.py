@@ -9,17 +9,15 @@ the ratios of CPU time, which come from runs side by side in one process. Each f
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import platform
 import time
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from grainwright.inference.baselines.registry import BASELINES, denoise, get_baseline
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.evaluation.calibration import (
     GROUND_TRUTH_LABEL,
@@ -51,10 +49,6 @@ def _timed_denoise(name: str, noisy: np.ndarray, sigma: float, **params: Any) ->
     start, start_cpu = time.perf_counter(), time.process_time()
     out = denoise(name, noisy, sigma, **params)
     return out, time.perf_counter() - start, time.process_time() - start_cpu
-
-
-def _write_json(path: Path, payload: dict[str, Any]) -> None:
-    write_text_atomic(path, json.dumps(payload, indent=2))
 
 
 def _summary(rows: dict[str, dict[str, list]]) -> list[dict[str, Any]]:
@@ -145,7 +139,7 @@ def run_bench(args: argparse.Namespace) -> int:
     _print_table(summary, args.sigma, len(images), grid_kind)
 
     if args.json:
-        _write_json(Path(args.json), {
+        write_json_atomic(args.json, {
             "sigma_8bit": args.sigma, "images": images, "crop": size, "seed": args.seed, "grid": grid_kind,
             "tuned_label": GROUND_TRUTH_LABEL, "machine": platform.platform(), "cpus": os.cpu_count(),
             "summary": summary, "per_image": per_image,

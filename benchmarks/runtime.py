@@ -16,7 +16,6 @@ Timings on a shared machine are noisy; the ratios come from runs interleaved in 
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import platform
 import statistics
@@ -30,7 +29,7 @@ from typing import Any
 
 import numpy as np
 
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
 from grainwright.inference.images.large_tiff import write_tiled_tiff
@@ -215,7 +214,7 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
 
     _print(figures)
     if args.json:
-        write_text_atomic(args.json, json.dumps(figures, indent=1))
+        write_json_atomic(args.json, figures, indent=1)
     if args.profile:  # the sizing profile of grainwright.inference.runtime.machine_profile, on its reference stacks
         print(f"\nmachine profile ({args.threads} threads) for 'grainwright train --fit-to':")
         save_profile(measure_profile(threads=args.threads), args.profile)

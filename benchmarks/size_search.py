@@ -39,7 +39,7 @@ from grainwright.benchmarks.training import (
     opponent,
     runtime_denoiser,
 )
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.crops import centre_box
 
@@ -192,7 +192,7 @@ def run_trial(spec: dict[str, Any], folder: Path, work: Path, images: dict[str, 
 
 
 def _save(path: Path, results: dict[str, Any]) -> None:
-    write_text_atomic(path, json.dumps(results, indent=1, default=float) + "\n")
+    write_json_atomic(path, results, default=float, indent=1)
 
 
 def _best(results: dict[str, Any], names: list[str]) -> str:

@@ -306,7 +306,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
 def run_bench(args: argparse.Namespace) -> int:
     """Run the benchmark; with ``--json``, results are written after every scheme and a rerun with the same
     file skips what is done (so schemes may get different ``--minutes-per-scheme`` in separate runs)."""
-    from grainwright.inference.common.atomic import write_text_atomic
+    from grainwright.inference.common.atomic import write_json_atomic
     from grainwright.inference.evaluation.metrics import psnr
     from grainwright.models.registry import build_model, hyper_defaults
     from grainwright.trainer.config import load_config
@@ -333,7 +333,7 @@ def run_bench(args: argparse.Namespace) -> int:
 
     def save() -> None:
         if saved:
-            write_text_atomic(saved, json.dumps(results, indent=2, default=float) + "\n")
+            write_json_atomic(saved, results, default=float)
 
     try:
         for case in cases:

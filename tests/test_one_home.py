@@ -3,6 +3,7 @@ threshold lets short copies slip under; these checks name the helper and where i
 
 - one atomic writer (``grainwright.inference.common.atomic``): no other module renames files into place, makes
   temporary files or reads the umask, and every direct write elsewhere is listed below with what makes it safe;
+- one JSON file writer (``write_json_atomic``): no module writes a ``json.dumps`` text itself;
 - one centre crop (``grainwright.inference.images.crops``);
 - one close-match suggestion (``grainwright.inference.common.suggest``, the only user of ``difflib``);
 - one table of data-folder layouts (``grainwright.inference.images.layouts``);
@@ -118,6 +119,20 @@ def test_only_the_atomic_module_renames_folders_into_place():
     callers = {path for path, tree in SOURCES.items() for _, call in _calls(tree)
                if _dotted(call.func).rpartition(".")[2] == "atomic_folder"}
     assert callers >= {"trainer/run.py", "inference/evaluation/report.py"}
+
+
+def test_one_json_file_writer():
+    # json.dump to a handle, or a json.dumps text handed to a writer: write_json_atomic does both in one place
+    found = []
+    for path, tree in SOURCES.items():
+        if path == ATOMIC:
+            continue
+        for function, call in _calls(tree):
+            dotted = _dotted(call.func)
+            inner = [_dotted(node.func) for arg in call.args for node in ast.walk(arg) if isinstance(node, ast.Call)]
+            if dotted == "json.dump" or ("json.dumps" in inner and (_is_write(call) or "atomic" in dotted)):
+                found.append(f"{path}:{function}")
+    assert not found, f"write JSON files with write_json_atomic: {found}"
 
 
 def _function_names() -> dict[str, list[str]]:

@@ -8,7 +8,6 @@ nothing behind, and a run that stops at any later point can be resumed with ``--
 from __future__ import annotations
 
 import datetime
-import json
 import math
 import os
 import warnings
@@ -19,7 +18,7 @@ from typing import Any, Callable
 import numpy as np
 import torch
 
-from grainwright.inference.common.atomic import atomic_folder, remove_stale_temporaries, write_text_atomic
+from grainwright.inference.common.atomic import atomic_folder, remove_stale_temporaries, write_json_atomic
 from grainwright.inference.common.errors import (
     ConfigError,
     GrainwrightError,
@@ -415,7 +414,7 @@ def create_run_folder(out: Path, config: dict[str, Any], noise: Any) -> RunFolde
 
 
 def _write_summary(run: RunFolder, summary: dict[str, Any]) -> None:
-    write_text_atomic(run.summary, json.dumps(summary, indent=2, default=float) + "\n")
+    write_json_atomic(run.summary, summary, default=float)
 
 
 def summary_line(summary: dict[str, Any], run: RunFolder) -> str:

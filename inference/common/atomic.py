@@ -190,9 +190,11 @@ def write_text_atomic(path: str | Path, text: str, *, durable: bool = False) -> 
     return write_bytes_atomic(path, text.encode("utf-8"), durable=durable)
 
 
-def write_json_atomic(path: str | Path, document: Any, *, durable: bool = False, default: Any = None) -> Path:
-    """Write ``document`` as indented JSON (trailing newline) to ``path`` atomically."""
-    return write_text_atomic(path, json.dumps(document, indent=2, default=default) + "\n", durable=durable)
+def write_json_atomic(path: str | Path, document: Any, *, durable: bool = False, default: Any = None,
+                      indent: int = 2) -> Path:
+    """Write ``document`` as indented JSON (trailing newline) to ``path`` atomically; ``default`` converts what
+    JSON cannot hold (as in :func:`json.dumps`)."""
+    return write_text_atomic(path, json.dumps(document, indent=indent, default=default) + "\n", durable=durable)
 
 
 def move_file(source: str | Path, target: str | Path, *, durable: bool = True) -> Path:

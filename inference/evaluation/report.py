@@ -13,7 +13,6 @@ from __future__ import annotations
 import csv
 import html
 import io
-import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,7 +21,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-from grainwright.inference.common.atomic import atomic_folder
+from grainwright.inference.common.atomic import atomic_folder, write_json_atomic
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.evaluation.detail import STRUCTURED_THRESHOLD
 from grainwright.inference.evaluation.svgplot import log_scatter_svg
@@ -108,7 +107,7 @@ def write_report(out_dir: str | Path, content: ReportContent, *, overwrite: bool
     with atomic_folder(out_dir, replace_existing=overwrite) as staging:
         (staging / "images").mkdir()
         _write_csv(staging / "results.csv", content)
-        (staging / "results.json").write_text(json.dumps(_json_document(content), indent=2, default=_plain), "utf-8")
+        write_json_atomic(staging / "results.json", _json_document(content), default=_plain)
         (staging / "index.html").write_text(_html_page(content, staging / "images"), "utf-8")
     return out_dir
 

@@ -25,7 +25,7 @@ from typing import Iterable
 
 import numpy as np
 
-from grainwright.inference.common.atomic import atomic_path, is_temporary, write_text_atomic
+from grainwright.inference.common.atomic import atomic_path, is_temporary, write_json_atomic
 from grainwright.inference.common.errors import GrainwrightError, InputError
 from grainwright.inference.images.crops import centre_box
 from grainwright.inference.images.large_tiff import TiffRowReader, can_stream
@@ -445,7 +445,7 @@ def write_image(
         else:
             _write_tiff(temporary, data, text)
         if suffix == ".npy" and text is not None:
-            write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1))
+            write_json_atomic(Path(str(path) + ".json"), {"text": text}, indent=1)
     return path
 
 

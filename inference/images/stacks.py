@@ -18,7 +18,6 @@ stack axes in one file (T and Z), a gap in a folder's numbering.
 """
 from __future__ import annotations
 
-import json
 import re
 import xml.etree.ElementTree as ElementTree
 from collections.abc import Iterable, Iterator
@@ -28,7 +27,7 @@ from pathlib import Path
 import numpy as np
 import tifffile
 
-from grainwright.inference.common.atomic import atomic_path, write_text_atomic
+from grainwright.inference.common.atomic import atomic_path, write_json_atomic
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.imageio import (
     EXACT_INTEGER_DTYPES,
@@ -424,7 +423,7 @@ def write_stack(
         else:
             _write_tiff_stack(temporary, checked, info, text)
     if suffix == ".npy" and text is not None:
-        write_text_atomic(Path(str(path) + ".json"), json.dumps({"text": text}, indent=1), durable=durable)
+        write_json_atomic(Path(str(path) + ".json"), {"text": text}, durable=durable, indent=1)
     return path
 
 

@@ -32,7 +32,7 @@ from typing import Any
 import numpy as np
 import onnxruntime as ort
 
-from grainwright.inference.common.atomic import write_text_atomic
+from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import InputError
 
 PROFILE_FORMAT = "grainwright-machine-profile"
@@ -294,7 +294,7 @@ def measure_profile(threads: int = 2, widths: tuple[int, ...] = REFERENCE_WIDTHS
 
 def save_profile(profile: dict[str, Any], path: str | Path) -> Path:
     """Write the profile as JSON atomically (temporary name in the same folder, then rename)."""
-    return write_text_atomic(path, json.dumps(profile, indent=1) + "\n")
+    return write_json_atomic(path, profile, indent=1)
 
 
 def load_profile(path: str | Path) -> dict[str, Any]:
