@@ -144,7 +144,7 @@ def speed(checkpoint: dict[str, Any], work: Path, threads: int, repeats: int) ->
 def run_bench(args: argparse.Namespace) -> int:
     import os
 
-    from grainwright.inference.common.atomic import write_text_atomic
+    from grainwright.inference.common.atomic import write_json_atomic
     from grainwright.models.checkpoint import load_checkpoint
     from grainwright.models.starting import load_starting_model
     from grainwright.trainer.generated import machine_description
@@ -177,7 +177,7 @@ def run_bench(args: argparse.Namespace) -> int:
                   f" dB (level given: {mean(case['starting model, level given']):.2f} dB); gap {case['gap_db']:+.2f} "
                   f"dB (target >= {case['allowed_gap_db']:+.1f})", flush=True)
             if saved:
-                write_text_atomic(saved, json.dumps(results, indent=2) + "\n")
+                write_json_atomic(saved, results)
         if args.repeats:
             results["speed"] = speed(checkpoint, work, args.threads, args.repeats)
             for label, value in results["speed"]["seconds_per_megapixel"].items():
@@ -185,5 +185,5 @@ def run_bench(args: argparse.Namespace) -> int:
             print(f"ratio starting / default: {results['speed']['ratio']:.2f} (target <= 1)")
     results["load_average_end"] = list(os.getloadavg())
     if saved:
-        write_text_atomic(saved, json.dumps(results, indent=2) + "\n")
+        write_json_atomic(saved, results)
     return 0

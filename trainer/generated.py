@@ -291,7 +291,7 @@ def train_generated(recipe_path: str | Path, out: str | Path | None = None, *, r
     The run folder is the trainer's (``config.toml`` = the recipe resolved, ``checkpoints/last.pt`` and
     ``best.pt``, ``training-summary.json``) plus ``machine.json`` (one entry per start or resume).
     """
-    from grainwright.inference.common.atomic import write_text_atomic
+    from grainwright.inference.common.atomic import write_json_atomic
     from grainwright.inference.common.tomlio import write_toml
 
     state = None
@@ -323,14 +323,14 @@ def train_generated(recipe_path: str | Path, out: str | Path | None = None, *, r
         history.append({"event": "resume" if state else "start", "step": 0 if state is None else state["step"],
                         "time": time.strftime("%Y-%m-%dT%H:%M:%S%z"), **machine_description(),
                         "torch_threads": torch.get_num_threads()})
-        write_text_atomic(history_path, json.dumps(history, indent=2) + "\n")
+        write_json_atomic(history_path, history)
         announce(f"generated data: dead-leaves stream + {len(TRAINING)} sample photographs; "
                  f"{setup.model.name} ({setup.model.parameter_count()} parameters, {setup.precision}); "
                  f"run folder {run.root}" + (f"; resuming at step {state['step']}" if state else ""))
         summary = train(setup, run, resume=state, interrupt_at_step=interrupt_at_step)
     finally:
         torch.set_num_threads(previous_threads)
-    write_text_atomic(run.summary, json.dumps(summary, indent=2, default=float) + "\n")
+    write_json_atomic(run.summary, summary, default=float)
     return summary, run
 
 
