@@ -543,8 +543,11 @@ def test_the_in_process_engine_gives_the_batch_output(tmp_path, model):
 def test_the_command_refuses_bad_settings_in_one_line(folders, model, capsys):
     assert main(["watch", str(model), str(folders / "missing"), "-o", str(folders / "out")]) == 2
     assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "in")]) == 2
+    assert main(["watch", str(model), str(folders / "in"), "-o", str(folders / "out"), "--inputs", "move",
+                 "--done-dir", str(folders / "out")]) == 2
     err = capsys.readouterr().err.splitlines()
-    assert len(err) == 2 and "watched folder not found" in err[0] and "must not be the watched folder" in err[1]
+    assert len(err) == 3 and "watched folder not found" in err[0] and "must not be the watched folder" in err[1]
+    assert "--done-dir must be a folder of its own" in err[2]
 
 
 # -- the benchmark, at toy size -----------------------------------------------------------------------------------

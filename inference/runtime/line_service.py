@@ -162,6 +162,10 @@ class LineSettings:
             raise ConfigError(f"{self.watch}: watched folder not found")
         if self.out_dir.resolve() == self.watch.resolve():
             raise ConfigError(f"{self.out_dir}: the output folder must not be the watched folder")
+        for name in ("done_dir", "quarantine_dir"):
+            if getattr(self, name).resolve() in (self.out_dir.resolve(), self.watch.resolve()):
+                raise ConfigError(f"{getattr(self, name)}: --{name.replace('_', '-')} must be a folder of its own, "
+                                  "not the watched or the output folder")
         for name in ("settle", "poll", "retry_wait", "status_every", "log_every", "backoff_max", "window"):
             if not getattr(self, name) > 0:
                 raise ConfigError(f"--{name.replace('_', '-')} must be positive, got {getattr(self, name)}")
