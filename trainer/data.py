@@ -65,6 +65,8 @@ class Layout:
 def detect_layout(root: str | Path) -> Layout:
     """Find which layout the folder ``root`` holds and pair its files by name.
 
+    In ``noisy-stacks/``, each multi-frame file and each sub-folder of numbered frames is one stack.
+
     Raises
     ------
     InputError
@@ -81,6 +83,8 @@ def detect_layout(root: str | Path) -> Layout:
     else:
         name, folders = "noisy-only", (".",)
     lists = [find_images([root / folder]) for folder in folders]
+    if name == "noisy-stacks":  # a sub-folder of numbered frames is one stack
+        lists[0] += sorted(path for path in (root / folders[0]).iterdir() if path.is_dir())
     if not lists[0]:
         where = root / folders[0] if folders[0] != "." else root
         raise InputError(where, "no images found (supported: PNG, TIFF, .npy)")
@@ -161,18 +165,39 @@ class PatchSource:
         return {role: np.ascontiguousarray(array.transpose(0, 3, 1, 2)) for role, array in patches.items()}
 
 
-def _read_sample(layout: Layout, sample: tuple[Path, ...]) -> list[dict[str, np.ndarray]] | None:
+def stack_windows(path: Path, frames: np.ndarray, stack_frames: int) -> list[dict[str, np.ndarray]]:
+    """Training samples of a multi-frame model from one stack ``(N, H, W, C)``: pairs of K-frame windows K frames
+    apart, ``noisy`` centred on frame ``i`` and ``noisy_b`` on frame ``i + K`` (frames side by side along the
+    channels, frame-major; reflected at the ends of the stack as at run time). Their frames never overlap, so
+    the centre of one is a frame outside the other (Noise2Noise across frames), and every frame is a centre."""
+    from grainwright.inference.runtime.stack_window import window_indices
+
+    count = frames.shape[0]
+    if count < stack_frames + 1:
+        raise InputError(path, f"has {count} frame(s); a {stack_frames}-frame model trains on stacks of at least "
+                         f"{stack_frames + 1} frames")
+
+    def window(centre: int) -> np.ndarray:
+        return np.concatenate(list(frames[window_indices(centre, count, stack_frames)]), axis=2)
+
+    return [{"noisy": window(i), "noisy_b": window(i + stack_frames)} for i in range(count - stack_frames)]
+
+
+def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1) -> list[dict[str, np.ndarray]] | None:
     """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields, or None (with
     a warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
     from grainwright.inference.images.imageio import read_frames
+    from grainwright.inference.images.stacks import read_stack
 
     try:
-        arrays = [read_frames(path) for path in sample]
+        arrays = [read_stack(path)[0] if path.is_dir() else read_frames(path) for path in sample]
     except InputError as error:
         if "NaN" in error.problem:
             raise
         warnings.warn(f"skipped {error}", stacklevel=3)
         return None
+    if layout.name == "noisy-stacks" and stack_frames > 1:
+        return stack_windows(sample[0], arrays[0], stack_frames)
     if layout.name == "noisy-stacks":
         frames = arrays[0]
         if frames.shape[0] < 2:
@@ -192,8 +217,10 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...]) -> list[dict[str, np.
     return [dict(zip(layout.roles, images))]
 
 
-def read_layout(layout: Layout, patch_size: int) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
+def read_layout(layout: Layout, patch_size: int,
+                stack_frames: int = 1) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
     """Read every sample of ``layout`` in native values; skip files that cannot be read, with a warning.
+    ``stack_frames`` > 1 (a multi-frame model) turns each stack into :func:`stack_windows`.
 
     Returns the images (one ``{role: array}`` per image) and the file each came from.
 
@@ -206,7 +233,7 @@ def read_layout(layout: Layout, patch_size: int) -> tuple[list[dict[str, np.ndar
     images: list[dict[str, np.ndarray]] = []
     sources: list[Path] = []
     for sample in layout.samples:
-        read = _read_sample(layout, sample)
+        read = _read_sample(layout, sample, stack_frames)
         if read is None:
             continue
         images.extend(read)

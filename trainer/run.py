@@ -140,14 +140,18 @@ def _read_training_images(config: dict[str, Any], announce: Callable[[str], None
 
     data_cfg = config["data"]
     layout = detect_layout(data_cfg["folder"])
+    frames = stack_frames(config)
+    if frames > 1 and layout.name != "noisy-stacks":
+        raise ConfigError(f"model.name: '{config['model']['name']}' reads {frames} frames and trains on stacks: put "
+                          f"multi-frame files or folders of numbered frames in {layout.root / 'noisy-stacks'}")
     noise, noise_path = _noise_description(config, layout.root)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        images, _ = read_layout(layout, data_cfg["patch_size"])
+        images, _ = read_layout(layout, data_cfg["patch_size"], stack_frames=frames)
     for warning in caught:
         announce(f"warning: {warning.message}")
     native = [item[role] for item in images for role in layout.roles]
-    channels = native[0].shape[2]
+    channels = native[0].shape[2] // frames  # a multi-frame model's windows hold its K frames side by side
     stacked = np.concatenate([array.reshape(1, -1, channels) for array in native], axis=1)
     normalization = Normalization.for_array(stacked, data_cfg["bit_depth"] or None)
     del stacked
@@ -156,6 +160,12 @@ def _read_training_images(config: dict[str, Any], announce: Callable[[str], None
     noisy_native = [item[role] for item in images for role in layout.roles if role != "clean"]
     findings = _analyse_noise(noisy_native, normalization) if noisy_native else None
     return _TrainingImages(layout, images, normalization, channels, noise, noise_path, findings)
+
+
+def stack_frames(config: dict[str, Any]) -> int:
+    """K of the configured architecture: the frames a multi-frame model reads per output frame (else 1)."""
+    hyper = {**hyper_defaults(config["model"]["name"]), **config["model"]["hyper"]}
+    return int(hyper.get("frames", 1))
 
 
 def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, announce: Callable[[str], None]) -> str:
@@ -168,6 +178,10 @@ def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, anno
     # Gaussian as is, Poisson-Gaussian after the Anscombe transform; log-domain speckle is skewed.
     estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
     name = config["scheme"]
+    if name == "auto" and stack_frames(config) > 1:
+        name = "neighbor2neighbor-stack"
+        announce(f"scheme auto: found {LAYOUT_TEXT[layout.name]} and a multi-frame model: neighbor2neighbor-stack "
+                 "(every pixel in the loss, valid where the scene moves; noise2noise-stack for still scenes)")
     if name == "auto":
         name, reason = choose_scheme(layout.name, data.noise is not None, estimated,
                                      None if findings is None else findings.found.describe())
@@ -318,6 +332,11 @@ def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.n
     except (TypeError, ValueError) as error:
         raise ConfigError(f"model.hyper: {error}") from None
     multiple = cls.patch_multiple * model.alignment
+    if model.stack_frames > 1 and not cls.multi_frame:
+        raise ConfigError(f"scheme '{scheme}' trains single-frame models; '{model.name}' reads {model.stack_frames} "
+                          "frames: use neighbor2neighbor-stack or noise2noise-stack")
+    if cls.multi_frame and model.stack_frames == 1:
+        raise ConfigError(f"scheme '{scheme}' trains multi-frame models; set model.name = \"unet-stack\"")
     if patch_size % multiple:
         raise ConfigError(f"data.patch_size: {patch_size} must be a multiple of {multiple} for scheme "
                           f"'{scheme}' with architecture '{model.name}'")
@@ -327,7 +346,7 @@ def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.n
     if "auto" in (channels_last, precision):
         layouts = (False, True) if channels_last == "auto" else (channels_last,)
         precisions = ("float32", "bfloat16") if precision == "auto" else (precision,)
-        (channels_last, precision), seconds = fastest_step(model, channels, patch_size,
+        (channels_last, precision), seconds = fastest_step(model, model.input_channels, patch_size,
                                                            config["data"]["batch_size"], layouts, precisions)
         measured = ", ".join(f"{'channels-last' if layout else 'standard'} {kind} {value * 1e3:.0f}"
                              for (layout, kind), value in seconds.items())
@@ -389,7 +408,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
                "noise_decided_by": _noise_origin(data) if data.noise is not None else None,
                "noise_found": None if data.findings is None else data.findings.found.describe(),
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
-               "channels_last": channels_last, "precision": precision}
+               "channels_last": channels_last, "precision": precision, "stack_frames": model.stack_frames}
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
                           validation=validation, ground_truth=layout.has_ground_truth,

@@ -4,7 +4,7 @@ from __future__ import annotations
 import argparse
 import importlib
 
-HELP = "measure speed and quality side by side (models, train, runtime, baselines, sizes, starting-model)"
+HELP = "measure speed and quality side by side (models, train, runtime, baselines, sizes, starting-model, stacks)"
 
 # Each target module is torch-free at import time and exposes HELP, add_arguments(parser) and run(args).
 BENCH_TARGETS: dict[str, str] = {
@@ -15,6 +15,7 @@ BENCH_TARGETS: dict[str, str] = {
     "sizes": "grainwright.console.commands.bench_sizes",
     "watch": "grainwright.console.commands.bench_watch",
     "starting-model": "grainwright.console.commands.bench_starting",
+    "stacks": "grainwright.console.commands.bench_stacks",
 }
 
 

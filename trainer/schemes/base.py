@@ -31,6 +31,9 @@ class Scheme:
     forward_passes_per_pixel : float
         Cost of one step in forward passes over the patch pixels (a backward pass counts as two), for the
         achieved-GFLOP/s figure.
+    multi_frame : bool
+        True when the scheme trains multi-frame models on K-frame windows of stacks (``noisy`` and ``noisy_b``
+        are windows K frames apart, frame-major channels); single-frame schemes refuse multi-frame models.
     clean_targets : bool
         True when the network learns clean targets; False when it learns noisy ones (its output then estimates
         the mean of the noisy data in the working domain, which the log domain's inverse must unbias).
@@ -43,6 +46,7 @@ class Scheme:
     needs_noise_level: bool = False
     forward_passes_per_pixel: float = 3.0
     clean_targets: bool = False
+    multi_frame: bool = False
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
                  level_maps: bool = True):

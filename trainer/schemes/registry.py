@@ -10,13 +10,16 @@ from grainwright.trainer.data import LAYOUT_TEXT
 from grainwright.trainer.schemes.base import Scheme
 from grainwright.trainer.schemes.masked import Masked
 from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor
+from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack
 from grainwright.trainer.schemes.noise2noise import Noise2Noise
+from grainwright.trainer.schemes.noise2noise_stack import Noise2NoiseStack
 from grainwright.trainer.schemes.recorrupted import Recorrupted
 from grainwright.trainer.schemes.supervised import Supervised
 from grainwright.trainer.schemes.sure import Sure
 
 SCHEMES: dict[str, type[Scheme]] = {
-    cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted, Sure)
+    cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted, Sure,
+                              Neighbor2NeighborStack, Noise2NoiseStack)
 }
 
 

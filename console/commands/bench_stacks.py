@@ -1,0 +1,34 @@
+"""``grainwright bench stacks``: multi-frame models against single-frame ones and classical filters, and the
+stack runtime's speed and memory; the measurement lives in :mod:`grainwright.benchmarks.stacks`."""
+from __future__ import annotations
+
+import argparse
+
+from grainwright.console.torch_needed import require_torch
+
+HELP = "stacks: K-frame vs single-frame speed, volume peak memory, sequence and volume quality vs classical filters"
+PARTS = ("runtime", "sequence", "volume")
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--parts", nargs="+", choices=PARTS, default=list(PARTS), help="what to measure (default: all)")
+    parser.add_argument("--frames", type=int, default=5, metavar="K", help="frames per window (default 5)")
+    parser.add_argument("--width", type=int, default=24, help="U-Net width of both models (default 24)")
+    parser.add_argument("--minutes", type=float, default=10.0, help="training budget per model (default 10)")
+    parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2], help="one run per seed (default 0 1 2)")
+    parser.add_argument("--threads", type=int, default=2, help="torch and ONNX Runtime threads (default 2)")
+    parser.add_argument("--size", type=int, default=512, help="frame edge of the speed runs (pixels, default 512)")
+    parser.add_argument("--runtime-frames", type=int, default=8, help="frames of the speed runs (default 8)")
+    parser.add_argument("--repeat", type=int, default=3, help="interleaved speed repetitions, median (default 3)")
+    parser.add_argument("--rss-slices", type=int, nargs="*", default=[200, 2000],
+                        help="slices of the generated volumes of the peak-memory runs (default 200 2000; none to skip)")
+    parser.add_argument("--rss-edge", type=int, default=64, help="slice edge of those volumes (pixels, default 64)")
+    parser.add_argument("--bm3d-frames", type=int, default=6, help="sequence frames scored with BM3D (default 6)")
+    parser.add_argument("--json", metavar="PATH", help="write all figures as JSON here")
+
+
+def run(args: argparse.Namespace) -> int:
+    require_torch("bench stacks")
+    from grainwright.benchmarks.stacks import run_bench
+
+    return run_bench(args)

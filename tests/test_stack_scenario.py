@@ -1,0 +1,60 @@
+"""The generated demo stacks: a conveyor sequence with stated motion and a cast volume with internal pores, both
+with exact clean frames; and the benchmark's scoring helpers."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import tifffile
+
+from grainwright.benchmarks.stacks import frame_average, psnr
+from grainwright.inference.synthetic.stack_scenario import (
+    METAL_LEVEL,
+    PORE_LEVEL,
+    cast_volume,
+    conveyor_sequence,
+    write_stack_scenario,
+)
+
+
+def test_sequence_motion_is_as_stated():
+    sequence = conveyor_sequence(frames=6, height=64, width=96, speed=3, seed=1)
+    top, bottom = sequence.motion["lane_rows"]
+    assert sequence.motion["speed_pixels_per_frame"] == 3
+    assert sequence.motion["moving_share"] == sequence.moving.mean() > 0.2
+    assert not sequence.moving[:top].any() and not sequence.moving[bottom:].any()
+    # Outside the lane the clean frames are identical; inside, frame t + 1 is frame t shifted 3 pixels right.
+    assert np.array_equal(sequence.clean[0, :top], sequence.clean[5, :top])
+    assert np.array_equal(sequence.clean[1, top:bottom, 3:], sequence.clean[0, top:bottom, :-3])
+    assert sequence.noisy.dtype == np.uint16 and sequence.noisy.shape == (6, 64, 96)
+
+
+def test_volume_pores_sit_inside_the_metal():
+    volume = cast_volume(slices=24, size=48, pores=6, seed=2)
+    assert len(volume.pores) == 6
+    for z, y, x, _ in volume.pores:  # darker than the metal at its centre, however small (partial volume)
+        assert PORE_LEVEL - 50 < volume.clean[z, y, x] < METAL_LEVEL - 0.3 * (METAL_LEVEL - PORE_LEVEL)
+    residual = volume.noisy.astype(np.float64) - volume.clean
+    assert 0.8 * 180 < residual.std() < 1.2 * 180
+    # The stated slice-to-slice correlation of the noise (AR(1) along Z).
+    correlation = np.corrcoef(residual[1:].ravel(), residual[:-1].ravel())[0, 1]
+    assert abs(correlation - volume.noise["slice_correlation"]) < 0.05
+
+
+def test_scenario_files_carry_axes_and_clean_frames(tmp_path):
+    description = write_stack_scenario(tmp_path, seed=3, sequence_frames=8, volume_slices=12, small=True)
+    with tifffile.TiffFile(tmp_path / "noisy-stacks" / "casting.tif") as tiff:
+        assert tiff.series[0].axes == "ZYX" and tiff.imagej_metadata["spacing"] == 0.1
+    with tifffile.TiffFile(tmp_path / "noisy-stacks" / "conveyor.tif") as tiff:
+        assert tiff.series[0].axes == "TYX" and tiff.series[0].shape[0] == 8
+    assert tifffile.imread(tmp_path / "clean-stacks" / "conveyor.tif").dtype == np.float32
+    saved = json.loads((tmp_path / "stacks.json").read_text())
+    assert saved["conveyor"]["motion"] == description["conveyor"]["motion"]
+
+
+def test_frame_average_and_psnr():
+    # Reference values: PSNR = 10 log10(peak^2 / MSE) (Gonzalez and Woods); a still scene averaged over 5 frames.
+    clean = np.full((7, 4, 4), 1000.0)
+    assert psnr(clean, clean + 10.0) == 10 * np.log10(4095.0**2 / 100.0)
+    noisy = clean + np.arange(7)[:, None, None]
+    assert frame_average(noisy, 5)[0, 0, 0] == 1000.0 + (2 + 1 + 0 + 1 + 2) / 5
