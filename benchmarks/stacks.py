@@ -40,7 +40,8 @@ from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.images.stacks import StackInfo, write_stack
 from grainwright.inference.runtime.runner import OnnxDenoiser
-from grainwright.inference.runtime.stack_window import denoise_stack_array, window_indices
+from grainwright.inference.evaluation.stack_compare import frame_average
+from grainwright.inference.runtime.stack_window import denoise_stack_array
 from grainwright.inference.synthetic.scenario import FULL_SCALE
 from grainwright.inference.synthetic.stack_scenario import (
     cast_volume,
@@ -141,12 +142,6 @@ def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any]
     return out / "model.onnx"
 
 
-def frame_average(noisy: np.ndarray, frames: int) -> np.ndarray:
-    """The plain K-frame average around each frame (reflected at the ends, as the models' window)."""
-    count = noisy.shape[0]
-    return np.stack([noisy[window_indices(i, count, frames)].astype(np.float64).mean(axis=0) for i in range(count)])
-
-
 def _tuned(clean: np.ndarray, candidates: dict[str, Callable[[], np.ndarray]]) -> tuple[str, np.ndarray, float]:
     """The candidate with the best PSNR against ``clean`` (tuning on ground truth: an upper bound)."""
     best = None
@@ -176,7 +171,8 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     data = folder / f"sequence-{seed}"
     write_stack_pair(data, "conveyor", sequence.noisy, sequence.clean, sequence_info(sequence))
     noisy, clean, moving = sequence.noisy.astype(np.float64), sequence.clean, sequence.moving
-    rows: dict[str, np.ndarray] = {"noisy": noisy, f"{frames}-frame average": frame_average(noisy, frames)}
+    average = frame_average(noisy[..., None], frames)[..., 0]
+    rows: dict[str, np.ndarray] = {"noisy": noisy, f"{frames}-frame average": average}
     stack_hyper = {"frames": frames, "levels": 2, "width": width}
     log(f"sequence seed {seed}: training the {frames}-frame model for {minutes} min")
     stack_model = train_and_export(data, folder / f"seq-stack-{seed}", model="unet-stack", hyper=stack_hyper,

@@ -7,7 +7,8 @@ import json
 import numpy as np
 import tifffile
 
-from grainwright.benchmarks.stacks import frame_average, psnr
+from grainwright.benchmarks.stacks import psnr
+from grainwright.inference.evaluation.stack_compare import frame_average
 from grainwright.inference.synthetic.stack_scenario import (
     METAL_LEVEL,
     PORE_LEVEL,
@@ -56,5 +57,5 @@ def test_frame_average_and_psnr():
     # Reference values: PSNR = 10 log10(peak^2 / MSE) (Gonzalez and Woods); a still scene averaged over 5 frames.
     clean = np.full((7, 4, 4), 1000.0)
     assert psnr(clean, clean + 10.0) == 10 * np.log10(4095.0**2 / 100.0)
-    noisy = clean + np.arange(7)[:, None, None]
-    assert frame_average(noisy, 5)[0, 0, 0] == 1000.0 + (2 + 1 + 0 + 1 + 2) / 5
+    noisy = (clean + np.arange(7)[:, None, None])[..., None]
+    assert frame_average(noisy, 5)[0, 0, 0, 0] == 1000.0 + (2 + 1 + 0 + 1 + 2) / 5

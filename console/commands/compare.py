@@ -39,6 +39,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sure-probes", type=int, default=1, metavar="N",
                         help="Monte-Carlo SURE probes per method and image (default 1)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    parser.add_argument("--stacks", action="store_true",
+                        help="the folders hold stacks (sequences, volumes; matched by name): per-slice PSNR/SSIM, a "
+                        "slice view, and the K-frame average ('frame-average') and per-frame BM3D ('bm3d') as "
+                        "classical rows; methods are .onnx files, frame-average and bm3d")
+    parser.add_argument("--stack-frames", type=int, default=5, metavar="K",
+                        help="with --stacks: frames of the frame-average row (odd, default 5)")
     sizes = parser.add_argument_group("model sizes tried (from 'grainwright bench sizes --sweep')")
     sizes.add_argument("--size-search", metavar="RESULTS.json", help="add a quality-versus-time plot of the sizes "
                        "in this size-search results file")
@@ -49,9 +55,26 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                        help="cycle-time target: drawn on the plot, and the chosen size is the best under it")
 
 
+def _run_stacks(args: argparse.Namespace) -> int:
+    from grainwright.inference.evaluation.stack_compare import compare_stacks
+
+    methods = [item.strip() for entry in args.methods for item in entry.split(",") if item.strip()]
+    document = compare_stacks(args.noisy, methods, args.out, clean_dir=args.clean, frames=args.stack_frames,
+                              threads=args.threads, log=lambda line: print(line, file=sys.stderr))
+    for stack, rows in document["means"].items():
+        print(stack)
+        for method, figures in rows.items():
+            quality = (f"PSNR {figures['psnr']:.2f} dB, SSIM {figures['ssim']:.4f}" if "psnr" in figures
+                       else f"noise left {figures['noise_left']:.3g}")
+            print(f"  {method:<40} {quality} (mean over slices)")
+    return 0
+
+
 def run(args: argparse.Namespace) -> int:
     for folder in (Path(args.out).parent, Path(args.out)):
         remove_stale_temporaries(folder)  # report folders or files half-written by a killed comparison
+    if args.stacks:
+        return _run_stacks(args)
     size_plot = None
     if args.size_search:
         if not args.profile:
