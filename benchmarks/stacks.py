@@ -109,10 +109,12 @@ def _volume_file(path: Path, slices: int, edge: int) -> Path:
     return path
 
 
-def peak_rss(model: Path, slices: int, edge: int, threads: int, folder: Path) -> dict[str, Any]:
-    """Peak RSS (MiB) of ``grainwright denoise`` in a fresh process on a generated ``slices``-slice volume."""
+def peak_rss(denoise_command: list[str], model: Path, slices: int, edge: int, threads: int,
+             folder: Path) -> dict[str, Any]:
+    """Peak RSS (MiB) of ``grainwright denoise`` (``denoise_command``) in a fresh process on a generated
+    ``slices``-slice volume."""
     source = _volume_file(folder / f"volume-{slices}.tif", slices, edge)
-    command = [sys.executable, "-m", "grainwright.console", "denoise", str(model), str(source), "-o",
+    command = [*denoise_command, str(model), str(source), "-o",
                str(folder / "out"), "--threads", str(threads), "-q", "--overwrite", "--fixed-pattern", "never"]
     start = time.perf_counter()
     launched = subprocess.run([sys.executable, "-c", _LAUNCHER, *command], capture_output=True, text=True)
@@ -231,7 +233,9 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
 # ----------------------------------------------------------------------------------------------------- command
 
 
-def run_bench(args: argparse.Namespace) -> int:
+def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
+    """Run ``grainwright bench stacks``; ``denoise_command`` launches ``grainwright denoise`` in a fresh process
+    (given by the command layer, which this layer does not import)."""
     figures: dict[str, Any] = {"arguments": {key: value for key, value in vars(args).items()
                                              if isinstance(value, (int, float, str, list, type(None)))}}
 
@@ -248,7 +252,8 @@ def run_bench(args: argparse.Namespace) -> int:
                                                  threads=args.threads, repeats=args.repeat)
             log(f"runtime: {json.dumps(figures['runtime'])}")
             if args.rss_slices:
-                figures["peak_rss"] = [peak_rss(stack_model, slices, args.rss_edge, args.threads, folder)
+                figures["peak_rss"] = [peak_rss(denoise_command, stack_model, slices, args.rss_edge, args.threads,
+                                                folder)
                                        for slices in args.rss_slices]
                 first, last = figures["peak_rss"][0], figures["peak_rss"][-1]
                 figures["peak_rss_ratio"] = last["peak_rss_mib"] / first["peak_rss_mib"]

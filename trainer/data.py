@@ -192,8 +192,8 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
     try:
         arrays = [read_stack(path)[0] if path.is_dir() else read_frames(path) for path in sample]
     except InputError as error:
-        if "NaN" in error.problem:
-            raise
+        if "NaN" in error.problem or any(path.is_dir() for path in sample):
+            raise  # a folder of frames with a gap or mixed shapes is a data error, not one unreadable file
         warnings.warn(f"skipped {error}", stacklevel=3)
         return None
     if layout.name == "noisy-stacks" and stack_frames > 1:

@@ -3,6 +3,7 @@ stack runtime's speed and memory; the measurement lives in :mod:`grainwright.ben
 from __future__ import annotations
 
 import argparse
+import sys
 
 from grainwright.console.torch_needed import require_torch
 
@@ -31,4 +32,4 @@ def run(args: argparse.Namespace) -> int:
     require_torch("bench stacks")
     from grainwright.benchmarks.stacks import run_bench
 
-    return run_bench(args)
+    return run_bench(args, denoise_command=[sys.executable, "-m", "grainwright.console", "denoise"])
