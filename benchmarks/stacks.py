@@ -130,8 +130,9 @@ def peak_rss(denoise_command: list[str], model: Path, slices: int, edge: int, th
 
 
 def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any], scheme: str, minutes: float,
-                     seed: int, threads: int) -> Path:
-    """Train on ``data`` for ``minutes`` (noisy frames only) and export the final state to ONNX."""
+                     seed: int, threads: int, trained: dict[str, Any] | None = None) -> Path:
+    """Train on ``data`` for ``minutes`` (noisy frames only) and export the final state to ONNX; the steps and
+    minutes done are added to ``trained`` under the model's name."""
     from grainwright.models.export import export_checkpoint
     from grainwright.trainer.run import train_command
 
@@ -141,6 +142,8 @@ def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any]
     summary, run = train_command(None, str(data), scheme=scheme, minutes=minutes, out=str(out),
                                  assignments=settings, announce=lambda message: None)
     export_checkpoint(run.best, out / "model.onnx", threads=threads, overwrite=True)
+    if trained is not None:
+        trained[model] = {"steps": summary.get("steps"), "minutes": summary.get("minutes")}
     return out / "model.onnx"
 
 
@@ -176,15 +179,17 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     average = frame_average(noisy[..., None], frames)[..., 0]
     rows: dict[str, np.ndarray] = {"noisy": noisy, f"{frames}-frame average": average}
     stack_hyper = {"frames": frames, "levels": 2, "width": width}
+    trained: dict[str, Any] = {}
     log(f"sequence seed {seed}: training the {frames}-frame model for {minutes} min")
     stack_model = train_and_export(data, folder / f"seq-stack-{seed}", model="unet-stack", hyper=stack_hyper,
-                                   scheme="neighbor2neighbor-stack", minutes=minutes, seed=seed, threads=threads)
+                                   scheme="neighbor2neighbor-stack", minutes=minutes, seed=seed, threads=threads,
+                                   trained=trained)
     rows[f"unet-stack K={frames}"] = _as_written(denoise_stack_array(OnnxDenoiser(stack_model, threads=threads),
                                                                      sequence.noisy[..., None])[..., 0])
     log(f"sequence seed {seed}: training the single-frame model for {minutes} min")
     single_model = train_and_export(data, folder / f"seq-single-{seed}", model="unet-small",
                                     hyper={"levels": 2, "width": width}, scheme="neighbor2neighbor", minutes=minutes,
-                                    seed=seed, threads=threads)
+                                    seed=seed, threads=threads, trained=trained)
     single = OnnxDenoiser(single_model, threads=threads)
     rows["unet-small (single frame)"] = np.stack([_as_written(single.run(frame[..., None], as_float=True)[..., 0])
                                                   for frame in sequence.noisy])
@@ -195,7 +200,7 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     table[f"BM3D per frame (sigma {sigma:g} DN tuned on GT; {len(scored)} frames)"] = {
         "psnr_whole": psnr(clean[scored], bm3d_out), "psnr_moving": psnr(clean[scored], bm3d_out, moving),
         "same_frames_unet_stack": psnr(clean[scored], rows[f"unet-stack K={frames}"][scored])}
-    return {"seed": seed, "motion": sequence.motion, "rows": table}
+    return {"seed": seed, "motion": sequence.motion, "trained": trained, "rows": table}
 
 
 def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
@@ -209,9 +214,10 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
     write_stack_pair(data, "casting", volume.noisy, volume.clean, volume_info(volume))
     noisy, clean = volume.noisy.astype(np.float64), volume.clean
     log(f"volume seed {seed}: training the {frames}-frame model for {minutes} min")
+    trained: dict[str, Any] = {}
     model = train_and_export(data, folder / f"vol-stack-{seed}", model="unet-stack",
                              hyper={"frames": frames, "levels": 2, "width": width}, scheme="neighbor2neighbor-stack",
-                             minutes=minutes, seed=seed, threads=threads)
+                             minutes=minutes, seed=seed, threads=threads, trained=trained)
     table = {"noisy": psnr(clean, noisy), f"unet-stack K={frames}": psnr(clean, _as_written(
         denoise_stack_array(OnnxDenoiser(model, threads=threads), volume.noisy[..., None])[..., 0]))}
     scaled = noisy / FULL_SCALE
@@ -227,7 +233,7 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
     label, _, score = _tuned(clean, {f"sigma {s:g} DN": (lambda s=s: np.stack([bm3d(
         z.astype(np.float32)[..., None], s)[..., 0] for z in noisy])) for s in (0.8 * sigma, sigma, 1.2 * sigma)})
     table[f"BM3D per slice ({label})"] = score
-    return {"seed": seed, "pores": len(volume.pores), "noise": volume.noise, "psnr": table}
+    return {"seed": seed, "pores": len(volume.pores), "noise": volume.noise, "trained": trained, "psnr": table}
 
 
 # ----------------------------------------------------------------------------------------------------- command
