@@ -94,18 +94,19 @@ def test_exports_for_the_users_data_with_onnx_parity(tmp_path, kind):
     (tmp_path / "samples").mkdir()
     write_image(tmp_path / "samples" / ("a.npy" if kind == "float32" else "a.tif"), array)
     output = tmp_path / "start.onnx"
-    export_starting_model(tmp_path / "samples", output, payload=_tiny_starting_payload())
+    export_starting_model(tmp_path / "samples", output)  # the shipped weights
     metadata = read_model_metadata(output)
     assert metadata["takes_noise_map"] and metadata["architecture"]["name"] == "unet-noisemap"
+    assert metadata["parity"]["calibration"]["max_abs_diff"] <= PARITY_TOLERANCE  # on a crop of the samples
     assert metadata["parity"]["random"]["max_abs_diff"] <= PARITY_TOLERANCE
     normalization = metadata["normalization"]
     if kind == "12-bit":
         assert normalization["bit_depth"] == 12 and normalization["high"] == 4095
     if kind == "uint8":
         assert normalization["high"] == 255
-    # The training level range follows the data's range.
+    # The training level range (0 to 75/255 of the range) follows the data's range.
     span = normalization["high"] - normalization["low"]
-    assert metadata["training_noise"]["sigma_native_range"][1] == pytest.approx(0.3 * span)
+    assert metadata["training_noise"]["sigma_native_range"][1] == pytest.approx(75 / 255 * span)
     denoised = OnnxDenoiser(output, threads=1).run(array, as_float=True)
     assert denoised.shape == array.shape and np.isfinite(denoised).all()
 
@@ -167,3 +168,55 @@ def test_a_finished_run_packages_as_weights_and_manifest(tmp_path):
     assert "[generated]" in manifest["recipe"]["text"]
     loaded = load_checkpoint(weights)  # weights_only, like every checkpoint
     assert torch.equal(loaded["state_dict"]["head.weight"], payload["state_dict"]["head.weight"])
+
+
+def test_the_shipped_weights_match_their_manifest():
+    from grainwright.models.starting import (
+        load_starting_model,
+        starting_model_manifest,
+        starting_model_path,
+        weights_sha256,
+    )
+
+    manifest = starting_model_manifest()
+    path = starting_model_path()
+    assert manifest["weights_sha256"] == hashlib.sha256(path.read_bytes()).hexdigest() == weights_sha256()
+    assert path.stat().st_size == manifest["weights_bytes"] <= 4 * 2**20  # at most 4 MB in the package
+    payload = load_starting_model()  # weights_only, after the SHA-256 check
+    assert payload["architecture"] == manifest["architecture"]["name"] == "unet-noisemap"
+    assert payload["hyper"] == manifest["architecture"]["hyper"]
+    # The recipe in the manifest is the shipped one, and the run completed its budget.
+    assert manifest["recipe"]["text"] == shipped_recipe_text()
+    assert manifest["steps"] == manifest["recipe"]["resolved"]["budget"]["steps"]
+    assert manifest["validation"]["history"], "the learning curve is recorded"
+
+
+def shipped_recipe_text() -> str:
+    from grainwright.trainer.config import shipped_config
+
+    return shipped_config("starting-model").read_text()
+
+
+@pytest.mark.slow
+def test_a_built_wheel_carries_the_starting_model(tmp_path):
+    # Packaging: `pip wheel` builds the wheel as users install it; the weights and manifest must be inside.
+    # Built from a copy of the source tree, so the build leaves nothing in the checkout.
+    import shutil
+    import subprocess
+    import sys
+    import zipfile
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    source = tmp_path / "source"
+    shutil.copytree(root, source, ignore=shutil.ignore_patterns(".venv", ".git", "build", "dist", "runs",
+                                                                 "__pycache__", "*.egg-info", ".hypothesis"))
+    subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-q", "-w",
+                    str(tmp_path / "wheel"), str(source)], check=True, capture_output=True)
+    (wheel,) = (tmp_path / "wheel").glob("grainwright-*.whl")
+    names = zipfile.ZipFile(wheel).namelist()
+    assert "grainwright/models/starting-model.pt" in names
+    assert "grainwright/models/starting-model.json" in names
+    manifest = json.loads(zipfile.ZipFile(wheel).read("grainwright/models/starting-model.json"))
+    digest = hashlib.sha256(zipfile.ZipFile(wheel).read("grainwright/models/starting-model.pt")).hexdigest()
+    assert digest == manifest["weights_sha256"]

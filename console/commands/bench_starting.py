@@ -19,6 +19,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="timed denoise runs per model on the 2048x2048 frame (0 = skip the speed part)")
     parser.add_argument("--threads", type=int, default=1, metavar="N", help="ONNX Runtime threads (default 1)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the noise (bench train's default 0)")
+    parser.add_argument("--bm3d-published", action="store_true", help="BM3D at its published threshold (2.7 sigma) "
+                        "in the opponent instead of its ground-truth grid (six times cheaper, a weaker opponent)")
     parser.add_argument("--json", metavar="FILE", help="also write the results as JSON; a rerun with the same "
                         "file reuses the opponent's tuning")
 
