@@ -225,3 +225,26 @@ def test_a_npy_crop_read_row_by_row_equals_numpys(tmp_path):
     np.testing.assert_array_equal(crop.frames, stack[:2, 15:35, 25:45])
     np.save(path, np.asfortranarray(stack[0]))
     np.testing.assert_array_equal(read_centre_of_file(path, 20).frames[0], stack[0, 15:35, 25:45])
+
+
+def test_a_stack_whose_frames_exceed_the_limit_is_refused_on_opening(tmp_path, monkeypatch):
+    # Stacks are read a whole frame at a time: a 2 x 60000 x 60000 .npy (a sparse hole on disk) must not get
+    # as far as its first frame (6.7 GiB).
+    from grainwright.inference.images.stacks import open_stack, read_stack
+
+    bomb = sparse_npy_bomb(tmp_path / "volume.npy", shape=(2, 60000, 60000))
+    with pytest.raises(InputError, match=r"volume.npy: declares 60000 x 60000 pixels, 1 channel, uint16"):
+        open_stack(bomb)
+    tiff = tmp_path / "volume.tif"
+    tifffile.imwrite(tiff, np.zeros((3, 64, 64), np.uint16), compression="zlib", photometric="minisblack")
+    assert open_stack(tiff).info.frames == 3
+    monkeypatch.setenv(limits.PIXELS_VARIABLE, "4000")
+    with pytest.raises(InputError, match=f"64 x 64 pixels.*{limits.PIXELS_VARIABLE}"):
+        open_stack(tiff)
+    monkeypatch.setenv(limits.PIXELS_VARIABLE, "5000")
+    monkeypatch.setenv(limits.DECODED_VARIABLE, "1")
+    tifffile.imwrite(tiff, np.zeros((200, 64, 64), np.uint16), compression="zlib",
+                    photometric="minisblack")  # 1.6 MiB in all
+    assert open_stack(tiff).info.frames == 200  # frame by frame: within the limits
+    with pytest.raises(InputError, match="200 frames of 64 x 64"):
+        read_stack(tiff)  # whole: over them

@@ -81,7 +81,7 @@ def within_limits(height: int, width: int, channels: int, dtype: np.dtype | str,
 
 
 def check_declared_size(path: str | Path, height: int, width: int, channels: int, dtype: np.dtype | str,
-                        frames: int = 1, *, streamable: bool = False) -> None:
+                        frames: int = 1, *, streamable: bool | None = False) -> None:
     """Refuse, before decoding, a file whose header declares more than the limits allow.
 
     Parameters
@@ -94,8 +94,9 @@ def check_declared_size(path: str | Path, height: int, width: int, channels: int
         The decoded sample type.
     frames : int
         Frames (pages) in the file.
-    streamable : bool
-        The file could be read piecewise (a tiled or striped TIFF): the message says so.
+    streamable : bool or None
+        The file could be read piecewise (a tiled or striped TIFF): the message says so; False suggests a tiled
+        TIFF; None says neither (a stack, read a whole frame at a time).
 
     Raises
     ------
@@ -112,6 +113,6 @@ def check_declared_size(path: str | Path, height: int, width: int, channels: int
     else:
         over = (f"over the limit of {limits.max_decoded_bytes / 2**20:.0f} MiB decoded per file "
                 f"(raise it with the environment variable {DECODED_VARIABLE})")
-    streamed = ("; denoise reads it in bands and inspect its central crop" if streamable
-                else "; save it as a tiled TIFF to have it read piecewise")
+    streamed = {True: "; denoise reads it in bands and inspect its central crop",
+                False: "; save it as a tiled TIFF to have it read piecewise", None: ""}[streamable]
     raise InputError(path, f"declares {describe_size(height, width, channels, dtype, frames)}, {over}{streamed}")

@@ -29,6 +29,7 @@ import tifffile
 
 from grainwright.inference.common.atomic import atomic_path, write_json_atomic
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.limits import check_declared_size
 from grainwright.inference.images.imageio import (
     EXACT_INTEGER_DTYPES,
     FLOAT_DTYPES,
@@ -363,15 +364,26 @@ def open_stack(path: str | Path) -> StackReader:
     if path.stat().st_size == 0:
         raise InputError(path, "empty file (0 bytes)")
     if suffix in (".tif", ".tiff"):
-        return _TiffStack(path)
+        return _within_limits(_TiffStack(path))
     if suffix == ".npy":
-        return _NpyStack(path)
+        return _within_limits(_NpyStack(path))
     raise InputError(path, f"a stack must be a TIFF or .npy file or a folder of numbered frames, not '{path.suffix}'")
+
+
+def _within_limits(reader: StackReader) -> StackReader:
+    """Refuse, before any frame is decoded, a stack whose frames (each read whole) exceed the size limits."""
+    try:
+        check_declared_size(reader.path, *reader.info.frame_shape, reader.info.dtype, streamable=None)
+    except BaseException:
+        reader.close()
+        raise
+    return reader
 
 
 def read_stack(path: str | Path) -> tuple[np.ndarray, StackInfo]:
     """The whole stack as ``(N, H, W, C)`` with its :class:`StackInfo` (for stacks that fit in memory)."""
     with open_stack(path) as reader:
+        check_declared_size(path, *reader.info.frame_shape, reader.info.dtype, reader.info.frames, streamable=None)
         frames = np.stack([reader.read(index) for index in range(reader.info.frames)])
         return frames, reader.info
 
