@@ -4,12 +4,14 @@ from __future__ import annotations
 import argparse
 import sys
 import time
+from collections.abc import Iterable
 
 from tqdm import tqdm
 
 from grainwright.console import HELP_CAUTION
 from grainwright.inference.common.errors import ConfigError
-from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES, denoise_files
+from grainwright.inference.runtime.batch import FIXED_PATTERN_MODES, FileResult, denoise_files, plan_batch
+from grainwright.inference.runtime.faults import Fault
 from grainwright.inference.runtime.runner import (
     ENSEMBLE_SIZES,
     NOISE_SIGMA_MODES,
@@ -80,26 +82,62 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="for a model without grainwright metadata: its receptive field (odd, pixels)")
     parser.add_argument("--alignment", type=int, default=1, metavar="N",
                         help="with --receptive-field: input sizes must be multiples of N (default 1)")
+    cluster = parser.add_mutually_exclusive_group()
+    cluster.add_argument("--scheduler", metavar="ADDRESS",
+                         help="fan the files out to the Dask cluster of this scheduler (e.g. tcp://host:8786); inputs "
+                         "and outputs must be on a filesystem every worker sees under the same paths; --threads is "
+                         "then ONNX Runtime threads per file (default 1, one file per worker thread). Needs the "
+                         "'cluster' extra")
+    cluster.add_argument("--local-workers", type=int, metavar="N",
+                         help="start a Dask cluster of N worker processes on this machine and fan the files out to "
+                         "it; --threads per file defaults to the cores divided by N. Needs the 'cluster' extra")
     parser.add_argument("-q", "--quiet", action="store_true", help="no progress bars")
 
 
 def run(args: argparse.Namespace) -> int:
     check_engine_arguments(args)
+    if args.local_workers is not None and args.local_workers < 1:
+        raise ConfigError(f"--local-workers must be at least 1, got {args.local_workers}")
+    on_cluster = args.scheduler is not None or args.local_workers is not None
+    if on_cluster:  # before the model is loaded: say at once when the extra is missing
+        from grainwright.inference.runtime import cluster
+
+        cluster.require_distributed()
     spec = None
     if args.receptive_field is not None:
         spec = ModelSpec(receptive_field=args.receptive_field, alignment=args.alignment)
     denoiser = OnnxDenoiser(
-        args.model, threads=args.threads, tile=args.tile, batch=args.batch, strength=args.strength,
-        noise_sigma=args.noise_sigma, ensemble=args.ensemble, spec=spec,
+        args.model, threads=1 if on_cluster else args.threads, tile=args.tile, batch=args.batch,
+        strength=args.strength, noise_sigma=args.noise_sigma, ensemble=args.ensemble, spec=spec,
     )
+    start = time.perf_counter()
+    options = {"recursive": args.recursive, "out_format": args.format, "as_float": args.float32,
+               "overwrite": args.overwrite, "keep_mixed": args.keep_mixed,
+               "into_input_folder": args.into_input_folder, "fixed_pattern": args.fixed_pattern}
+    if not on_cluster:
+        counts, megapixels, stopped = _report(
+            denoise_files(denoiser, args.inputs, args.out_dir, progress=not args.quiet, **options))
+    else:
+        jobs, expected = plan_batch(denoiser, args.inputs, args.out_dir, **options)
+        threads = args.threads or cluster.default_threads(args.local_workers)
+        with cluster.connect(args.scheduler, args.local_workers) as client:
+            counts, megapixels, stopped = _report(cluster.denoise_on_cluster(
+                client, denoiser, jobs, expected, threads=threads, overwrite=args.overwrite,
+                as_float=args.float32, fixed_pattern=args.fixed_pattern, progress=not args.quiet))
+    seconds = time.perf_counter() - start
+    rate = megapixels / seconds if seconds > 0 else 0.0
+    print(f"done {counts['done']}, skipped {counts['skipped']}, failed {counts['failed']} "
+          f"in {seconds:.1f} s ({megapixels:.1f} MP, {rate:.2f} MP/s)")
+    if stopped is not None:
+        print(f"stopped early ({stopped.kind.value}): the remaining inputs were not attempted; {counts['done']} "
+              "output(s) written are kept and a rerun skips them", file=sys.stderr)
+    return 1 if counts["failed"] else 0
+
+
+def _report(results: Iterable[FileResult]) -> tuple[dict[str, int], float, Fault | None]:
+    """Print one line per failed, skipped or warned-about file; count them; the fault that stopped the batch."""
     counts = {"done": 0, "skipped": 0, "failed": 0}
-    megapixels, start = 0.0, time.perf_counter()
-    results = denoise_files(
-        denoiser, args.inputs, args.out_dir, recursive=args.recursive, out_format=args.format,
-        as_float=args.float32, overwrite=args.overwrite, keep_mixed=args.keep_mixed,
-        into_input_folder=args.into_input_folder, fixed_pattern=args.fixed_pattern, progress=not args.quiet,
-    )
-    stopped = None
+    megapixels, stopped = 0.0, None
     for result in results:
         counts[result.status] += 1
         if result.fault is not None and result.fault.kind.stops_batch:
@@ -111,11 +149,4 @@ def run(args: argparse.Namespace) -> int:
             tqdm.write(f"failed: {result.message}", file=sys.stderr)
         elif result.status == "skipped":
             tqdm.write(f"skipped: {result.source}: {result.message}", file=sys.stderr)
-    seconds = time.perf_counter() - start
-    rate = megapixels / seconds if seconds > 0 else 0.0
-    print(f"done {counts['done']}, skipped {counts['skipped']}, failed {counts['failed']} "
-          f"in {seconds:.1f} s ({megapixels:.1f} MP, {rate:.2f} MP/s)")
-    if stopped is not None:
-        print(f"stopped early ({stopped.kind.value}): the remaining inputs were not attempted; {counts['done']} "
-              "output(s) written are kept and a rerun skips them", file=sys.stderr)
-    return 1 if counts["failed"] else 0
+    return counts, megapixels, stopped

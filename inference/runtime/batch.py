@@ -182,6 +182,34 @@ def _refuse_mixed_outputs(jobs: list[Job], expected: dict[str, Any], out_dir: Pa
             "another -o folder")
 
 
+def plan_batch(
+    denoiser: OnnxDenoiser,
+    inputs: list[str | Path],
+    out_dir: str | Path,
+    *,
+    recursive: bool = False,
+    out_format: str | None = None,
+    as_float: bool = False,
+    overwrite: bool = False,
+    keep_mixed: bool = False,
+    into_input_folder: bool = False,
+    fixed_pattern: str = "auto",
+) -> tuple[list[Job], dict[str, Any]]:
+    """The checks a batch makes before writing anything, and its plan: the jobs and the expected record.
+
+    Shared by :func:`denoise_files` and the cluster path (parameters and errors as in :func:`denoise_files`).
+    """
+    if fixed_pattern not in FIXED_PATTERN_MODES:
+        raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
+                               f"got {fixed_pattern!r}")
+    jobs = _checked_jobs(inputs, Path(out_dir), recursive=recursive, out_format=out_format,
+                         into_input_folder=into_input_folder)
+    expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
+    if not overwrite and not keep_mixed:
+        _refuse_mixed_outputs(jobs, expected, Path(out_dir))
+    return jobs, expected
+
+
 def denoise_files(
     denoiser: OnnxDenoiser,
     inputs: list[str | Path],
@@ -232,17 +260,11 @@ def denoise_files(
         Before anything is written: no inputs, output folder is an input folder, or existing outputs made with
         another model or settings (unless ``overwrite`` or ``keep_mixed``).
     """
-    if fixed_pattern not in FIXED_PATTERN_MODES:
-        raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
-                               f"got {fixed_pattern!r}")
-    jobs = _checked_jobs(inputs, Path(out_dir), recursive=recursive, out_format=out_format,
-                         into_input_folder=into_input_folder)
-    expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
-    if not overwrite and not keep_mixed:
-        _refuse_mixed_outputs(jobs, expected, Path(out_dir))
+    jobs, expected = plan_batch(denoiser, inputs, out_dir, recursive=recursive, out_format=out_format,
+                                as_float=as_float, overwrite=overwrite, keep_mixed=keep_mixed,
+                                into_input_folder=into_input_folder, fixed_pattern=fixed_pattern)
     for folder in sorted({job.output.parent for job in jobs}):
         remove_stale_temporaries(folder)  # what a killed earlier run left; never another host's or live process's
-
     files_bar = tqdm(total=len(jobs), unit="file", disable=not progress, position=0)
     tiles_bar = tqdm(unit="tile", disable=not progress, position=1, leave=False)
     try:
