@@ -50,7 +50,7 @@ def test_readme_quick_start_installs_and_tests_as_ci_does():
     blocks = re.findall(r"```\n(.*?)```", readme.split("## Quick start", 1)[1].split("\n## ", 1)[0], re.DOTALL)
     lines = [line for block in blocks for line in block.splitlines() if line.strip()]
     assert lines == [install, ".venv/bin/grainwright demo", test]
-    assert shlex.split(install)[-1] == ".[train,test]"
+    assert shlex.split(install)[-1] == ".[train,test,cluster]"
 
 
 def _prose(markdown: str) -> str:
