@@ -67,6 +67,7 @@ DIRECT_WRITES = {
     ("inference/images/large_tiff.py", "write_tiled_tiff"): ("atomic_path", "streams into atomic_path's file"),
     ("inference/images/stacks.py", "_write_npy"): ("caller", "handed write_stack's temporary file"),
     ("inference/images/stacks.py", "_write_tiff_stack"): ("caller", "handed write_stack's temporary file"),
+    ("inference/runtime/cluster.py", "setup"): ("mkdtemp", "a worker's private copy of the model, removed at teardown"),
     ("inference/runtime/machine_profile.py", "seconds_per_gmac"): ("TemporaryDirectory", "a scratch model"),
     ("inference/runtime/machine_profile.py", "runtime_overhead"): ("TemporaryDirectory", "a scratch model"),
     ("models/checkpoint.py", "save_checkpoint"): ("atomic_path", "torch.save into atomic_path's temporary file"),
