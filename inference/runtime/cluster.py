@@ -36,7 +36,7 @@ import socket
 import tempfile
 import time
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -206,6 +206,75 @@ def _lost(job: Job, error: BaseException) -> FileResult:
     return FileResult(job.source, None, "failed", str(fault), fault=fault)
 
 
+class _Progress:
+    """A tqdm bar of files with done, failed and MP/s; calling it with a result counts that result."""
+
+    def __init__(self, total: int, enabled: bool):
+        self.bar = tqdm(total=total, unit="file", disable=not enabled)
+        self.counts = {"done": 0, "failed": 0}
+        self.megapixels, self.start = 0.0, time.perf_counter()
+
+    def __call__(self, result: FileResult) -> FileResult:
+        self.bar.update(1)
+        if result.status in self.counts:
+            self.counts[result.status] += 1
+        self.megapixels += result.megapixels
+        elapsed = time.perf_counter() - self.start
+        self.bar.set_postfix_str(f"done {self.counts['done']}, failed {self.counts['failed']}, "
+                                 f"{self.megapixels / elapsed if elapsed > 0 else 0.0:.2f} MP/s")
+        return result
+
+
+def _register_model(client: Any, denoiser: OnnxDenoiser, threads: int) -> str:
+    """Send the model's bytes and settings to every worker (present and future); the plugin's name."""
+    data = denoiser.path.read_bytes()
+    sha256 = hashlib.sha256(data).hexdigest()
+    options = {"threads": threads, "tile": denoiser.tile, "batch": denoiser.batch, "strength": denoiser.strength,
+               "noise_sigma": denoiser.noise_sigma, "ensemble": denoiser.ensemble, "spec": denoiser.spec}
+    name = plugin_name(sha256, options)
+    client.register_plugin(ModelLoader(denoiser.path.name, data, sha256, options), name=name)
+    return name
+
+
+def _windowed(jobs: list[Job], limit: int, submit: Callable[[Job], Any]) -> Iterator[tuple[Job, Any]]:
+    """Submit ``jobs`` with at most ``limit`` tasks in flight; yield each job with its result or its error."""
+    from distributed import as_completed
+
+    pending = iter(jobs)
+    owner: dict[Any, Job] = {}
+
+    def send(job: Job) -> Any:
+        future = submit(job)
+        owner[future] = job
+        return future
+
+    flight = as_completed([send(job) for job in itertools.islice(pending, limit)])
+    for future in flight:
+        job = owner.pop(future)
+        try:
+            outcome = future.result()
+        except Exception as error:  # KilledWorker, or the task could not run at all
+            outcome = error
+        future.release()
+        yield job, outcome
+        next_job = next(pending, None)
+        if next_job is not None:
+            flight.add(send(next_job))
+
+
+def _as_result(job: Job, outcome: Any) -> FileResult:
+    return outcome if isinstance(outcome, FileResult) else _lost(job, outcome)
+
+
+def _clean_up(client: Any, name: str, jobs: list[Job]) -> None:
+    """Unload the model from the workers; remove dead processes' temporary files on this host."""
+    with contextlib.suppress(Exception):
+        client.unregister_worker_plugin(name)
+    for folder in {job.output.parent for job in jobs}:
+        if folder.is_dir():
+            remove_stale_temporaries(folder)  # other hosts' leftovers are left alone
+
+
 def denoise_on_cluster(
     client: Any,
     denoiser: OnnxDenoiser,
@@ -240,77 +309,30 @@ def denoise_on_cluster(
     progress : bool
         Show a tqdm bar of files with done, failed and MP/s.
     """
-    from distributed import as_completed
-
-    data = denoiser.path.read_bytes()
-    sha256 = hashlib.sha256(data).hexdigest()
-    options = {"threads": threads, "tile": denoiser.tile, "batch": denoiser.batch, "strength": denoiser.strength,
-               "noise_sigma": denoiser.noise_sigma, "ensemble": denoiser.ensemble, "spec": denoiser.spec}
-    name = plugin_name(sha256, options)
-    client.register_plugin(ModelLoader(denoiser.path.name, data, sha256, options), name=name)
-    file_options = {"overwrite": overwrite, "as_float": as_float, "fixed_pattern": fixed_pattern,
-                    "durable": durable}
-    run_id = uuid.uuid4().hex[:16]
-    window = in_flight or max(2, IN_FLIGHT_PER_SLOT * _slots(client))
-    bar = tqdm(total=len(jobs), unit="file", disable=not progress)
-    counts, megapixels, start = {"done": 0, "failed": 0}, 0.0, time.perf_counter()
-
-    def report(result: FileResult) -> FileResult:
-        nonlocal megapixels
-        bar.update(1)
-        if result.status in counts:
-            counts[result.status] += 1
-        megapixels += result.megapixels
-        elapsed = time.perf_counter() - start
-        bar.set_postfix_str(f"done {counts['done']}, failed {counts['failed']}, "
-                            f"{megapixels / elapsed if elapsed > 0 else 0.0:.2f} MP/s")
-        return result
-
-    def run(batch: list[Job], limit: int) -> Iterator[tuple[Job, FileResult | BaseException]]:
-        """Submit ``batch`` with at most ``limit`` tasks in flight; yield each job with its result or error."""
-        pending = iter(batch)
-        owner: dict[Any, Job] = {}
-
-        def submit(job: Job) -> Any:
-            future = client.submit(denoise_on_worker, name, job, expected, run_id, file_options, pure=False)
-            owner[future] = job
-            return future
-
-        flight = as_completed([submit(job) for job in itertools.islice(pending, limit)])
-        for future in flight:
-            job = owner.pop(future)
-            try:
-                outcome: FileResult | BaseException = future.result()
-            except Exception as error:  # KilledWorker, or the task could not run at all
-                outcome = error
-            future.release()
-            yield job, outcome
-            next_job = next(pending, None)
-            if next_job is not None:
-                flight.add(submit(next_job))
-
     from distributed import KilledWorker
 
+    name = _register_model(client, denoiser, threads)
+    run = uuid.uuid4().hex[:16]  # marks this batch's outputs, to recognise one made by a worker that then died
+    file_options = {"overwrite": overwrite, "as_float": as_float, "fixed_pattern": fixed_pattern,
+                    "durable": durable}
+
+    def submit(job: Job) -> Any:
+        return client.submit(denoise_on_worker, name, job, expected, run, file_options, pure=False)
+
+    window = in_flight or max(2, IN_FLIGHT_PER_SLOT * _slots(client))
+    count = _Progress(len(jobs), progress)
     suspects: list[Job] = []
-    stopped = False
     try:
-        for job, outcome in run(jobs, window):
+        for job, outcome in _windowed(jobs, window, submit):
             if isinstance(outcome, KilledWorker):
                 suspects.append(job)  # perhaps only queued beside the file that kills workers: retried alone
                 continue
-            result = report(outcome if isinstance(outcome, FileResult) else _lost(job, outcome))
+            result = count(_as_result(job, outcome))
             yield result
             if result.fault is not None and result.fault.kind.stops_batch:
-                stopped = True
-                break  # every later file would fail the same way; in-flight tasks are cancelled below
-        if not stopped:
-            for job, outcome in run(suspects, 1):
-                yield report(outcome if isinstance(outcome, FileResult) else _lost(job, outcome))
+                return  # every later file would fail the same way; tasks still in flight are released
+        for job, outcome in _windowed(suspects, 1, submit):
+            yield count(_as_result(job, outcome))
     finally:
-        bar.close()
-        with contextlib.suppress(Exception):
-            client.unregister_worker_plugin(name)
-        # Leftover temporary files of killed worker processes on this host (other hosts' are left alone).
-        for folder in {job.output.parent for job in jobs}:
-            if folder.is_dir():
-                remove_stale_temporaries(folder)
+        count.bar.close()
+        _clean_up(client, name, jobs)
