@@ -447,3 +447,26 @@ def test_the_first_checkpoint_interval_is_short(tmp_path, monkeypatch):
                       announce=_quiet, assignments=TINY + ["checkpoint.every_minutes=100",
                                                            "validation.every_steps=1000"])
     assert load_checkpoint(tmp_path / "run" / "checkpoints" / "last.pt")["step"] == 1  # then every 100 minutes
+
+
+def test_validation_against_clean_patches_in_the_log_domain_ignores_the_speckle_bias():
+    """A network that returned the clean log exactly would have been scored against a reference brightened by
+    exp(-bias); the clean patches go back without the bias the output's inverse removes."""
+    from types import SimpleNamespace
+
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.trainer.loop import validation_scores
+
+    norm = Normalization("uint16", 12, 0.0, 4095.0, 1).with_log(looks=4.0, noisy_targets=True)
+    clean = np.random.default_rng(0).uniform(0.1, 0.9, (2, 1, 16, 16)).astype(np.float32)
+    clean_working = norm.to_working(clean * 4095.0)
+    # The "noisy" input already holds what a perfect denoiser trained on noisy targets outputs: the clean log plus
+    # the bias (in working units), which the identity model hands on.
+    perfect = clean_working + np.float32(norm.transform["bias"] / norm.transform["scale"])
+    np.testing.assert_allclose(norm.from_working_float(perfect), clean * 4095.0, rtol=1e-4)
+    batch = {"noisy": perfect.astype(np.float32), "clean": clean_working}
+    setup = SimpleNamespace(model=torch.nn.Identity(), normalization=norm, validation=[batch], ground_truth=True,
+                            channels_last=False,
+                            scheme=SimpleNamespace(validation_loss=lambda model, tensors: 0.0,
+                                                   noise_level=lambda batch: None))
+    assert validation_scores(setup)["psnr"] > 80.0

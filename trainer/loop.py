@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import copy
+import dataclasses
 import math
 import signal
 import sys
@@ -138,6 +139,11 @@ def validation_scores(setup: TrainingSetup) -> dict[str, float]:
     from grainwright.inference.evaluation.metrics import psnr, ssim
 
     model, scheme, norm = setup.model, setup.scheme, setup.normalization
+    # Clean patches carry no speckle: their log goes back without the log-domain bias the output's inverse removes.
+    clean_norm = norm
+    if norm.transform and norm.transform.get("bias"):
+        clean_norm = dataclasses.replace(norm, transform={key: value for key, value in norm.transform.items()
+                                                          if key != "bias"})
     scores: dict[str, list[float]] = {"loss": [], "psnr": [], "ssim": []}
     span = float(norm.high - norm.low)
     model.eval()
@@ -150,7 +156,7 @@ def validation_scores(setup: TrainingSetup) -> dict[str, float]:
             level = scheme.noise_level(batch)
             output = apply_model(model, tensors["noisy"], None if level is None else torch.from_numpy(level))
             for clean, denoised in zip(batch["clean"], output.contiguous().numpy()):
-                reference = norm.from_working_float(clean.transpose(1, 2, 0))
+                reference = clean_norm.from_working_float(clean.transpose(1, 2, 0))
                 test = norm.from_working_float(denoised.transpose(1, 2, 0))
                 scores["psnr"].append(float(psnr(reference, test, peak=span)))
                 scores["ssim"].append(float(ssim(reference, test, data_range=span)))
