@@ -16,6 +16,7 @@ BENCH_TARGETS: dict[str, str] = {
     "watch": "grainwright.console.commands.bench_watch",
     "starting-model": "grainwright.console.commands.bench_starting",
     "stacks": "grainwright.console.commands.bench_stacks",
+    "cluster": "grainwright.console.commands.bench_cluster",
 }
 
 

@@ -177,7 +177,7 @@ def connect(scheduler: str | None = None, local_workers: int | None = None) -> I
     if local_workers is not None:
         if local_workers < 1:
             raise ConfigError(f"--local-workers must be at least 1, got {local_workers}")
-        with LocalCluster(n_workers=local_workers, threads_per_worker=1, processes=True, dashboard_address=None,
+        with LocalCluster(n_workers=local_workers, threads_per_worker=1, processes=True, dashboard_address=":0",
                           silence_logs=logging.ERROR) as cluster, Client(cluster) as client:
             yield client
         return
