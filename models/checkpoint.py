@@ -36,6 +36,8 @@ A run folder (written by ``grainwright train``)::
     RUN_DIR/training-summary.json    final summary (also inside the checkpoints)
     RUN_DIR/checkpoints/last.pt      latest state, with the resume keys
     RUN_DIR/checkpoints/best.pt      best validation so far; what ``grainwright export RUN_DIR`` exports
+    RUN_DIR/checkpoints/start.pt     the state training started from (the starting model or an earlier
+                                     run, with this run's data description); absent for random weights
 """
 from __future__ import annotations
 
@@ -89,6 +91,10 @@ class RunFolder:
     @property
     def best(self) -> Path:
         return self.checkpoints / "best.pt"
+
+    @property
+    def start(self) -> Path:
+        return self.checkpoints / "start.pt"
 
 
 def resolve_checkpoint(path: str | Path) -> Path:

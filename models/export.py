@@ -196,6 +196,9 @@ def shareable_summary(summary: dict[str, Any] | None, record_data_path: bool = F
     summary = dict(summary)
     if summary.get("data_folder") and not record_data_path:
         summary["data_folder"] = PurePath(str(summary["data_folder"])).name
+    started = summary.get("started_from")
+    if isinstance(started, dict) and started.get("path") and not record_data_path:
+        summary["started_from"] = dict(started, path=PurePath(str(started["path"])).name)
     return summary
 
 
@@ -257,6 +260,10 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "scheme": payload.get("scheme"),
         "data_fingerprint": payload.get("data_fingerprint"),
         "training_summary": shareable_summary(payload.get("training_summary"), record_data_path),
+        # Where training started (starting model + sha256, random weights, an earlier run) and which end was kept.
+        "started_from": (shareable_summary(payload.get("training_summary"), record_data_path) or {}).get(
+            "started_from"),
+        "selection": (payload.get("training_summary") or {}).get("selection"),
         "source_checkpoint": {"file": source.name, "created": payload.get("created"),
                               "tool_version": payload.get("tool_version")},
         "opset": OPSET,

@@ -188,3 +188,42 @@ def test_neighbor2neighbor_validation_ranks_a_denoiser_above_the_identity():
     assert float(scheme.loss(Identity(), tensors, 1.0)) < float(scheme.loss(Perfect(), tensors, 1.0))
     assert float(scheme.validation_loss(Perfect(), tensors)) == pytest.approx(sigma ** 2, rel=0.1)
     assert float(scheme.validation_loss(Identity(), tensors)) == pytest.approx(2 * sigma ** 2, rel=0.1)
+
+
+class LevelRecorder(torch.nn.Module):
+    """A noise-map model that records the level map of each call and returns its input."""
+
+    takes_noise_map = True
+
+    def __init__(self):
+        super().__init__()
+        self.levels: list[torch.Tensor] = []
+
+    def forward(self, image, level):
+        self.levels.append(level)
+        return image
+
+
+@pytest.mark.parametrize("scheme_class", [Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted,
+                                          SCHEMES["sure"]])
+def test_each_scheme_feeds_the_noise_level_of_the_image_the_network_sees(scheme_class):
+    """The level map is the standard deviation of the noise in the network's input: sigma for the noisy image, its
+    sub-sampled halves (Neighbor2Neighbor picks pixels, it does not average them: Huang et al. 2021), the other shot
+    (Noise2Noise) and the masked image; sigma * sqrt(1 + alpha^2) for Recorrupted-to-Recorrupted's input
+    y + alpha z (Pang et al. 2021: the variances of independent Gaussian terms add)."""
+    sigma, alpha = 0.1, 0.3
+    config = defaults()
+    config["recorrupted"]["alpha"] = alpha
+    noise = noise_from_dict({"kind": "gaussian", "sigma": sigma})
+    scheme = scheme_class(config, noise, np.array([sigma], dtype=np.float32), level_maps=True)
+    rng = np.random.default_rng(0)
+    patch = rng.random((2, 1, 16, 16), dtype=np.float32)
+    patches = {"clean": patch} if scheme_class is Supervised else {"noisy": patch, "noisy_b": patch[::-1].copy()}
+    batch = {key: torch.from_numpy(np.ascontiguousarray(value)) for key, value in scheme.prepare(patches, rng).items()}
+    model = LevelRecorder()
+    scheme.loss(model, batch, 0.5)
+    expected = sigma * np.sqrt(1 + alpha ** 2) if scheme_class is Recorrupted else sigma
+    assert model.levels
+    for level in model.levels:
+        assert level.shape[0] == 2 and level.shape[1] == 1
+        assert torch.allclose(level, torch.full_like(level, expected), rtol=1e-6)

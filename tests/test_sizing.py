@@ -103,6 +103,8 @@ def test_fit_assignments_pick_and_build_the_rung(tmp_path, rungs):
     assert any("picked residual 10x48" in line and "predicted" in line for line in said)
     config = load_config(None, assignments)
     assert config["model"]["name"] == "residual" and config["model"]["hyper"] == {"depth": 10, "width": 48}
+    # The ladder has no starting model: the fitted size says so and trains from random weights.
+    assert config["start"]["weights"] == "random" and any("from random weights" in line for line in said)
     assert build_model("residual", 1, **config["model"]["hyper"]).macs_per_pixel() == rungs[4].macs_per_pixel
 
 

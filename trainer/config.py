@@ -56,6 +56,14 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                          "measurement (recorded in the run's config). Validation and export stay float32.",
                          choices=("auto", "float32", "bfloat16")),
     },
+    "start": {
+        "weights": Key("str", "starting-model", "Where training starts: `starting-model` = the shipped starting "
+                       "model (fine-tuning; when the architecture is its `unet-noisemap` with 3 levels of width 16, "
+                       "else random weights, said at the start), `random` = random weights, or the path of an "
+                       "earlier run folder or checkpoint of yours (continue fitting on new frames; architecture and "
+                       "channels must match). The run keeps the better of its start and its end on held-out frames "
+                       "and records which (`training-summary.json`: `started_from`, `selection`)."),
+    },
     "data": {
         "folder": Key("str", "", "Data folder (set by `--data`; recorded so that `--resume` finds it)."),
         "patch_size": Key("int", 64, "Edge of the square training patches, pixels.", 8, 1024),

@@ -56,6 +56,10 @@ class TrainingSetup:
     data_fingerprint: str | None = None
     training_noise: dict[str, Any] | None = None
     summary: dict[str, Any] = field(default_factory=dict)
+    # Held-out frames for keeping the better of the start and the end (grainwright.trainer.start), and whether the
+    # run started from trained weights (the starting model or an earlier run) rather than random ones.
+    heldout: list[dict[str, np.ndarray]] = field(default_factory=list)
+    from_trained_weights: bool = False
 
 
 def learning_rate(progress: float, optim: dict[str, Any]) -> float:
@@ -254,6 +258,7 @@ class _Training:
         self.timed_steps, self.timed_seconds = 0, 0.0  # this session's steps only (not a resumed run's earlier)
         self.last_save = time.monotonic()
         self.saves_this_session = 0
+        self.selection: dict[str, Any] | None = None
 
     def progress(self) -> float:
         """The fraction of the budget spent: steps over ``budget.steps``, else seconds over ``budget.minutes``."""
@@ -278,11 +283,13 @@ class _Training:
         return {"steps": self.state.step, "minutes": self.state.elapsed / 60.0, "best_step": self.state.best_step,
                 "best_validation": self.state.best,
                 "patches_per_second": rate * self.config["data"]["batch_size"],
-                "gflops_per_second": rate * self.flops_per_step / 1e9, "validation_history": self.state.history}
+                "gflops_per_second": rate * self.flops_per_step / 1e9, "validation_history": self.state.history,
+                "selection": self.selection}
 
-    def _payload(self, with_resume: bool) -> dict[str, Any]:
+    def _payload(self, with_resume: bool, model: torch.nn.Module | None = None) -> dict[str, Any]:
         setup = self.setup
-        content = checkpoint_payload(setup.model, setup.normalization, noise=setup.noise, scheme=setup.scheme.name,
+        content = checkpoint_payload(model or setup.model, setup.normalization, noise=setup.noise,
+                                     scheme=setup.scheme.name,
                                      training_summary=dict(setup.summary, **self.summarise()),
                                      data_fingerprint=setup.data_fingerprint, training_noise=setup.training_noise)
         if with_resume:
@@ -293,6 +300,31 @@ class _Training:
 
     def save_best(self) -> None:
         save_checkpoint(self.run.best, self._payload(with_resume=False))
+
+    def save_start(self) -> None:
+        """``start.pt``: the state training starts from, described like this run's checkpoints."""
+        save_checkpoint(self.run.start, self._payload(with_resume=False))
+
+    def keep_the_better_end(self) -> None:
+        """Score the starting state and ``best.pt`` on the held-out frames and keep the better as ``best.pt``
+        (``grainwright.trainer.start``); the figures and the verdict go into the summary."""
+        from grainwright.models.checkpoint import load_checkpoint
+        from grainwright.trainer.start import CRITERIA, criterion_for, heldout_score
+
+        setup = self.setup
+        criterion = criterion_for(setup.heldout, setup.normalization, setup.noise, setup.scheme)
+        scorer = copy.deepcopy(setup.model).to(memory_format=torch.contiguous_format)
+        states = {"start": load_checkpoint(self.run.start)["state_dict"],
+                  "end": load_checkpoint(self.run.best)["state_dict"]}
+        scores = {}
+        for name, state in states.items():
+            scorer.load_state_dict(state)
+            scores[name] = heldout_score(scorer, setup.heldout, criterion, setup.scheme, self.config["seed"])
+        kept = "fine-tuned" if scores["end"] < scores["start"] else "start"
+        self.selection = {"criterion": CRITERIA[criterion], "start": scores["start"], "fine_tuned": scores["end"],
+                          "kept": kept, "frames": len(setup.heldout)}
+        scorer.load_state_dict(states["end" if kept == "fine-tuned" else "start"])
+        save_checkpoint(self.run.best, self._payload(with_resume=False, model=scorer))
 
     def save_last(self) -> None:
         save_checkpoint(self.run.last, self._payload(with_resume=True))
@@ -346,6 +378,9 @@ class _Training:
             self.save_best()
         if not validating or state.best is None:
             self.save_best()  # nothing to compare: the latest state is the best
+        if stopped != "interrupted" and self.setup.from_trained_weights and self.setup.heldout \
+                and self.run.start.is_file():
+            self.keep_the_better_end()
         self.save_last()
 
 
@@ -445,6 +480,8 @@ def train(setup: TrainingSetup, run: RunFolder, resume: dict[str, Any] | None = 
     log = _Log(setup, run, training)
     if resume is None:
         training.save_last()  # resumable from the very start
+        if setup.from_trained_weights:
+            training.save_start()
     stopped = "budget"
     setup.model.train()
     with _StopRequest() as stop:

@@ -42,6 +42,7 @@ from grainwright.trainer.schemes.registry import (
     choose_scheme,
     scheme_class,
 )
+from grainwright.trainer.start import EARLIER_RUN, RANDOM, fit_start_config, heldout_frames, resolve_start
 
 # Noisy images analysed for the noise model and the flags (evenly spaced over the list), to bound the start-up time.
 MAX_ANALYSED = 12
@@ -314,10 +315,11 @@ def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announc
     return train_images, validation_images
 
 
-def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.ndarray | None,
+def _build_model(config: dict[str, Any], scheme: str, channels: int, level_known: bool,
                  announce: Callable[[str], None]) -> tuple[torch.nn.Module, dict[str, Any]]:
     """Stage 6: the model (skip off for blind-spot schemes; the patch size a multiple of the alignment) and the
-    fastest step arithmetic when asked (``auto``). Returns the model and the config's resolved ``model`` table."""
+    fastest step arithmetic when asked (``auto``). ``level_known``: whether the schemes can feed a noise-level map.
+    Returns the model and the config's resolved ``model`` table."""
     cls, model_cfg, patch_size = scheme_class(scheme), config["model"], config["data"]["patch_size"]
     skip = model_cfg["skip"]
     if skip == "auto":
@@ -340,7 +342,7 @@ def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.n
     if patch_size % multiple:
         raise ConfigError(f"data.patch_size: {patch_size} must be a multiple of {multiple} for scheme "
                           f"'{scheme}' with architecture '{model.name}'")
-    if model.takes_noise_map and sigma is None:
+    if model.takes_noise_map and not level_known:
         raise ConfigError(f"model.name: '{model.name}' needs a noise level: give a noise.toml (noise.file)")
     channels_last, precision = model_cfg["channels_last"], model_cfg["precision"]
     if "auto" in (channels_last, precision):
@@ -354,6 +356,16 @@ def _build_model(config: dict[str, Any], scheme: str, channels: int, sigma: np.n
                  f"(measured ms per step: {measured})")
     return model, dict(model_cfg, skip=skip, hyper=dict(model.hyper), channels_last=channels_last,
                        precision=precision)
+
+
+def _level_known(data: _TrainingImages, sigma: np.ndarray | None) -> bool:
+    """Whether a noise-level map can be fed: a level per channel, or (clean images with synthetic noise) the noise
+    model's own per-pixel level."""
+    if sigma is not None:
+        return True
+    if data.layout.name == "clean-only" and data.noise is not None:
+        return data.noise.sigma_map(np.full((1, 2, 2, data.channels), 0.5, dtype=np.float32)) is not None
+    return False
 
 
 def _patch_source(items: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> PatchSource:
@@ -376,11 +388,13 @@ def _validation_batches(config: dict[str, Any], scheme: Any, images: list[dict[s
     return batches
 
 
-def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> tuple[TrainingSetup, Layout, Any]:
+def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
+            resuming: bool = False) -> tuple[TrainingSetup, Layout, Any]:
     """Check the config against the data and build everything the loop needs.
 
     Returns the setup, the layout found and the noise model used (or None). Raises ``GrainwrightError`` on any
-    problem with the data or the config; nothing is written.
+    problem with the data or the config; nothing is written. ``resuming``: the weights come from the run's
+    ``last.pt``, so the start (``start.weights``) is not loaded again.
     """
     data = _read_training_images(config, announce)
     layout = data.layout
@@ -389,10 +403,19 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
     transform, transform_decided_by, sigma = _working_range(config, name, data, announce)
     working, fixed_pattern = _to_working(config, data, announce)
     train_images, validation_images = _split(config, working, announce)
-    model, model_table = _build_model(config, name, data.channels, sigma, announce)
+    config = fit_start_config(config, data.channels)
+    model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)
     config = dict(config, model=model_table)
+    if resuming:
+        started_from = {"weights": config["start"]["weights"]}
+    else:
+        started_from = resolve_start(config, name, model, data.channels, announce)
+        resolved = started_from["weights"] if started_from["weights"] != EARLIER_RUN else config["start"]["weights"]
+        config = dict(config, start=dict(config["start"], weights=resolved))
     scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map)
     validation = _validation_batches(config, scheme, validation_images, layout.roles)
+    heldout = [] if model.stack_frames > 1 else heldout_frames(validation_images, model.alignment, scheme,
+                                                               config["seed"])
 
     training_noise = None
     if data.findings is not None:
@@ -408,13 +431,15 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print) -> 
                "noise_decided_by": _noise_origin(data) if data.noise is not None else None,
                "noise_found": None if data.findings is None else data.findings.found.describe(),
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
-               "channels_last": channels_last, "precision": precision, "stack_frames": model.stack_frames}
+               "channels_last": channels_last, "precision": precision, "stack_frames": model.stack_frames,
+               "started_from": started_from}
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
                           validation=validation, ground_truth=layout.has_ground_truth,
                           normalization=data.normalization, channels_last=channels_last, precision=precision,
                           noise=data.noise, data_fingerprint=data_fingerprint(files),
-                          training_noise=training_noise, summary=summary)
+                          training_noise=training_noise, summary=summary, heldout=heldout,
+                          from_trained_weights=config["start"]["weights"] != RANDOM)
     return setup, layout, data.noise
 
 
@@ -448,9 +473,28 @@ def summary_line(summary: dict[str, Any], run: RunFolder) -> str:
              else "no noise model")
     decided = f"{noise}, transform {summary.get('transform')} (decided by the {summary.get('transform_decided_by')})"
     return (f"trained {summary['scheme']} for {summary['steps']} steps in {summary['minutes']:.1f} min "
-            f"({summary['patches_per_second']:.0f} patches/s, {summary['gflops_per_second']:.1f} GFLOP/s); {decided}; {figure}; "
+            f"({summary['patches_per_second']:.0f} patches/s, {summary['gflops_per_second']:.1f} GFLOP/s); {decided}; "
+            f"{start_text(summary)}; {figure}; "
             f"stopped: {summary['stopped']}; run folder {run.root}"
             + (f" (continue with: grainwright train --resume {run.root})" if summary["stopped"] == "interrupted" else ""))
+
+
+def start_text(summary: dict[str, Any]) -> str:
+    """Where the run started and, after a start from trained weights, which end was kept and by what figures."""
+    started = summary.get("started_from") or {}
+    weights = started.get("weights")
+    if weights == "starting-model":
+        text = f"started from the starting model (sha256 {str(started.get('sha256'))[:12]})"
+    elif weights == EARLIER_RUN:
+        text = f"started from the earlier run {started.get('path')}"
+    else:
+        text = "started from random weights" + (f" ({started['reason']})" if started.get("reason") else "")
+    selection = summary.get("selection")
+    if selection:
+        kept = "the fine-tuned state" if selection["kept"] == "fine-tuned" else "the starting state (fine-tuning did not help)"
+        text += (f"; held-out {selection['criterion']} start {selection['start']:.4g}, fine-tuned "
+                 f"{selection['fine_tuned']:.4g}: kept {kept}")
+    return text
 
 
 def train_command(config_path: str | None, data: str | None, *, scheme: str | None = None,
@@ -495,8 +539,9 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
     previous_threads = torch.get_num_threads()
     torch.set_num_threads(config["threads"] or physical_cores())
     try:
-        setup, layout, noise = prepare(config, announce)
+        setup, layout, noise = prepare(config, announce, resuming=state is not None)
         if state is not None:
+            setup.summary["started_from"] = (state.get("training_summary") or {}).get("started_from")
             announce(f"resuming {run.root} at step {state['step']}")
             if state.get("data_fingerprint") != setup.data_fingerprint:
                 announce("warning: the training files differ from the run's (names or sizes changed); the run "

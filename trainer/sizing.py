@@ -149,8 +149,9 @@ def fit_assignments(profile_path: str | None, ms_per_frame: float, frame_text: s
     announce(f"fit to {ms_per_frame:g} ms per {frame[0]}x{frame[1]} frame on {source} "
              f"({profile['threads']} threads): picked {chosen.rung.label}, predicted {chosen.milliseconds:.0f} ms "
              f"per frame (network {1000 * chosen.network_seconds:.0f} ms, "
-             f"runtime {1000 * chosen.runtime_seconds:.0f} ms)")
-    return chosen.rung.assignments()
+             f"runtime {1000 * chosen.runtime_seconds:.0f} ms); the ladder's sizes have no starting model, so "
+             "the fitted size trains from random weights (start.weights = \"random\")")
+    return chosen.rung.assignments() + ['start.weights="random"']
 
 
 # -- checking the predictions ---------------------------------------------------------------------------------

@@ -1,0 +1,170 @@
+"""Starting from the shipped starting model, the opt-out, continuing an earlier run, channel fit, and keeping the
+better of the start and the end on held-out frames (grainwright.trainer.start).
+
+Open data: crops of scikit-image's bundled ``camera`` image with Gaussian noise. Runs are a few steps of the
+starting model's architecture on one thread.
+"""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import torch
+from skimage import data
+
+from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images.imageio import write_image
+from grainwright.models.checkpoint import load_checkpoint
+from grainwright.models.starting import starting_model_manifest
+from grainwright.trainer.run import train_command
+
+SMALL = ["data.patch_size=32", "data.batch_size=8", "threads=1", "validation.every_steps=10",
+         "validation.patches=16", "logging.progress=false", "logging.tensorboard=false",
+         "model.channels_last=false", 'model.precision="float32"']
+SIGMA = 25.0  # 8-bit units
+
+
+def _noisy_folder(root, channels: int = 1, count: int = 4, size: int = 128):
+    camera = data.camera().astype(np.float64)
+    rng = np.random.default_rng(0)
+    (root / "noisy").mkdir(parents=True, exist_ok=True)
+    for i in range(count):
+        crop = camera[64 + 96 * i:64 + 96 * i + size, 100 + 60 * i:100 + 60 * i + size]
+        if channels > 1:
+            crop = np.stack([crop * (0.6 + 0.2 * c) for c in range(channels)], axis=-1)
+        noisy = np.clip(np.round(crop + rng.normal(0, SIGMA, crop.shape)), 0, 255).astype(np.uint8)
+        write_image(root / "noisy" / f"crop{i}.png", noisy)
+    return root
+
+
+def _quiet(message: str) -> None:
+    pass
+
+
+def _same(first: dict[str, torch.Tensor], second: dict[str, torch.Tensor]) -> bool:
+    return all(torch.equal(first[key], second[key]) for key in first)
+
+
+@pytest.mark.slow
+def test_the_starting_model_is_the_default_start_and_is_recorded_in_the_run_and_the_model(tmp_path):
+    from grainwright.inference.runtime.modelinfo import read_model_metadata
+    from grainwright.models.export import export_checkpoint
+
+    folder = _noisy_folder(tmp_path / "data")
+    lines: list[str] = []
+    summary, run = train_command("noisy-only", str(folder), steps=10, out=str(tmp_path / "run"),
+                                 announce=lines.append, assignments=SMALL)
+    sha = starting_model_manifest()["weights_sha256"]
+    assert summary["started_from"] == {"weights": "starting-model", "sha256": sha,
+                                       "steps": starting_model_manifest()["steps"]}
+    assert json.loads(run.summary.read_text())["started_from"]["sha256"] == sha
+    assert 'weights = "starting-model"' in run.config.read_text()
+    assert any(line.startswith("start: fine-tuning the shipped starting model") for line in lines)
+    assert f"started from the starting model (sha256 {sha[:12]})" in lines[-1]
+    # start.pt holds the shipped weights as they were before the first step.
+    from grainwright.models.starting import load_starting_model
+    assert _same(load_starting_model()["state_dict"], load_checkpoint(run.start)["state_dict"])
+    exported = export_checkpoint(run.root, tmp_path / "model.onnx", threads=1)
+    metadata = read_model_metadata(exported.path)
+    assert metadata["started_from"]["weights"] == "starting-model" and metadata["started_from"]["sha256"] == sha
+    assert metadata["selection"]["kept"] in ("fine-tuned", "start")
+
+
+@pytest.mark.slow
+def test_the_opt_out_key_trains_from_random_weights(tmp_path):
+    from grainwright.models.starting import load_starting_model
+
+    folder = _noisy_folder(tmp_path / "data")
+    summary, run = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=SMALL + ['start.weights="random"'])
+    assert summary["started_from"]["weights"] == "random" and summary["selection"] is None
+    assert not run.start.exists()
+    assert 'weights = "random"' in run.config.read_text()
+    shipped, trained = load_starting_model()["state_dict"], load_checkpoint(run.best)["state_dict"]
+    # Four small steps from the shipped weights would leave them close; random weights are far from them.
+    distance = sum(float((shipped[key] - trained[key]).abs().mean()) for key in shipped) / len(shipped)
+    assert distance > 0.01
+
+
+@pytest.mark.slow
+def test_another_architecture_starts_from_random_weights_and_says_why(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    lines: list[str] = []
+    summary, run = train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "run"),
+                                 announce=lines.append, assignments=SMALL + ["model.hyper.width=8"])
+    assert summary["started_from"]["weights"] == "random"
+    assert "width 8" in summary["started_from"]["reason"]
+    assert any(line.startswith("start: random weights: the configured architecture") for line in lines)
+    assert 'weights = "random"' in run.config.read_text()  # the resolved config says what happened
+
+
+@pytest.mark.slow
+def test_a_few_fine_tuning_steps_lower_the_held_out_criterion(tmp_path):
+    # MC-SURE (Stein 1981; Ramani, Blu and Unser 2008) on the held-out frame, Gaussian noise of sigma 25/255.
+    folder = _noisy_folder(tmp_path / "data")
+    summary, run = train_command("noisy-only", str(folder), steps=40, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=SMALL + ["optim.lr=3e-4"])
+    selection = summary["selection"]
+    assert selection["criterion"] == "MC-SURE" and selection["frames"] == 1
+    assert selection["fine_tuned"] < selection["start"] and selection["kept"] == "fine-tuned"
+    assert not _same(load_checkpoint(run.best)["state_dict"], load_checkpoint(run.start)["state_dict"])
+
+
+@pytest.mark.slow
+def test_a_fine_tune_that_ends_worse_keeps_the_starting_state_and_says_so(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    lines: list[str] = []
+    # Adam with a peak learning rate of 0.1 moves every weight by about 0.1 per step: the network is wrecked.
+    summary, run = train_command("noisy-only", str(folder), steps=5, out=str(tmp_path / "run"),
+                                 announce=lines.append,
+                                 assignments=SMALL + ["optim.lr=0.1", "optim.warmup_fraction=0"])
+    selection = summary["selection"]
+    assert selection["kept"] == "start" and selection["fine_tuned"] > selection["start"]
+    assert "kept the starting state (fine-tuning did not help)" in lines[-1]
+    assert json.loads(run.summary.read_text())["selection"]["kept"] == "start"
+    assert _same(load_checkpoint(run.best)["state_dict"], load_checkpoint(run.start)["state_dict"])
+    assert load_checkpoint(run.best)["training_summary"]["selection"]["kept"] == "start"
+
+
+@pytest.mark.slow
+def test_continuing_an_earlier_run_starts_from_its_weights(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    _, first = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "first"), announce=_quiet,
+                             assignments=SMALL)
+    summary, second = train_command("noisy-only", str(folder), steps=4, out=str(tmp_path / "second"),
+                                    announce=_quiet, assignments=SMALL + [f'start.weights="{first.root}"'])
+    assert summary["started_from"]["weights"] == "earlier run"
+    assert summary["started_from"]["path"] == str(first.best)
+    assert _same(load_checkpoint(first.best)["state_dict"], load_checkpoint(second.start)["state_dict"])
+
+
+def test_a_data_set_whose_channels_do_not_fit_gets_one_line_naming_the_opt_out_key(tmp_path):
+    folder = _noisy_folder(tmp_path / "data", channels=3, count=2, size=64)
+    with pytest.raises(ConfigError, match=r'start\.weights = \\?"random\\?"') as caught:
+        train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "run"), announce=_quiet,
+                      assignments=SMALL + ["model.hyper.per_channel=false"])
+    assert "3 channels" in str(caught.value) and "\n" not in str(caught.value)
+    assert not (tmp_path / "run").exists()
+
+
+@pytest.mark.slow
+def test_an_earlier_run_of_other_channels_gets_one_line_naming_the_opt_out_key(tmp_path):
+    gray = _noisy_folder(tmp_path / "gray", count=2, size=64)
+    _, first = train_command("noisy-only", str(gray), steps=2, out=str(tmp_path / "first"), announce=_quiet,
+                             assignments=SMALL)
+    colour = _noisy_folder(tmp_path / "colour", channels=3, count=2, size=64)
+    with pytest.raises(ConfigError, match="start.weights") as caught:
+        train_command("noisy-only", str(colour), steps=2, out=str(tmp_path / "run"), announce=_quiet,
+                      assignments=SMALL + [f'start.weights="{first.root}"'])
+    assert "1-channel" in str(caught.value) and "3-channel" in str(caught.value)
+    assert not (tmp_path / "run").exists()
+
+
+@pytest.mark.slow
+def test_colour_data_fine_tune_the_grayscale_starting_model_channel_by_channel(tmp_path):
+    folder = _noisy_folder(tmp_path / "data", channels=3, count=2, size=64)
+    summary, run = train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "run"), announce=_quiet,
+                                 assignments=SMALL)
+    assert summary["started_from"]["weights"] == "starting-model"
+    assert load_checkpoint(run.best)["hyper"]["per_channel"] is True
