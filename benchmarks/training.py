@@ -213,12 +213,15 @@ def ensemble_scores(denoiser: Any, images: dict[str, tuple[np.ndarray, np.ndarra
             "seconds": {str(size): value for size, value in seconds.items()}}
 
 
-def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], threads: int) -> dict[str, Any]:
-    """Export a run folder's best checkpoint to ONNX and score it through the runtime, with 1 and 8 members."""
+def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], threads: int,
+              checkpoint: str = "best") -> dict[str, Any]:
+    """Export a run folder's checkpoint (``best``, or ``start``: the state it started from) to ONNX and score it
+    through the runtime, with 1 and 8 members."""
     from grainwright.models.export import export_checkpoint
 
-    onnx_path = run_dir / "model.onnx"
-    export_checkpoint(run_dir, onnx_path, overwrite=True, threads=threads)
+    onnx_path = run_dir / f"model-{checkpoint}.onnx"
+    source = run_dir if checkpoint == "best" else run_dir / "checkpoints" / f"{checkpoint}.pt"
+    export_checkpoint(source, onnx_path, overwrite=True, threads=threads)
     return ensemble_scores(runtime_denoiser(onnx_path, threads), images, ensembles=(1, ENSEMBLE))
 
 
@@ -228,13 +231,22 @@ def common_settings(args: argparse.Namespace) -> list[str]:
 
 
 def train_scheme(folder: Path, scheme: str | None, out: Path, minutes: float, args: argparse.Namespace) -> dict[str, Any]:
+    """Train one scheme for ``minutes``, or for ``--steps-per-scheme`` optimiser steps when given (comparisons of
+    settings on a shared machine)."""
     from grainwright.trainer.run import train_command
 
     settings = common_settings(args) + ["validation.every_steps=50", "validation.patches=32",
                                         "validation.patience=0", "checkpoint.every_minutes=2"]
-    summary, _ = train_command(args.config, str(folder), scheme=scheme, minutes=minutes, out=str(out),
-                               assignments=settings, announce=lambda text: print(f"    {text}", flush=True))
+    steps = getattr(args, "steps_per_scheme", 0) or None
+    summary, _ = train_command(args.config, str(folder), scheme=scheme, minutes=None if steps else minutes,
+                               steps=steps, out=str(out), assignments=settings,
+                               announce=lambda text: print(f"    {text}", flush=True))
     return summary
+
+
+def starting_label(scheme: str) -> str:
+    """The row of the state a scheme's run started from (the starting model alone, no training on these data)."""
+    return f"{scheme}: its start alone (no training)"
 
 
 def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps: int = 1000,
@@ -257,6 +269,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         train,
     )
     from grainwright.trainer.run import create_run_folder, physical_cores, prepare
+    from grainwright.trainer.schemes.base import apply_model
 
     threads = args.threads or physical_cores()
     torch.set_num_threads(threads)
@@ -264,6 +277,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         f'data.folder="{folder.as_posix()}"', "scheme=\"supervised\"", f"budget.steps={steps}",
         "validation.every_steps=1000000"])
     setup, _, noise = prepare(config, announce=lambda text: None)
+    setup.from_trained_weights = False  # the loop's steps, not the one-off held-out selection at the end
     batch_size, patch_size = config["data"]["batch_size"], config["data"]["patch_size"]
     initial = copy.deepcopy(setup.model)
     rng = np.random.default_rng(args.seed)
@@ -289,7 +303,7 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
         for _ in range(round_steps):
             optimizer.zero_grad(set_to_none=True)
             with step_precision(setup.precision):
-                output = model(batch["noisy"]).float()
+                output = apply_model(model, batch["noisy"], batch.get("level"))
             torch.mean((output - batch["clean"]) ** 2).backward()
             optimizer.step()
         if round_index >= 0:
@@ -354,16 +368,23 @@ def run_bench(args: argparse.Namespace) -> int:
                 if scheme in rows:
                     continue
                 layout = {"supervised": "clean-only", "noise2noise": "noisy-pairs"}.get(scheme, "noisy-only")
-                print(f"-- {scheme} on {layout}, {args.minutes_per_scheme} min", flush=True)
+                budget = (f"{args.steps_per_scheme} steps" if getattr(args, "steps_per_scheme", 0)
+                          else f"{args.minutes_per_scheme} min")
+                print(f"-- {scheme} on {layout}, {budget}", flush=True)
                 out = work / "runs" / f"{case}-{scheme.replace(' ', '-')}"
                 shutil.rmtree(out, ignore_errors=True)
                 summary = train_scheme(made["root"] / layout, None if scheme == AS_CONFIGURED else scheme, out,
                                        args.minutes_per_scheme, args)
                 scores = score_run(out, images, args.threads or 2)
+                if (out / "checkpoints" / "start.pt").is_file():  # the start alone, scored the same way
+                    start = score_run(out, images, args.threads or 2, checkpoint="start")
+                    rows[starting_label(scheme)] = start["psnr"]["1"]
+                    rows[starting_label(scheme) + ENSEMBLE_LABEL] = start["psnr"][str(ENSEMBLE)]
                 rows[scheme], rows[scheme + ENSEMBLE_LABEL] = scores["psnr"]["1"], scores["psnr"][str(ENSEMBLE)]
                 record["training"][scheme] = {key: summary.get(key) for key in (
                     "steps", "minutes", "patches_per_second", "gflops_per_second", "stopped", "transform",
-                    "precision", "scheme", "noise_kind", "noise_decided_by", "transform_decided_by")}
+                    "precision", "scheme", "noise_kind", "noise_decided_by", "transform_decided_by",
+                    "started_from", "selection")}
                 save()
                 print(f"   {scheme}: {_mean(rows[scheme]):.2f} dB, x{ENSEMBLE} "
                       f"{_mean(rows[scheme + ENSEMBLE_LABEL]):.2f} dB after {summary['steps']} steps", flush=True)
@@ -414,9 +435,38 @@ def check_targets(results: dict[str, Any]) -> list[tuple[str, bool | None, str]]
             gap = _mean(speckle[AS_CONFIGURED + suffix]) - _mean(speckle[label])
             targets.append((f"speckle, 4 looks, {AS_CONFIGURED}{suffix}: within 0.5 dB of the per-image best of "
                             "TV/NLM/wavelet tuned on ground truth", gap >= -0.5, f"{gap:+.2f} dB"))
+    targets += finetune_targets(results)
     if "throughput" in results:
         ratio = results["throughput"]["ratio"]
         targets.append(("loop >= 90% of bare forward+backward throughput", ratio >= 0.9, f"{ratio:.1%}"))
+    return targets
+
+
+# Issue 17's margins over the opponent for the noisy-images-only schemes, by case: (x1, x8 self-ensemble), dB.
+FINETUNE_MARGINS = {"gaussian": (0.3, 0.4), "poisson-gaussian": (0.2, None), "speckle": (0.2, None)}
+# ... and over the start alone (the starting model), where adaptation to the sensor should show.
+FINETUNE_OVER_START = {"poisson-gaussian": 0.1, "speckle": 0.1}
+
+
+def finetune_targets(results: dict[str, Any]) -> list[tuple[str, bool | None, str]]:
+    """Fine-tuned runs (those with a row for their start): above the opponent by the case's margin, and never
+    below their start (above it by ``FINETUNE_OVER_START`` where given)."""
+    targets: list[tuple[str, bool | None, str]] = []
+    for case, record in results["cases"].items():
+        rows = record["psnr"]
+        opponent = rows.get(opponent_label(case))
+        for scheme in SELF_SUPERVISED + ("sure",):
+            if starting_label(scheme) not in rows or scheme not in rows:
+                continue
+            for suffix, margin in zip(("", ENSEMBLE_LABEL), FINETUNE_MARGINS.get(case, (None, None))):
+                if margin is not None and opponent and scheme + suffix in rows:
+                    gap = _mean(rows[scheme + suffix]) - _mean(opponent)
+                    targets.append((f"{case}: fine-tuned {scheme}{suffix} >= opponent + {margin} dB", gap >= margin,
+                                    f"{gap:+.2f} dB"))
+            floor = FINETUNE_OVER_START.get(case, 0.0)
+            gap = _mean(rows[scheme]) - _mean(rows[starting_label(scheme)])
+            targets.append((f"{case}: fine-tuned {scheme} >= its start alone + {floor} dB", gap >= floor,
+                            f"{gap:+.2f} dB"))
     return targets
 
 

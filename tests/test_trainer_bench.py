@@ -131,6 +131,35 @@ def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
     assert rows["supervised"] == first and "recorrupted" + ENSEMBLE_LABEL in rows
 
 
+@pytest.mark.slow
+def test_a_fine_tuned_scheme_gets_a_row_for_its_start_alone_at_a_fixed_step_count(tmp_path, monkeypatch):
+    from grainwright.benchmarks import training as bench
+
+    original = bench.sample_image
+    monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
+    monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass", "gravel"))
+    monkeypatch.setattr(bench, "SEARCH_BASELINES", ("tv",))
+    saved = tmp_path / "bench.json"
+    args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="recorrupted", json=str(saved),
+                              config="noisy-only", set=["data.batch_size=4", "logging.tensorboard=false",
+                                                        'model.precision="float32"'],
+                              seed=0, threads=1, minutes_per_scheme=10.0, steps_per_scheme=6, throughput=False,
+                              half_scale=False)
+    assert run_bench(args) == 0
+    results = json.loads(saved.read_text())
+    rows, training = results["cases"]["gaussian"]["psnr"], results["cases"]["gaussian"]["training"]["recorrupted"]
+    assert training["steps"] == 6 and training["started_from"]["weights"] == "starting-model"
+    assert training["selection"]["kept"] in ("fine-tuned", "start")
+    start = bench.starting_label("recorrupted")
+    assert {start, start + ENSEMBLE_LABEL} <= set(rows)
+    # The selection keeps the better end by MC-SURE on held-out training frames; on the test images the fine-tuned
+    # row may differ from the start only when the fine-tuned state was kept.
+    if training["selection"]["kept"] == "start":
+        assert rows["recorrupted"] == rows[start]
+    assert any(description.startswith("gaussian: fine-tuned recorrupted >= its start alone")
+               for description, _, _ in results["targets"])
+
+
 def test_a_misspelt_model_setting_stops_before_any_work(tmp_path):
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised",
                               json=str(tmp_path / "bench.json"), config="noisy-only",

@@ -12,6 +12,9 @@ HELP = "training schemes vs classical filters tuned on ground truth; loop vs bar
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--minutes-per-scheme", type=float, default=10.0, metavar="N",
                         help="time box of each scheme's training (default 10)")
+    parser.add_argument("--steps-per-scheme", type=int, default=0, metavar="N",
+                        help="train each scheme for N optimiser steps instead of the time box (fixed-step "
+                        "comparisons on a shared machine; default 0: the time box)")
     parser.add_argument("--schemes", default="supervised,noise2noise,masked,neighbor2neighbor,recorrupted",
                         metavar="LIST", help="comma-separated schemes for the Gaussian case")
     parser.add_argument("--cases", default="gaussian,poisson-gaussian,speckle", metavar="LIST",
