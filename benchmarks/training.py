@@ -317,6 +317,33 @@ def measure_throughput(folder: Path, work: Path, args: argparse.Namespace, steps
             "channels_last": setup.channels_last, "precision": setup.precision}
 
 
+def train_and_score(case: str, scheme: str, made: dict[str, Any], images: dict[str, tuple[np.ndarray, np.ndarray]],
+                    record: dict[str, Any], work: Path, args: argparse.Namespace) -> None:
+    """Train one scheme of one case, score it (and the state it started from, if trained weights) through the
+    runtime, and enter the rows and the training record into ``record``."""
+    rows = record["psnr"]
+    layout = {"supervised": "clean-only", "noise2noise": "noisy-pairs"}.get(scheme, "noisy-only")
+    budget = (f"{args.steps_per_scheme} steps" if getattr(args, "steps_per_scheme", 0)
+              else f"{args.minutes_per_scheme} min")
+    print(f"-- {scheme} on {layout}, {budget}", flush=True)
+    out = work / "runs" / f"{case}-{scheme.replace(' ', '-')}"
+    shutil.rmtree(out, ignore_errors=True)
+    summary = train_scheme(made["root"] / layout, None if scheme == AS_CONFIGURED else scheme, out,
+                           args.minutes_per_scheme, args)
+    scores = score_run(out, images, args.threads or 2)
+    if (out / "checkpoints" / "start.pt").is_file():  # the start alone, scored the same way
+        start = score_run(out, images, args.threads or 2, checkpoint="start")
+        rows[starting_label(scheme)] = start["psnr"]["1"]
+        rows[starting_label(scheme) + ENSEMBLE_LABEL] = start["psnr"][str(ENSEMBLE)]
+    rows[scheme], rows[scheme + ENSEMBLE_LABEL] = scores["psnr"]["1"], scores["psnr"][str(ENSEMBLE)]
+    record["training"][scheme] = {key: summary.get(key) for key in (
+        "steps", "minutes", "patches_per_second", "gflops_per_second", "stopped", "transform",
+        "precision", "scheme", "noise_kind", "noise_decided_by", "transform_decided_by",
+        "started_from", "selection")}
+    print(f"   {scheme}: {_mean(rows[scheme]):.2f} dB, x{ENSEMBLE} "
+          f"{_mean(rows[scheme + ENSEMBLE_LABEL]):.2f} dB after {summary['steps']} steps", flush=True)
+
+
 def run_bench(args: argparse.Namespace) -> int:
     """Run the benchmark; with ``--json``, results are written after every scheme and a rerun with the same
     file skips what is done (so schemes may get different ``--minutes-per-scheme`` in separate runs)."""
@@ -367,27 +394,8 @@ def run_bench(args: argparse.Namespace) -> int:
             for scheme in CASES[case].get("schemes", gaussian_schemes):
                 if scheme in rows:
                     continue
-                layout = {"supervised": "clean-only", "noise2noise": "noisy-pairs"}.get(scheme, "noisy-only")
-                budget = (f"{args.steps_per_scheme} steps" if getattr(args, "steps_per_scheme", 0)
-                          else f"{args.minutes_per_scheme} min")
-                print(f"-- {scheme} on {layout}, {budget}", flush=True)
-                out = work / "runs" / f"{case}-{scheme.replace(' ', '-')}"
-                shutil.rmtree(out, ignore_errors=True)
-                summary = train_scheme(made["root"] / layout, None if scheme == AS_CONFIGURED else scheme, out,
-                                       args.minutes_per_scheme, args)
-                scores = score_run(out, images, args.threads or 2)
-                if (out / "checkpoints" / "start.pt").is_file():  # the start alone, scored the same way
-                    start = score_run(out, images, args.threads or 2, checkpoint="start")
-                    rows[starting_label(scheme)] = start["psnr"]["1"]
-                    rows[starting_label(scheme) + ENSEMBLE_LABEL] = start["psnr"][str(ENSEMBLE)]
-                rows[scheme], rows[scheme + ENSEMBLE_LABEL] = scores["psnr"]["1"], scores["psnr"][str(ENSEMBLE)]
-                record["training"][scheme] = {key: summary.get(key) for key in (
-                    "steps", "minutes", "patches_per_second", "gflops_per_second", "stopped", "transform",
-                    "precision", "scheme", "noise_kind", "noise_decided_by", "transform_decided_by",
-                    "started_from", "selection")}
+                train_and_score(case, scheme, made, images, record, work, args)
                 save()
-                print(f"   {scheme}: {_mean(rows[scheme]):.2f} dB, x{ENSEMBLE} "
-                      f"{_mean(rows[scheme + ENSEMBLE_LABEL]):.2f} dB after {summary['steps']} steps", flush=True)
         if "gaussian" in cases and args.throughput:
             print("== loop vs bare throughput", flush=True)
             results["throughput"] = measure_throughput(work / "gaussian" / "clean-only", work, args)
