@@ -5,11 +5,14 @@ Steps, each through the same public functions the commands use:
 1. generate the scenario (training frames, held-out frames with clean versions and ROIs, one large frame);
 2. inspect the training frames: noise level, Poisson-Gaussian fit, banding flag; correct the row banding of
    every frame and save the noise description, as a user would with ``grainwright inspect --save-noise``;
-3. train with the scheme ``auto`` picks from the data (single noisy frames: no clean image is used);
-4. export the best checkpoint to ONNX (the exporter checks ONNX Runtime against torch);
-5. denoise the large held-out frame tile by tile with the torch-free runtime and time it;
-6. compare the model with every classical baseline on the held-out frames (``--quick``), with and without the
-   clean frames, including the contrast retention on the cracks and pores.
+3. train with the scheme ``auto`` picks from the data (single noisy frames: no clean image is used), starting
+   from the shipped starting model as ``grainwright train`` does by default;
+4. export the kept state to ONNX (the exporter checks ONNX Runtime against torch), and the starting model alone,
+   with no training on these frames, for the same data;
+5. for the record, train the same number of steps from random weights and export that too (optional);
+6. denoise the large held-out frame tile by tile with the torch-free runtime and time it;
+7. compare the learned models with every classical baseline on the held-out frames (``--quick``), with and
+   without the clean frames, including the contrast retention on the cracks and pores.
 
 This module is torch-free at import; training and export are imported inside :func:`run_demo` after
 :func:`grainwright.console.torch_needed.require_torch`.
@@ -32,25 +35,39 @@ from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.synthetic import scenario
 
-DEFAULT_MINUTES = 4.0
+DEFAULT_MINUTES = 3.0
 DEFAULT_OUT = "grainwright-demo"
 MARKER_FILE = "demo.json"
 MARKER_KIND = "grainwright-demo"
+
+# The learned rows of the report. Each one's ONNX file is ``ROLE.onnx``, so its label in the report is the role.
+FINE_TUNED = "fine-tuned"
+STARTING_ALONE = "starting-model-alone"
+RANDOM_WEIGHTS = "random-weights"
 
 # What a demo writes at the top of its folder; a re-run replaces exactly these and nothing else.
 SCENARIO_DIR = "scenario"
 CORRECTED_DIR = "corrected"
 RUN_DIR = "training-run"
-MODEL_FILE = "model.onnx"
+RANDOM_RUN_DIR = "training-run-random-weights"
 DENOISED_DIR = "denoised"
 REPORT_DIR = "report"
 INSPECT_FILE = "inspection.json"
+OLD_MODEL_FILE = "model.onnx"  # the single model of demos before the three learned rows; a re-run removes it
 # A crack or pore enters the contrast-retention figure when its noisy contrast is at least this many standard
 # errors (common practice, no source: below about 3 the ratio of two noisy contrasts is mostly noise).
 MIN_REGION_SIGNIFICANCE = 3.0
 # Noisy sets of the scenario and their folders under corrected/.
 CORRECTED_SETS = {scenario.TRAIN_DIR: "train", scenario.HOLDOUT_NOISY_DIR: "holdout", scenario.LARGE_NOISY_DIR: "large"}
-DEMO_ENTRIES = (SCENARIO_DIR, CORRECTED_DIR, RUN_DIR, MODEL_FILE, DENOISED_DIR, REPORT_DIR, INSPECT_FILE)
+
+
+def model_file(role: str) -> str:
+    """The ONNX file of a learned row (its stem is the row's label in the report)."""
+    return f"{role}.onnx"
+
+
+DEMO_ENTRIES = (SCENARIO_DIR, CORRECTED_DIR, RUN_DIR, RANDOM_RUN_DIR, DENOISED_DIR, REPORT_DIR, INSPECT_FILE,
+                OLD_MODEL_FILE, *(model_file(role) for role in (FINE_TUNED, STARTING_ALONE, RANDOM_WEIGHTS)))
 
 
 @dataclass
@@ -77,7 +94,11 @@ class DemoSettings:
         Training config: a shipped preset name or a TOML file. The default, ``fast-cpu``, is the small, quick
         preset; its scheme is ``auto``.
     train_settings : list of str
-        Extra training settings as ``key=value`` (the trainer's ``--set``), e.g. a smaller model for a smoke test.
+        Extra training settings as ``key=value`` (the trainer's ``--set``), e.g. ``model.precision="float32"``.
+    random_weights_row : bool
+        Also train the same number of steps from random weights (``start.weights = "random"``) and show it in
+        the report beside the fine-tuned model and the starting model alone. Skipped when the main training
+        already starts from random weights.
     tile : int
         Tile edge for the large frame (0 = the runtime's default).
     progress : bool
@@ -94,6 +115,7 @@ class DemoSettings:
     threads: int = 0
     config: str = "fast-cpu"
     train_settings: list[str] = field(default_factory=list)
+    random_weights_row: bool = True
     tile: int = 0
     progress: bool = True
 
@@ -156,41 +178,47 @@ def run_demo(out: str | Path, settings: DemoSettings | None = None, echo: Callab
     Raises
     ------
     GrainwrightError
-        ``out`` cannot be used, torch is missing, or a step failed (its own message says which file and why).
+        ``out`` cannot be used, torch is missing, a training setting is wrong (checked before anything is
+        written), or a step failed (its own message says which file and why).
     """
     settings = settings or DemoSettings()
     if settings.steps <= 0 and not settings.minutes > 0:
         raise ConfigError(f"--minutes must be a positive number of minutes, got {settings.minutes}")
     require_torch("demo")
+    planned_start = check_training_settings(settings)["start"]["weights"]
+    random_row = settings.random_weights_row and planned_start != "random"
     out = prepare_out_dir(out)
     started = time.perf_counter()
     summary: dict[str, Any] = {"kind": MARKER_KIND, "status": "running", "settings": asdict(settings)}
     write_json_atomic(out / MARKER_FILE, summary, default=_plain)  # marks the folder as a demo folder from the start
+    steps = {"done": 0, "total": 7 if random_row else 6}
 
-    def step(number: int, text: str) -> None:
-        echo(f"[{number}/6 {time.perf_counter() - started:5.0f} s] {text}")
+    def step(text: str, skipped: int = 0) -> None:  # skipped: planned steps found unnecessary on the way
+        steps["done"], steps["total"] = steps["done"] + 1, steps["total"] - skipped
+        echo(f"[{steps['done']}/{steps['total']} {time.perf_counter() - started:5.0f} s] {text}")
 
-    step(1, "generating the plant scenario (machined and cast parts, pores and hairline cracks, 12-bit frames)")
+    step("generating the plant scenario (machined and cast parts, pores and hairline cracks, 12-bit frames)")
     manifest = scenario.write_scenario(
         out / SCENARIO_DIR, n_train=settings.train_frames, n_holdout=settings.holdout_frames,
         size=settings.frame_size, seed=settings.seed, large_size=tuple(settings.large_size),
     )
     summary["scenario"] = {"folder": str(out / SCENARIO_DIR), "sensor": manifest["sensor"]}
 
-    step(2, "inspecting the training frames; correcting the row banding of every frame")
+    step("inspecting the training frames; correcting the row banding of every frame")
     summary["inspection"] = inspect_and_correct(out, echo)
 
-    step(3, "training with the scheme 'auto' picks (single noisy frames only: no clean image is used)")
-    summary["training"] = train_model(out, settings, echo)
+    main_role, learned = train_and_export(out, settings, echo, step, random_row)
+    training = learned[main_role]
+    summary["main_model"], summary["training"], summary["export"] = main_role, training, training["export"]
+    summary["learned"] = learned
 
-    step(4, "exporting the best checkpoint to ONNX (ONNX Runtime checked against torch)")
-    summary["export"] = export_model(out, settings, echo)
+    step("denoising the large held-out frame tile by tile with the torch-free runtime")
+    summary["large_frame"] = denoise_large_frame(out, settings, echo, main_role)
 
-    step(5, "denoising the large held-out frame tile by tile with the torch-free runtime")
-    summary["large_frame"] = denoise_large_frame(out, settings, echo)
-
-    step(6, "comparing with every classical baseline on the held-out frames, with and without the clean frames")
-    summary["compare"] = compare_methods(out, settings, echo)
+    step("comparing with every classical baseline on the held-out frames, with and without the clean frames")
+    summary["compare"] = compare_methods(out, settings, echo, list(learned), main_role)
+    for role, row in learned.items():
+        row.update(summary["compare"]["learned"][role])
 
     summary["status"] = "finished"
     summary["seconds"] = round(time.perf_counter() - started, 1)
@@ -202,6 +230,33 @@ def run_demo(out: str | Path, settings: DemoSettings | None = None, echo: Callab
 
 # --------------------------------------------------------------------------------------------------------------
 # Steps
+
+
+def train_and_export(out: Path, settings: DemoSettings, echo: Callable[[str], Any], step: Callable[..., None],
+                     random_row: bool) -> tuple[str, dict[str, dict]]:
+    """Steps 3 to 5: train the demo's model and export it, export the starting model alone, and (``random_row``)
+    train and export the same number of steps from random weights. Returns the demo model's role and every
+    learned row's record by role, in the report's order."""
+    step("training with the scheme 'auto' picks (single noisy frames only: no clean image is used)")
+    training = train_model(out, settings, echo, RUN_DIR)
+    # The demo's own model and its label: fine-tuned, unless the training started from random weights (asked
+    # for, or the configured architecture is not the starting model's); then it is itself the record row.
+    main_role = RANDOM_WEIGHTS if training["started_from"]["weights"] == "random" else FINE_TUNED
+    planned, random_row = random_row, random_row and main_role != RANDOM_WEIGHTS
+
+    step("exporting the trained model and the starting model alone to ONNX (ONNX Runtime checked against torch)",
+         skipped=int(planned and not random_row))
+    training["export"] = export_model(out, settings, echo, RUN_DIR, main_role)
+    learned = {main_role: training, STARTING_ALONE: {"steps": 0, "kept_state": "the shipped starting model, no "
+                                                     "training on these frames",
+                                                     "export": export_starting_alone(out, settings, echo)}}
+    if random_row:
+        step(f"for the record: the same {training['steps']} steps from random weights")
+        record = train_model(out, settings, echo, RANDOM_RUN_DIR, steps=training["steps"],
+                             extra=['start.weights="random"'])
+        record["export"] = export_model(out, settings, echo, RANDOM_RUN_DIR, RANDOM_WEIGHTS)
+        learned[RANDOM_WEIGHTS] = record
+    return main_role, learned
 
 
 def _frames(folder: Path) -> list[Path]:
@@ -261,31 +316,72 @@ def inspect_and_correct(out: Path, echo: Callable[[str], Any]) -> dict:
     return inspection
 
 
-def train_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
-    from grainwright.trainer.run import train_command
-
+def training_assignments(settings: DemoSettings, extra: list[str] = ()) -> list[str]:
+    """The demo's ``--set`` assignments for ``grainwright train``: its own, then the user's, then ``extra`` (later
+    ones win, so the record row's ``start.weights = "random"`` holds whatever the user set)."""
     # The frames were corrected in step 2, so the trainer's own fixed-pattern check has nothing left to do.
-    assignments = [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"',
-                   f"logging.progress={'true' if settings.progress else 'false'}", *settings.train_settings]
-    budget = {"steps": settings.steps} if settings.steps > 0 else {"minutes": settings.minutes}
-    training, run = train_command(settings.config, str(out / CORRECTED_DIR / "train"), assignments=assignments,
-                                  out=str(out / RUN_DIR), announce=lambda line: echo(f"  {line}"), **budget)
+    return [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"',
+            f"logging.progress={'true' if settings.progress else 'false'}", *settings.train_settings, *extra]
+
+
+def check_training_settings(settings: DemoSettings) -> dict:
+    """The demo's training config, ``--set`` included, loaded and checked as ``grainwright train`` does, so that a
+    wrong setting stops the demo with one line before anything is written."""
+    from grainwright.trainer.config import load_config
+
+    return load_config(settings.config, training_assignments(settings))
+
+
+def train_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any], run_dir: str, *,
+                steps: int | None = None, extra: list[str] = ()) -> dict:
+    """``grainwright train`` on the corrected training frames into ``out/run_dir``; ``steps`` overrides the demo's
+    budget (the record row trains exactly as many steps as the demo's model). The result says where the weights
+    started and which state the run kept (after a start from trained weights, the better of its start and its end
+    on held-out frames)."""
+    from grainwright.trainer.run import start_text, train_command
+
+    steps = steps or settings.steps
+    budget = {"steps": steps} if steps > 0 else {"minutes": settings.minutes}
+    training, run = train_command(settings.config, str(out / CORRECTED_DIR / "train"),
+                                  assignments=training_assignments(settings, list(extra)), out=str(out / run_dir),
+                                  announce=lambda line: echo(f"  {line}"), **budget)
     keep = ("scheme", "steps", "minutes", "best_step", "best_validation", "stopped", "patches_per_second",
-            "parameters", "transform", "layout")
-    return {key: training.get(key) for key in keep} | {"run_folder": str(run.root)}
+            "parameters", "transform", "layout", "precision", "started_from", "selection")
+    selection = training.get("selection")
+    kept = selection["kept"] if selection else f"trained (step {training['best_step']})"
+    return {key: training.get(key) for key in keep} | {"run_folder": str(run.root), "kept_state": kept,
+                                                         "start": start_text(training)}
 
 
-def export_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
+def _worst_parity(result: Any) -> float:
+    parity = result.metadata.get("parity", {})
+    return max(entry["max_abs_diff"] for entry in (parity.get("random"), parity.get("calibration")) if entry)
+
+
+def export_model(out: Path, settings: DemoSettings, echo: Callable[[str], Any], run_dir: str, role: str) -> dict:
+    """Export the state a training run kept (its ``checkpoints/best.pt``) as ``ROLE.onnx``."""
     from grainwright.models.export import export_checkpoint
 
-    result = export_checkpoint(out / RUN_DIR, out / MODEL_FILE, calibration=out / CORRECTED_DIR / "train",
+    result = export_checkpoint(out / run_dir, out / model_file(role), calibration=out / CORRECTED_DIR / "train",
                                threads=settings.threads or os.cpu_count() or 1, log=lambda line: echo(f"  {line}"))
-    parity = result.metadata.get("parity", {})
-    worst = max(entry["max_abs_diff"] for entry in (parity.get("random"), parity.get("calibration")) if entry)
-    return {"model": str(result.path), "parity_max_abs_diff": worst}
+    return {"model": str(result.path), "parity_max_abs_diff": _worst_parity(result)}
 
 
-def denoise_large_frame(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
+def export_starting_alone(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
+    """The shipped starting model for the corrected frames and their ``noise.toml``, with no training on them (what
+    ``grainwright starting-model export`` writes)."""
+    from grainwright.models.starting import export_starting_model, starting_model_manifest
+
+    frames = out / CORRECTED_DIR / "train"
+    result = export_starting_model(frames, out / model_file(STARTING_ALONE), noise_path=frames / "noise.toml",
+                                   threads=settings.threads or os.cpu_count() or 1, log=lambda line: echo(f"  {line}"))
+    manifest = starting_model_manifest()
+    return {"model": str(result.path), "parity_max_abs_diff": _worst_parity(result),
+            "starting_model_steps": manifest["steps"], "starting_model_sha256": manifest["weights_sha256"]}
+
+
+def denoise_large_frame(out: Path, settings: DemoSettings, echo: Callable[[str], Any], role: str) -> dict:
+    """Denoise the large held-out frame with the demo's model ``ROLE.onnx``, tile by tile, and time it."""
     from grainwright.inference.evaluation.metrics import psnr
     from grainwright.inference.images.imageio import read_image, write_image
     from grainwright.inference.runtime.runner import OnnxDenoiser
@@ -293,13 +389,14 @@ def denoise_large_frame(out: Path, settings: DemoSettings, echo: Callable[[str],
     path = _frames(out / CORRECTED_DIR / "large")[0]
     clean = read_image(out / SCENARIO_DIR / scenario.LARGE_CLEAN_DIR / path.name)
     noisy = read_image(path)
-    denoiser = OnnxDenoiser(out / MODEL_FILE, threads=settings.threads or None, tile=settings.tile or None)
+    model = out / model_file(role)
+    denoiser = OnnxDenoiser(model, threads=settings.threads or None, tile=settings.tile or None)
     denoiser.run(noisy[:64, :64])  # warm-up: the first call builds ONNX Runtime's kernels
     began = time.perf_counter()
     denoised = denoiser.run(noisy)
     seconds = time.perf_counter() - began
     megapixels = noisy.shape[0] * noisy.shape[1] / 1e6
-    write_image(out / DENOISED_DIR / path.name, denoised, text=f"denoised by grainwright demo with {MODEL_FILE}")
+    write_image(out / DENOISED_DIR / path.name, denoised, text=f"denoised by grainwright demo with {model.name}")
     peak = float(2**scenario.BIT_DEPTH - 1)
     figures = {
         "file": str(out / DENOISED_DIR / path.name),
@@ -325,13 +422,31 @@ def _region_mean(regions: list[dict], method: str, kind: str) -> tuple[float | N
     return (float(np.mean(values)) if values else None), len(values)
 
 
-def compare_methods(out: Path, settings: DemoSettings, echo: Callable[[str], Any]) -> dict:
-    """``grainwright compare --quick`` of the model against all classical baselines, twice: with the clean
-    frames (PSNR; classical parameters tuned on ground truth) and without (SURE ranking; J-invariant calibration)."""
+def _learned_row(method: str, truth: Any, blind: Any) -> dict:
+    """One learned row's figures: PSNR and rank with the clean frames, rank by SURE without them, and the contrast
+    retention on the cracks and pores (the same model output in both comparisons)."""
+    with_truth = next(e for e in truth.ranking if e["method"] == method)
+    without = next(e for e in blind.ranking if e["method"] == method)
+    return {
+        "psnr_db": with_truth["psnr"],
+        "psnr_rank": with_truth["rank"],
+        "sure_psnr_db": without["sure_psnr"],
+        "sure_rank_without_ground_truth": without["rank"],
+        "crack_contrast_retention": _region_mean(truth.regions, method, "crack")[0],
+        "pore_contrast_retention": _region_mean(truth.regions, method, "pore")[0],
+        "seconds_per_megapixel": without["seconds_per_megapixel"],
+    }
+
+
+def compare_methods(out: Path, settings: DemoSettings, echo: Callable[[str], Any], roles: list[str],
+                    main_role: str) -> dict:
+    """``grainwright compare --quick`` of the learned models (``ROLE.onnx`` for each of ``roles``) against all
+    classical baselines, twice: with the clean frames (PSNR; classical parameters tuned on ground truth) and
+    without (SURE ranking; J-invariant calibration). The top-level figures are the demo's own model's."""
     from grainwright.inference.evaluation.compare import CompareOptions, run_comparison
 
     options = CompareOptions(quick=True, threads=settings.threads or None, seed=settings.seed)
-    methods = [str(out / MODEL_FILE), "all-classical"]
+    methods = [str(out / model_file(role)) for role in roles] + ["all-classical"]
     noisy = out / CORRECTED_DIR / "holdout"
     rois = out / SCENARIO_DIR / scenario.ROIS_FILE
     results = {}
@@ -342,9 +457,9 @@ def compare_methods(out: Path, settings: DemoSettings, echo: Callable[[str], Any
                                        options=options, log=lambda line: echo(f"    {line}"))
 
     truth, blind = results["with-ground-truth"], results["without-ground-truth"]
-    learned = next(e for e in truth.ranking if e["kind"] == "learned")
+    learned = next(e for e in truth.ranking if e["method"] == main_role)
     best_classical = next(e for e in truth.ranking if e["kind"] == "classical")
-    blind_learned = next(e for e in blind.ranking if e["kind"] == "learned")
+    blind_learned = next(e for e in blind.ranking if e["method"] == main_role)
     blind_classical = next(e for e in blind.ranking if e["kind"] == "classical")
     figures: dict[str, Any] = {
         "report_with_ground_truth": str(truth.report_dir / "index.html"),
@@ -354,6 +469,7 @@ def compare_methods(out: Path, settings: DemoSettings, echo: Callable[[str], Any
         "best_classical": best_classical["method"],
         "psnr_best_classical_db": best_classical["psnr"],
         "psnr_gain_db": learned["psnr"] - best_classical["psnr"],
+        "psnr_rank_best_classical": best_classical["rank"],
         "psnr_rank_learned": learned["rank"],
         "sure_rank_learned_without_ground_truth": blind_learned["rank"],
         "sure_psnr_learned_db": blind_learned["sure_psnr"],
@@ -366,36 +482,67 @@ def compare_methods(out: Path, settings: DemoSettings, echo: Callable[[str], Any
             mean, count = _region_mean(blind.regions, method, kind)
             figures[f"{kind}_contrast_retention_{label}"] = mean
             figures[f"{kind}_regions_scored"] = count
+    figures["learned"] = {role: _learned_row(role, truth, blind) for role in roles}
+    # Every method's crack figure in both comparisons: classical parameters differ between the two.
+    figures["crack_contrast_retention_by_method"] = {
+        name: {entry["method"]: _region_mean(result.regions, entry["method"], "crack")[0] for entry in result.ranking}
+        for name, result in results.items()
+    }
     return figures
+
+
+def _ratio(value: float | None) -> str:
+    return "n/a" if value is None else f"{value:.2f}"
+
+
+def learned_table(summary: dict) -> list[str]:
+    """The learned rows beside the best classical method, with the clean frames (classical parameters tuned on
+    them), plus each row's rank by SURE without them."""
+    compare = summary["compare"]
+    best = compare["best_classical"]
+    classical = f"{best} (tuned on ground truth)"
+    width = max(len(classical), *(len(role) for role in summary["learned"]))
+    crack_truth = compare["crack_contrast_retention_by_method"]["with-ground-truth"]
+    lines = [f"    {'method':<{width}} {'steps':>7} {'PSNR dB':>8} {'rank':>5} {'rank by SURE':>13} "
+             f"{'cracks kept':>12}"]
+    for role, row in summary["learned"].items():
+        lines.append(f"    {role:<{width}} {row['steps']:>7} {row['psnr_db']:>8.2f} {row['psnr_rank']:>5} "
+                     f"{row['sure_rank_without_ground_truth']:>13} {_ratio(row['crack_contrast_retention']):>12}")
+    lines.append(f"    {classical:<{width}} {'-':>7} {compare['psnr_best_classical_db']:>8.2f} "
+                 f"{compare['psnr_rank_best_classical']:>5} {'-':>13} {_ratio(crack_truth.get(best)):>12}")
+    return lines
 
 
 def headline(summary: dict, out: Path) -> list[str]:
     """The closing lines: where the report is and the figures that matter."""
     compare, large = summary["compare"], summary["large_frame"]
-    training = summary["training"]
-
-    def ratio(value: float | None) -> str:
-        return "n/a" if value is None else f"{value:.2f}"
-
+    training, main = summary["training"], summary["main_model"]
+    starting = summary["learned"][STARTING_ALONE]["export"]
     lines = [
         "",
         f"grainwright demo finished in {summary['seconds'] / 60:.1f} min; everything is in {out}",
         f"  report (with ground truth):    {compare['report_with_ground_truth']}",
         f"  report (without ground truth): {compare['report_without_ground_truth']}",
-        f"  model: {summary['export']['model']} (trained {training['scheme']} on noisy frames only, "
-        f"{training['steps']} steps in {training['minutes']:.1f} min)",
+        f"  model: {training['export']['model']} (trained {training['scheme']} on noisy frames only, "
+        f"{training['steps']} steps in {training['minutes']:.1f} min; {training['start']})",
         "",
-        f"  PSNR gain over the best classical method: {compare['psnr_gain_db']:+.2f} dB "
+        "  the learned models beside the best classical method on the held-out frames (PSNR and rank with the clean",
+        "  frames, classical parameters tuned on them; rank by SURE without them; cracks kept: contrast retention,",
+        f"  1.00 = kept; steps on these frames, the starting model's own {starting['starting_model_steps']} steps on "
+        "generated data apart):",
+        *learned_table(summary),
+        "",
+        f"  PSNR gain of {main} over the best classical method: {compare['psnr_gain_db']:+.2f} dB "
         f"({compare['psnr_learned_db']:.2f} dB against {compare['best_classical']} at "
         f"{compare['psnr_best_classical_db']:.2f} dB tuned on ground truth; held-out frames)",
         f"  rank by SURE without ground truth: {compare['sure_rank_learned_without_ground_truth']} of "
         f"{compare['methods']} (rank by true PSNR: {compare['psnr_rank_learned']})",
-        f"  contrast retention on the cracks: {ratio(compare['crack_contrast_retention_learned'])} "
+        f"  contrast retention on the cracks: {_ratio(compare['crack_contrast_retention_learned'])} "
         f"(best classical by SURE, {compare['best_classical_by_sure']}: "
-        f"{ratio(compare['crack_contrast_retention_best_classical'])}; 1.00 = contrast kept; "
+        f"{_ratio(compare['crack_contrast_retention_best_classical'])}; 1.00 = contrast kept; "
         f"over the {compare['crack_regions_scored']} crack(s) whose noisy contrast is at least "
         f"{MIN_REGION_SIGNIFICANCE:g} standard errors), pores "
-        f"{ratio(compare['pore_contrast_retention_learned'])}",
+        f"{_ratio(compare['pore_contrast_retention_learned'])}",
         f"  seconds per megapixel: {large['seconds_per_megapixel']:.2f} on the large "
         f"{large['shape'][1]}x{large['shape'][0]} frame, tiled "
         f"({compare['seconds_per_megapixel_learned']:.2f} in the comparison; "

@@ -9,8 +9,11 @@ import sys
 import pytest
 
 from grainwright.console.demo import (
+    FINE_TUNED,
     MARKER_FILE,
     MARKER_KIND,
+    RANDOM_WEIGHTS,
+    STARTING_ALONE,
     DemoSettings,
     prepare_out_dir,
     run_demo,
@@ -64,13 +67,42 @@ def test_budget_must_be_positive(tmp_path):
     assert not any(tmp_path.iterdir())
 
 
+def test_a_wrong_training_setting_stops_the_demo_before_anything_is_written(tmp_path, capsys):
+    from grainwright.console.cli import main
+
+    # "float16" is not one of the trainer's precisions (auto, float32, bfloat16); the key itself is misspelt too.
+    assert main(["demo", "--out", str(tmp_path / "a"), "--set", "model.precision=float16"]) == 2
+    assert main(["demo", "--out", str(tmp_path / "b"), "--set", "model.precison=float32"]) == 2
+    errors = capsys.readouterr().err.splitlines()
+    assert len(errors) == 2
+    assert "model.precision: 'float16' is not one of auto, float32, bfloat16" in errors[0]
+    assert "model.precison: unknown key" in errors[1] and "model.precision" in errors[1]
+    assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+
+
+def test_command_line_options_reach_the_settings(monkeypatch, tmp_path):
+    from grainwright.console.cli import main
+    from grainwright.console.commands import demo as command
+
+    seen = {}
+    monkeypatch.setattr(command, "run_demo", lambda out, settings: seen.update(out=out, settings=settings))
+    assert main(["demo", "--out", str(tmp_path), "--seed", "3", "--minutes", "2.5", "--set", "model.precision=float32",
+                 "--set", "optim.lr=5e-4", "--skip-random-weights"]) == 0
+    settings = seen["settings"]
+    assert settings.seed == 3 and settings.minutes == 2.5 and not settings.random_weights_row
+    assert settings.train_settings == ["model.precision=float32", "optim.lr=5e-4"]
+    assert main(["demo", "--out", str(tmp_path)]) == 0
+    assert seen["settings"].random_weights_row and seen["settings"].train_settings == []
+
+
+TINY = dict(steps=4, train_frames=5, holdout_frames=1, frame_size=64, large_size=(96, 160), threads=1, progress=False)
+TINY_TRAINING = ["data.batch_size=4", "data.patch_size=48", "validation.every_steps=2", "validation.patches=4",
+                 "logging.tensorboard=false", "model.precision=float32"]
+
+
 @pytest.mark.slow
 def test_whole_demo_with_a_tiny_budget(tmp_path):
-    settings = DemoSettings(
-        steps=4, train_frames=3, holdout_frames=1, frame_size=64, large_size=(96, 160), threads=1, progress=False,
-        train_settings=['model.name="residual"', "model.hyper={depth=3, width=8}", "data.batch_size=4", "data.patch_size=48",
-                        "validation.every_steps=2", "validation.patches=4", "logging.tensorboard=false"],
-    )
+    settings = DemoSettings(**TINY, train_settings=TINY_TRAINING)
     lines: list[str] = []
     summary = run_demo(tmp_path, settings, echo=lines.append)
 
@@ -81,20 +113,52 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
     assert summary["training"]["scheme"] in ("recorrupted", "neighbor2neighbor")
     assert not (tmp_path / "corrected" / "train" / "clean").exists()
     assert (tmp_path / "corrected" / "train" / "noise.toml").is_file()
-    assert summary["export"]["parity_max_abs_diff"] <= 1e-4
-    assert (tmp_path / "model.onnx").is_file()
+
+    # Three learned rows: the default training fine-tunes the starting model; the starting model alone; and the
+    # same number of steps from random weights. The --set reached both trainings.
+    learned = marker["learned"]
+    assert list(learned) == [FINE_TUNED, STARTING_ALONE, RANDOM_WEIGHTS] and marker["main_model"] == FINE_TUNED
+    assert learned[FINE_TUNED]["started_from"]["weights"] == "starting-model"
+    assert learned[FINE_TUNED]["kept_state"] in ("fine-tuned", "start")
+    assert learned[FINE_TUNED]["selection"]["kept"] == learned[FINE_TUNED]["kept_state"]
+    assert learned[RANDOM_WEIGHTS]["started_from"]["weights"] == "random"
+    assert learned[RANDOM_WEIGHTS]["steps"] == learned[FINE_TUNED]["steps"] == 4
+    assert learned[STARTING_ALONE]["steps"] == 0
+    for role in (FINE_TUNED, RANDOM_WEIGHTS):
+        assert learned[role]["precision"] == "float32"
+    for role, row in learned.items():
+        assert (tmp_path / f"{role}.onnx").is_file()
+        assert row["export"]["parity_max_abs_diff"] <= 1e-4
+        assert math.isfinite(row["psnr_db"]) and 1 <= row["psnr_rank"] <= 11
+        assert 1 <= row["sure_rank_without_ground_truth"] <= 11
+        assert row["crack_contrast_retention"] is None or math.isfinite(row["crack_contrast_retention"])
+    results = json.loads((tmp_path / "report" / "with-ground-truth" / "results.json").read_text())
+    assert {FINE_TUNED, STARTING_ALONE, RANDOM_WEIGHTS} <= {entry["method"] for entry in results["ranking"]}
+
     assert (tmp_path / "denoised" / "large-000.tif").is_file()
     for name in ("with-ground-truth", "without-ground-truth"):
         assert (tmp_path / "report" / name / "index.html").is_file()
-        assert (tmp_path / "report" / name / "results.json").is_file()
     compare = summary["compare"]
     assert math.isfinite(compare["psnr_gain_db"])
-    assert 1 <= compare["sure_rank_learned_without_ground_truth"] <= compare["methods"]
-    assert compare["methods"] == 9  # the model and the eight classical baselines
+    assert compare["methods"] == 11  # three learned models and the eight classical baselines
+    assert set(compare["crack_contrast_retention_by_method"]["with-ground-truth"]) >= {"bm3d", FINE_TUNED}
     assert summary["large_frame"]["seconds_per_megapixel"] > 0
     text = "\n".join(lines)
-    assert "PSNR gain over the best classical method" in text and "index.html" in text
+    assert "PSNR gain of fine-tuned over the best classical method" in text and "index.html" in text
+    assert "[7/7" in text and all(f"  {role} " in text for role in learned)
 
     # A second run into the same folder is allowed: it is a previous demo folder.
     prepare_out_dir(tmp_path)
     assert [p.name for p in tmp_path.iterdir()] == [MARKER_FILE]
+
+
+@pytest.mark.slow
+def test_a_demo_set_to_start_from_random_weights_has_no_separate_record_row(tmp_path):
+    settings = DemoSettings(**TINY, train_settings=[*TINY_TRAINING, 'start.weights="random"'])
+    lines: list[str] = []
+    summary = run_demo(tmp_path, settings, echo=lines.append)
+    assert list(summary["learned"]) == [RANDOM_WEIGHTS, STARTING_ALONE] and summary["main_model"] == RANDOM_WEIGHTS
+    assert summary["compare"]["methods"] == 10
+    assert (tmp_path / "random-weights.onnx").is_file() and not (tmp_path / "fine-tuned.onnx").exists()
+    assert not (tmp_path / "training-run-random-weights").exists()
+    assert "[6/6" in "\n".join(lines)
