@@ -231,7 +231,8 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
             "float32 N x 1 x H x W, noise standard deviation per pixel in native units; scale it to change the "
             "strength. The graph converts it to the working domain by the transform's slope at each pixel, so for "
             "Poisson-Gaussian noise (Anscombe transform) give sigma(x) = (high - low) * sqrt(gain * (x - low) / "
-            "(high - low) + read**2) with gain and read from normalization.transform"
+            "(high - low) + read**2) with gain and read from normalization.transform, and for gamma speckle (log "
+            "transform with looks L) give sigma(x) = (x - low) / sqrt(L)"
         )
     if model.stack_frames > 1:
         inputs["image"] = (f"float32 N x ({model.stack_frames} * C) x H x W, native pixel values of "

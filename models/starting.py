@@ -16,6 +16,7 @@ ordinary self-describing ONNX file.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 from importlib import resources
@@ -71,24 +72,29 @@ def starting_checkpoint_for(normalization: Any, noise: Any = None,
     Parameters
     ----------
     normalization : Normalization
-        The user's data (``Normalization.for_array`` on their images; with the Anscombe transform for
-        Poisson-Gaussian noise). The network works in the working range, so only this mapping changes.
+        The user's data (``Normalization.for_array`` on their images; with the generalized Anscombe transform for
+        Poisson-Gaussian noise, or the log transform with the number of looks for gamma speckle). The network
+        works in the working range, so only this mapping changes.
     noise : NoiseModel, optional
         The user's noise description, recorded in the checkpoint (and so in the ONNX metadata).
     payload : dict, optional
         The starting checkpoint (default: the shipped one).
 
     One or more channels: the grayscale network denoises each channel on its own (``per_channel``).
+
+    Log domain (gamma speckle of ``L`` looks): the noise there is additive, of variance ``polygamma(1, L)`` and
+    mean ``psi(L) - ln L`` (``transforms.speckle_log_mean``). The network, trained on zero-mean Gaussian noise,
+    removes the noise about its mean and so leaves that mean in its output, exactly as a network trained on noisy
+    targets does: the log transform is the trainer's ``Normalization.with_log(looks=L, noisy_targets=True)``,
+    whose inverse subtracts the bias before ``exp``.
     """
-    if normalization.transform and normalization.transform.get("kind") not in (None, "anscombe"):
-        raise ConfigError(f"the starting model takes Gaussian noise or Poisson-Gaussian noise (Anscombe domain); "
-                          f"the transform '{normalization.transform.get('kind')}' is not supported yet")
+    normalization = starting_normalization(normalization)
     source = payload or load_starting_model()
     hyper = dict(source["hyper"], per_channel=True)
     model = build_model(source["architecture"], normalization.channels, **hyper)
     model.load_state_dict(source["state_dict"])
     summary = dict(source.get("training_summary") or {}, starting_model=True)
-    sigma_max = float(source["training_noise"]["sigma_native_range"][1])  # the shipped range is [0, 1]
+    sigma_max = trained_level_max(source)
     if normalization.transform:  # the level the network sees in the transformed domain (working units)
         training_noise = None
     else:
@@ -100,6 +106,56 @@ def starting_checkpoint_for(normalization: Any, noise: Any = None,
                               training_summary=summary, training_noise=training_noise)
 
 
+def starting_normalization(normalization: Any) -> Any:
+    """``normalization`` as the starting model needs it: no transform or the Anscombe transform unchanged; the log
+    transform rebuilt by the trainer's ``with_log`` with the speckle bias removed on the way back (it needs the
+    number of looks, which fixes the noise level and the bias). ``ConfigError`` for anything else."""
+    transform = normalization.transform
+    kind = None if not transform else transform.get("kind")
+    if kind in (None, "anscombe"):
+        return normalization
+    if kind != "log":
+        raise ConfigError(f"the starting model takes Gaussian, Poisson-Gaussian (Anscombe domain) or gamma speckle "
+                          f"noise (log domain); the transform '{kind}' is not supported")
+    if "looks" not in transform:
+        raise ConfigError("the starting model in the log domain needs the number of looks of the gamma speckle "
+                          "(it sets the noise level and the log-domain bias); give a noise.toml of kind "
+                          "\"speckle-gamma\"")
+    linear = dataclasses.replace(normalization, transform=None)
+    return linear.with_log(epsilon=float(transform["epsilon"]), looks=float(transform["looks"]), noisy_targets=True)
+
+
+def trained_level_max(payload: dict[str, Any] | None = None) -> float:
+    """The largest Gaussian noise level the starting model was trained on, working units (75/255 for the shipped
+    one: its normalisation is float data in ``[0, 1]``)."""
+    source = payload or load_starting_model()
+    return float(source["training_noise"]["sigma_native_range"][1])
+
+
+def starting_working_level(normalization: Any, noise: Any = None) -> float | None:
+    """The Gaussian noise level the network sees for this data, in working units (after the transform's scaling),
+    where one level holds everywhere: ``Normalization.working_noise_sigma()`` in the Anscombe domain (``1 / scale``)
+    and in the log domain (``sqrt(polygamma(1, L)) / scale``), the ``sigma`` of a Gaussian noise description;
+    None when it varies by image (no description: ``denoise`` estimates it per image)."""
+    if normalization.transform:
+        return normalization.working_noise_sigma()
+    if noise is not None and noise.kind == "gaussian":
+        return float(noise.sigma)
+    return None
+
+
+def level_warning(normalization: Any, noise: Any, payload: dict[str, Any] | None = None) -> str | None:
+    """A warning line when the data's noise level is above the starting model's trained range, else None."""
+    level, sigma_max = starting_working_level(normalization, noise), trained_level_max(payload)
+    if level is None or level <= sigma_max:
+        return None
+    domain = {None: "", "anscombe": " in the Anscombe domain", "log": " in the log domain"}[
+        (normalization.transform or {}).get("kind")]
+    return (f"warning: the noise level{domain} is {level * 255:.1f}/255 of the working range, above the "
+            f"{sigma_max * 255:.0f}/255 the starting model was trained on; it extrapolates there and may denoise "
+            "poorly: train a model on your data instead")
+
+
 def normalization_for_samples(samples: str | Path, noise_path: str | Path | None = None,
                               bit_depth: int | None = None) -> tuple[Any, Any]:
     """The normalisation of the user's data, taken from their sample images as for a trained run, and their noise
@@ -107,7 +163,9 @@ def normalization_for_samples(samples: str | Path, noise_path: str | Path | None
 
     ``Normalization.for_array`` over all sample images (dtype, effective bit depth, range, channels); with a
     Poisson or Poisson-Gaussian ``noise.toml``, the generalized Anscombe transform, so the network sees Gaussian
-    noise of unit variance (scaled to working units) as in ``grainwright train``.
+    noise of unit variance (scaled to working units) as in ``grainwright train``; with gamma speckle
+    (``speckle-gamma``), the trainer's log transform for its number of looks, with the speckle's log-domain bias
+    removed on the way back (see :func:`starting_checkpoint_for`).
     """
     import numpy as np
 
@@ -132,9 +190,11 @@ def normalization_for_samples(samples: str | Path, noise_path: str | Path | None
     if noise is not None:
         if noise.kind in ("poisson", "poisson-gaussian"):
             normalization = normalization.with_anscombe(noise.gain, getattr(noise, "read", 0.0))
+        elif noise.kind == "speckle-gamma":
+            normalization = normalization.with_log(looks=float(noise.looks), noisy_targets=True)
         elif noise.kind != "gaussian":
-            raise ConfigError(f"{noise_path}: noise kind '{noise.kind}': the starting model takes Gaussian or "
-                              "Poisson-Gaussian noise; train a model on your data for this kind")
+            raise ConfigError(f"{noise_path}: noise kind '{noise.kind}': the starting model takes Gaussian, "
+                              "Poisson-Gaussian or gamma speckle noise; train a model on your data for this kind")
     return normalization, noise
 
 
@@ -155,13 +215,33 @@ def export_starting_model(samples: str | Path, output: str | Path, *, noise_path
     from grainwright.models.export import export_checkpoint
 
     normalization, noise = normalization_for_samples(samples, noise_path, bit_depth)
-    payload = starting_checkpoint_for(normalization, noise, payload)
+    source = payload or load_starting_model()
+    for_data = starting_checkpoint_for(normalization, noise, source)
+    normalization = starting_normalization(normalization)
     log(f"starting model for {normalization.channels}-channel {normalization.dtype} data"
         f"{'' if normalization.bit_depth is None else f' ({normalization.bit_depth}-bit)'}, range "
         f"[{normalization.low:g}, {normalization.high:g}]"
         + (f", {normalization.transform['kind']} transform" if normalization.transform else "")
         + ("; each channel denoised on its own by the grayscale network" if normalization.channels > 1 else ""))
+    for line in _level_lines(normalization, noise, source):
+        log(line)
     with tempfile.TemporaryDirectory(prefix="grainwright-starting-") as folder:
-        checkpoint = save_checkpoint(Path(folder) / "starting-for-data.pt", payload)
+        checkpoint = save_checkpoint(Path(folder) / "starting-for-data.pt", for_data)
         return export_checkpoint(checkpoint, output, calibration=samples, int8=int8, min_int8_psnr=min_int8_psnr,
                                  overwrite=overwrite, threads=threads, log=log)
+
+
+def _level_lines(normalization: Any, noise: Any, payload: dict[str, Any]) -> list[str]:
+    """Export log lines on the noise level: the level the network sees in a transformed domain, how to give it
+    per pixel, and a warning when it lies above the trained range."""
+    lines = []
+    kind = (normalization.transform or {}).get("kind")
+    if kind is not None:
+        level = starting_working_level(normalization, noise)
+        lines.append(f"noise level in the {kind} domain: {level * 255:.1f}/255 of the working range (trained on 0 "
+                     f"to {trained_level_max(payload) * 255:.0f}/255); denoise with --noise-sigma model to give it "
+                     "per pixel from the noise description")
+    warning = level_warning(normalization, noise, payload)
+    if warning:
+        lines.append(warning)
+    return lines

@@ -9,8 +9,16 @@ constants are baked into the graph. ``tests/test_export_working_range.py`` holds
 domain the network sees, by the first-order (delta-method) rule ``sigma_working = |T'(x)| * sigma_native /
 (high - low)`` with ``x`` the normalised pixel value and ``T`` the rescaled transform (identity when there is
 none). For signal-dependent noise given as ``sqrt(gain * x + read**2)`` in native units, the Anscombe transform
-turns it into a constant ``1 / scale`` (``Normalization.working_noise_sigma()``). The trainer feeds
-``residual-noisemap`` models through the same function, so training and export agree.
+turns it into a constant ``1 / scale`` (``Normalization.working_noise_sigma()``), the level the trainer gives
+noise-map models in that domain.
+
+For gamma speckle of ``L`` looks in the log domain (``looks`` in the transform) the delta method falls short: the
+native standard deviation ``s / sqrt(L)`` times the slope ``1 / s`` gives ``1 / sqrt(L)``, while the log of the
+speckle has the standard deviation ``sqrt(polygamma(1, L))`` (trigamma; 28% more at one look, 6.5% at four). The
+conversion multiplies the log slope by ``sqrt(L * polygamma(1, L))``, so the per-pixel speckle level
+``sigma(x) = (high - low) * x / sqrt(L)`` (what ``--noise-sigma model`` gives) becomes the exact log-domain level
+``sqrt(polygamma(1, L)) / scale`` of ``Normalization.working_noise_sigma()`` wherever ``x`` is well above the
+transform's ``epsilon``.
 """
 from __future__ import annotations
 
@@ -37,6 +45,7 @@ class WorkingRange(nn.Module):
         self.low = float(normalization.low)
         self.full_range = float(normalization.high - normalization.low)
         self.transform = dict(normalization.transform) if normalization.transform else None
+        self.log_level_factor = speckle_level_factor(self.transform)
 
     def to_working(self, native: torch.Tensor) -> torch.Tensor:
         """Native values -> working values (mirrors ``Normalization.to_working``)."""
@@ -84,8 +93,19 @@ class WorkingRange(nn.Module):
             u = torch.clamp(x / t["gain"] + 0.375 + ratio * ratio, min=0.375)
             slope = 1.0 / (t["gain"] * torch.sqrt(u) * t["scale"])
         else:
-            slope = 1.0 / ((torch.clamp(x, min=0.0) + t["epsilon"]) * t["scale"])
+            slope = self.log_level_factor / ((torch.clamp(x, min=0.0) + t["epsilon"]) * t["scale"])
         return sigma * slope
+
+
+def speckle_level_factor(transform: dict[str, Any] | None) -> float:
+    """``sqrt(L * polygamma(1, L))`` for a log transform with ``L`` looks (the exact standard deviation of the log
+    of unit-mean gamma speckle over its delta-method value ``1 / sqrt(L)``), else 1."""
+    if not transform or transform.get("kind") != "log" or "looks" not in transform:
+        return 1.0
+    from scipy.special import polygamma
+
+    looks = float(transform["looks"])
+    return math.sqrt(looks * float(polygamma(1, looks)))
 
 
 def _anscombe_inverse_exact(d: torch.Tensor, gain: float, read: float) -> torch.Tensor:

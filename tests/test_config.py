@@ -34,6 +34,20 @@ def test_shipped_configs_load(name):
     assert model.parameter_count() > 0
 
 
+def test_the_starting_model_recipe_is_not_a_training_config(tmp_path, capsys):
+    # Its [generated] table belongs to `grainwright starting-model train`: one line that points there.
+    from grainwright.console.cli import main
+
+    with pytest.raises(ConfigError, match=r"starting-model recipe .*'grainwright starting-model train --recipe "
+                                          r"starting-model --out RUN_DIR'"):
+        load_config("starting-model")
+    assert main(["train", "starting-model"]) == 2
+    error = capsys.readouterr().err.strip()
+    assert len(error.splitlines()) == 1 and "grainwright starting-model train" in error
+    assert main(["train", "starting-model", "--data", str(tmp_path)]) == 2
+    assert "grainwright starting-model train" in capsys.readouterr().err
+
+
 def test_unknown_key_names_the_path_and_the_closest_key():
     with pytest.raises(ConfigError, match=r"optim\.lrr: unknown key \(did you mean 'optim\.lr'\?\)"):
         validate({"optim": {"lrr": 0.1}})

@@ -140,10 +140,112 @@ def test_noise_descriptions_choose_the_domain(tmp_path):
                           bit_depth=12, payload=_tiny_starting_payload())
     assert read_model_metadata(tmp_path / "pg.onnx")["normalization"]["transform"]["kind"] == "anscombe"
     save_noise(noise_from_dict({"kind": "speckle-gamma", "looks": 4.0}), tmp_path / "speckle.toml")
-    with pytest.raises(ConfigError, match="speckle-gamma"):
-        export_starting_model(tmp_path / "samples", tmp_path / "s.onnx", noise_path=tmp_path / "speckle.toml",
+    export_starting_model(tmp_path / "samples", tmp_path / "speckle.onnx", noise_path=tmp_path / "speckle.toml",
+                          bit_depth=12, payload=_tiny_starting_payload())
+    assert read_model_metadata(tmp_path / "speckle.onnx")["normalization"]["transform"]["kind"] == "log"
+    save_noise(noise_from_dict({"kind": "speckle-rayleigh"}), tmp_path / "rayleigh.toml")
+    with pytest.raises(ConfigError, match="speckle-rayleigh"):
+        export_starting_model(tmp_path / "samples", tmp_path / "r.onnx", noise_path=tmp_path / "rayleigh.toml",
                               payload=_tiny_starting_payload())
-    assert not (tmp_path / "s.onnx").exists()
+    assert not (tmp_path / "r.onnx").exists()
+
+
+def _speckle_samples(folder, looks: float, seed: int = 0):
+    """A smooth generated image (a blurred dead-leaves image, 4% to 24% of a 16-bit range) and the same image under
+    gamma speckle of ``looks`` looks, written as the sample; with its ``noise.toml``."""
+    from scipy.ndimage import gaussian_filter
+
+    from grainwright.inference.noise.models import noise_from_dict, save_noise
+    from grainwright.inference.synthetic.dead_leaves import DeadLeavesSettings, dead_leaves_image
+
+    rng = np.random.default_rng(seed)
+    leaves = dead_leaves_image(rng, DeadLeavesSettings(size=128, radius_min=8.0, radius_max=64.0,
+                                                       texture_fraction=0.0, blur_probability=0.0))
+    clean = (0.04 + 0.2 * gaussian_filter(leaves.astype(np.float64), 2.0)) * 65535.0
+    noise = noise_from_dict({"kind": "speckle-gamma", "looks": looks})
+    noisy = np.clip(np.rint(noise.sample(clean.astype(np.float32), rng)), 0, 65535).astype(np.uint16)
+    folder.mkdir()
+    write_image(folder / "speckled.tif", noisy[..., None])
+    save_noise(noise, folder.parent / f"speckle-{looks:g}.toml")
+    return clean, noisy, folder.parent / f"speckle-{looks:g}.toml"
+
+
+@pytest.mark.parametrize("looks", [1.0, 4.0, 10.0])
+def test_speckle_reaches_the_network_as_noise_of_the_trigamma_level(tmp_path, looks):
+    """In the log domain gamma speckle of L looks is additive noise of variance polygamma(1, L) (trigamma) and mean
+    psi(L) - ln L (Xie, Pierce and Ulaby, IEEE TGRS 2002, from memory; the moments of log-gamma variables, SciPy's
+    ``scipy.special.polygamma`` and ``digamma`` as the reference)."""
+    from scipy.special import digamma, polygamma
+
+    from grainwright.models.starting import normalization_for_samples, starting_working_level
+    from grainwright.models.working_range import WorkingRange
+
+    _, _, noise_path = _speckle_samples(tmp_path / "samples", looks)
+    normalization, noise = normalization_for_samples(tmp_path / "samples", noise_path, bit_depth=16)
+    transform = normalization.transform
+    assert transform["kind"] == "log" and transform["bias"] == pytest.approx(digamma(looks) - np.log(looks))
+    expected = np.sqrt(polygamma(1, looks)) / transform["scale"]  # working units: the log over its scale
+    assert starting_working_level(normalization, noise) == pytest.approx(expected, rel=1e-9)
+    # The exported graph's conversion of the per-pixel speckle level (what --noise-sigma model feeds it).
+    signal = 0.8
+    sigma_native = torch.tensor(signal / np.sqrt(looks) * 65535.0, dtype=torch.float32).reshape(1, 1, 1, 1)
+    graph_level = WorkingRange(normalization).noise_sigma_to_working(
+        sigma_native, torch.full((1, 1, 1, 1), signal * 65535.0)).item()
+    epsilon = transform["epsilon"]
+    assert graph_level == pytest.approx(expected * signal / (signal + epsilon), rel=1e-5)
+    # ... and both agree with the spread of simulated speckle in the working domain. At one look the exponential
+    # speckle's lower tail reaches the transform's epsilon floor, which trims the log spread by about 5%.
+    rng = np.random.default_rng(1)
+    speckled = signal * 65535.0 * rng.gamma(looks, 1.0 / looks, 400_000)
+    measured = float(np.std(normalization.to_working(speckled.astype(np.float32))))
+    assert graph_level == pytest.approx(measured, rel=0.07 if looks == 1.0 else 0.03)
+
+
+def test_the_speckle_export_matches_torch_and_improves_psnr(tmp_path):
+    from grainwright.inference.evaluation.metrics import psnr
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.inference.noise.models import noise_from_dict
+    from grainwright.models.checkpoint import model_from_checkpoint
+    from grainwright.models.export import reference_output
+    from grainwright.models.starting import normalization_for_samples, starting_checkpoint_for
+
+    clean, noisy, noise_path = _speckle_samples(tmp_path / "samples", 4.0)
+    lines = []
+    output = tmp_path / "speckle.onnx"
+    export_starting_model(tmp_path / "samples", output, noise_path=noise_path, bit_depth=16, log=lines.append)
+    metadata = read_model_metadata(output)
+    assert metadata["parity"]["calibration"]["max_abs_diff"] <= PARITY_TOLERANCE
+    assert any("log domain" in line and "--noise-sigma model" in line for line in lines)
+    assert not any(line.startswith("warning") for line in lines)  # 4 looks lie inside the trained range
+    denoised = OnnxDenoiser(output, threads=1, noise_sigma="model").run(noisy[..., None], as_float=True)[..., 0]
+    # ONNX Runtime against torch (numpy normalisation, torch network) with the runtime's speckle noise map.
+    normalization = Normalization.from_dict(metadata["normalization"])
+    model = model_from_checkpoint(starting_checkpoint_for(*normalization_for_samples(
+        tmp_path / "samples", noise_path, bit_depth=16)))
+    image = noisy[None, None].astype(np.float32)
+    level = noise_from_dict(metadata["noise"]).sigma_map(np.clip(image / 65535.0, 0, 1)) * 65535.0
+    expected = reference_output(model, normalization, image, level.astype(np.float32))[0, 0]
+    assert np.max(np.abs(denoised - expected)) / 65535.0 <= PARITY_TOLERANCE
+    # On the smooth image the speckle is mostly removed, and the log-domain bias with it: no 12% darkening.
+    peak = float(clean.max())
+    gain = psnr(clean, denoised, peak) - psnr(clean, noisy.astype(np.float64), peak)
+    assert gain > 3.0, gain
+    assert denoised.mean() / clean.mean() == pytest.approx(1.0, abs=0.03)
+
+
+def test_speckle_above_the_trained_range_is_said_in_the_export_log(tmp_path):
+    from grainwright.models.starting import starting_normalization
+
+    _, _, noise_path = _speckle_samples(tmp_path / "samples", 0.3)  # fewer than one look: a very wide log spread
+    lines = []
+    export_starting_model(tmp_path / "samples", tmp_path / "s.onnx", noise_path=noise_path, bit_depth=16,
+                          payload=_tiny_starting_payload(), log=lines.append)
+    assert sum(line.startswith("warning: the noise level in the log domain") for line in lines) == 1
+    # A log transform without the number of looks gives neither the level nor the bias.
+    from grainwright.inference.images.normalization import Normalization
+
+    with pytest.raises(ConfigError, match="number of looks"):
+        starting_normalization(Normalization("uint16", 16, 0.0, 65535.0, 1).with_log())
 
 
 def test_a_finished_run_packages_as_weights_and_manifest(tmp_path):

@@ -255,7 +255,7 @@ def load_config(path: str | Path | None, assignments: list[str] = ()) -> dict[st
     """Read a TOML config (or start from the defaults), apply ``--set`` assignments and validate."""
     raw: dict[str, Any] = {}
     if path is not None:
-        path = Path(path)
+        path = given = Path(path)
         if not path.is_file():
             shipped = shipped_config(path.name)
             if path.parent != Path(".") or shipped is None:
@@ -265,6 +265,9 @@ def load_config(path: str | Path | None, assignments: list[str] = ()) -> dict[st
             raw = tomllib.loads(path.read_text(encoding="utf-8"))
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as error:
             raise ConfigError(f"{path}: not valid TOML ({error})") from None
+        if "generated" in raw:  # the starting model's recipe: a config plus the generated-data table
+            raise ConfigError(f"{given}: a starting-model recipe (it has a [generated] table), not a training config; "
+                              f"train it with 'grainwright starting-model train --recipe {given} --out RUN_DIR'")
         try:
             return validate(apply_assignments(raw, list(assignments)))
         except ConfigError as error:

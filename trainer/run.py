@@ -529,10 +529,11 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         if "step" not in state:
             raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
     else:
+        if data is not None:
+            assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')
+        config = load_config(config_path, assignments)  # first: a wrong config is named before a missing --data
         if data is None:
             raise ConfigError("--data DIR is required (the folder holding the training images)")
-        assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')
-        config = load_config(config_path, assignments)
     if config["budget"]["steps"] == 0 and config["budget"]["minutes"] == 0:
         raise ConfigError("budget: both budget.steps and budget.minutes are 0, which would train nothing; give "
                           "--steps N or --minutes N")
