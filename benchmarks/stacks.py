@@ -13,7 +13,9 @@ Quality part (noisy frames only, the budget per model in minutes, one run per se
 - the generated conveyor sequence (:func:`grainwright.inference.synthetic.stack_scenario.conveyor_sequence`):
   K-frame model (``neighbor2neighbor-stack``) against the single-frame model of the same size and budget
   (``neighbor2neighbor`` on the same frames), the plain K-frame average and per-frame BM3D (its noise level
-  tuned on the clean frames); PSNR on whole frames and on the moving pixels;
+  tuned on the clean frames); PSNR on whole frames and on the moving pixels; crack contrast retention (the
+  compare's measure, :func:`grainwright.inference.evaluation.detail.contrast_retention`, against the clean
+  frame's contrast), median over the cracks and frames on the lane and over those of the still scene;
 - the generated cast volume (:func:`~grainwright.inference.synthetic.stack_scenario.cast_volume`): the K-frame
   model against per-slice BM3D, 3-D total variation (scikit-image ``denoise_tv_chambolle``) and 3-D non-local
   means (scikit-image ``denoise_nl_means``), each tuned on the clean volume over a small grid.
@@ -130,20 +132,24 @@ def peak_rss(denoise_command: list[str], model: Path, slices: int, edge: int, th
 
 
 def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any], scheme: str, minutes: float,
-                     seed: int, threads: int, trained: dict[str, Any] | None = None) -> Path:
-    """Train on ``data`` for ``minutes`` (noisy frames only) and export the final state to ONNX; the steps and
-    minutes done are added to ``trained`` under the model's name."""
+                     seed: int, threads: int, trained: dict[str, Any] | None = None, steps: int = 0,
+                     extra: tuple[str, ...] = ()) -> Path:
+    """Train on ``data`` for ``minutes`` (or ``steps`` optimiser steps when positive; noisy frames only) and export
+    the best state to ONNX; the steps and minutes done are added to ``trained`` under the model's name.
+    ``extra`` are further config assignments (``KEY=VALUE``)."""
     from grainwright.models.export import export_checkpoint
     from grainwright.trainer.run import train_command
 
     settings = [f'model.name="{model}"', f"seed={seed}", f"threads={threads}", "logging.progress=false",
                 "logging.tensorboard=false", "data.patch_size=64", "data.batch_size=16"]
-    settings += [f"model.hyper.{key}={value}" for key, value in hyper.items()]
-    summary, run = train_command(None, str(data), scheme=scheme, minutes=minutes, out=str(out),
-                                 assignments=settings, announce=lambda message: None)
+    settings += [f"model.hyper.{key}={value}" for key, value in hyper.items()] + list(extra)
+    budget = {"steps": steps} if steps > 0 else {"minutes": minutes}
+    summary, run = train_command(None, str(data), scheme=scheme, out=str(out), assignments=settings,
+                                 announce=lambda message: None, **budget)
     export_checkpoint(run.best, out / "model.onnx", threads=threads, overwrite=True)
     if trained is not None:
-        trained[model] = {"steps": summary.get("steps"), "minutes": summary.get("minutes")}
+        trained[model] = {"steps": summary.get("steps"), "minutes": summary.get("minutes"),
+                          "stack_axis": summary.get("stack_axis")}
     return out / "model.onnx"
 
 
@@ -170,9 +176,25 @@ def bm3d_frames(noisy: np.ndarray, clean: np.ndarray, sigmas: tuple[float, ...],
     return sigma, np.stack([_as_written(run(frame, sigma)) for frame in noisy])
 
 
+def crack_retention(sequence: Any, output: np.ndarray) -> dict[str, float | int]:
+    """Median crack contrast retention of ``output`` over the cracks and frames of ``sequence``, on the lane
+    (moving) and on the still scene: output contrast over the clean frame's (1 = kept, 0 = erased)."""
+    from grainwright.inference.evaluation.detail import Region, contrast_retention
+
+    figures: dict[str, float | int] = {}
+    for label, moving in (("moving", True), ("still", False)):
+        ratios = [contrast_retention(sequence.clean[crack["frame"]], output[crack["frame"]],
+                                     Region(crack["name"], tuple(crack["feature"]), tuple(crack["background"])))
+                  for crack in sequence.cracks if crack["moving"] == moving]
+        figures[f"crack_retention_{label}"] = float(np.median(ratios)) if ratios else float("nan")
+        figures[f"cracks_{label}"] = len(ratios)
+    return figures
+
+
 def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
-                     bm3d_frames_scored: int, log: Callable[[str], None]) -> dict[str, Any]:
-    sequence = conveyor_sequence(seed=seed)
+                     bm3d_frames_scored: int, log: Callable[[str], None], steps: int = 0,
+                     shape: tuple[int, int] = (192, 256), settings: tuple[str, ...] = ()) -> dict[str, Any]:
+    sequence = conveyor_sequence(height=shape[0], width=shape[1], seed=seed)
     data = folder / f"sequence-{seed}"
     write_stack_pair(data, "conveyor", sequence.noisy, sequence.clean, sequence_info(sequence))
     noisy, clean, moving = sequence.noisy.astype(np.float64), sequence.clean, sequence.moving
@@ -180,26 +202,28 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     rows: dict[str, np.ndarray] = {"noisy": noisy, f"{frames}-frame average": average}
     stack_hyper = {"frames": frames, "levels": 2, "width": width}
     trained: dict[str, Any] = {}
-    log(f"sequence seed {seed}: training the {frames}-frame model for {minutes} min")
+    budget = {"minutes": minutes, "steps": steps, "extra": settings}
+    log(f"sequence seed {seed}: training the {frames}-frame model ({f'{steps} steps' if steps else f'{minutes} min'})")
     stack_model = train_and_export(data, folder / f"seq-stack-{seed}", model="unet-stack", hyper=stack_hyper,
-                                   scheme="neighbor2neighbor-stack", minutes=minutes, seed=seed, threads=threads,
-                                   trained=trained)
+                                   scheme="neighbor2neighbor-stack", seed=seed, threads=threads, trained=trained,
+                                   **budget)
     rows[f"unet-stack K={frames}"] = _as_written(denoise_stack_array(OnnxDenoiser(stack_model, threads=threads),
                                                                      sequence.noisy[..., None])[..., 0])
-    log(f"sequence seed {seed}: training the single-frame model for {minutes} min")
+    log(f"sequence seed {seed}: training the single-frame model")
     single_model = train_and_export(data, folder / f"seq-single-{seed}", model="unet-small",
-                                    hyper={"levels": 2, "width": width}, scheme="neighbor2neighbor", minutes=minutes,
-                                    seed=seed, threads=threads, trained=trained)
+                                    hyper={"levels": 2, "width": width}, scheme="neighbor2neighbor", seed=seed,
+                                    threads=threads, trained=trained, **budget)
     single = OnnxDenoiser(single_model, threads=threads)
     rows["unet-small (single frame)"] = np.stack([_as_written(single.run(frame[..., None], as_float=True)[..., 0])
                                                   for frame in sequence.noisy])
-    scored = np.linspace(0, len(noisy) - 1, bm3d_frames_scored).round().astype(int)
-    sigma, bm3d_out = bm3d_frames(noisy[scored], clean[scored], (80.0, 120.0, 160.0, 200.0), tune_on=0)
-    table = {name: {"psnr_whole": psnr(clean, values), "psnr_moving": psnr(clean, values, moving)}
-             for name, values in rows.items()}
-    table[f"BM3D per frame (sigma {sigma:g} DN tuned on GT; {len(scored)} frames)"] = {
-        "psnr_whole": psnr(clean[scored], bm3d_out), "psnr_moving": psnr(clean[scored], bm3d_out, moving),
-        "same_frames_unet_stack": psnr(clean[scored], rows[f"unet-stack K={frames}"][scored])}
+    table = {name: {"psnr_whole": psnr(clean, values), "psnr_moving": psnr(clean, values, moving),
+                    **crack_retention(sequence, values)} for name, values in rows.items()}
+    if bm3d_frames_scored:
+        scored = np.linspace(0, len(noisy) - 1, bm3d_frames_scored).round().astype(int)
+        sigma, bm3d_out = bm3d_frames(noisy[scored], clean[scored], (80.0, 120.0, 160.0, 200.0), tune_on=0)
+        table[f"BM3D per frame (sigma {sigma:g} DN tuned on GT; {len(scored)} frames)"] = {
+            "psnr_whole": psnr(clean[scored], bm3d_out), "psnr_moving": psnr(clean[scored], bm3d_out, moving),
+            "same_frames_unet_stack": psnr(clean[scored], rows[f"unet-stack K={frames}"][scored])}
     return {"seed": seed, "motion": sequence.motion, "trained": trained, "rows": table}
 
 
@@ -267,7 +291,8 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
         if "sequence" in args.parts:
             figures["sequence"] = [sequence_quality(folder, frames=args.frames, minutes=args.minutes, seed=seed,
                                                     threads=args.threads, width=args.width,
-                                                    bm3d_frames_scored=args.bm3d_frames, log=log)
+                                                    bm3d_frames_scored=args.bm3d_frames, log=log, steps=args.steps,
+                                                    shape=tuple(args.sequence_size), settings=tuple(args.set))
                                    for seed in args.seeds]
             log(f"sequence: {json.dumps(figures['sequence'], indent=1)}")
         if "volume" in args.parts:

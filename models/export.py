@@ -210,7 +210,7 @@ def stack_description(model: DenoisingNetwork, payload: dict[str, Any]) -> dict[
         "frames": model.stack_frames,
         # The axis the training stacks ran along (Z slices of a volume, T time points of a sequence, or I when
         # the files did not say); the runtime slides along the one frame axis of each file.
-        "axis": (payload.get("stack") or {}).get("axis", "I"),
+        "axis": (payload.get("training_summary") or {}).get("stack_axis", "I"),
         "channel_order": "frame-major",
         "ends": "reflect",
         "stack_receptive_field": model.stack_frames,

@@ -59,3 +59,46 @@ def test_frame_average_and_psnr():
     assert psnr(clean, clean + 10.0) == 10 * np.log10(4095.0**2 / 100.0)
     noisy = (clean + np.arange(7)[:, None, None])[..., None]
     assert frame_average(noisy, 5)[0, 0, 0, 0] == 1000.0 + (2 + 1 + 0 + 1 + 2) / 5
+
+
+def test_sequence_cracks_ride_the_lane_with_their_boxes():
+    """Every crack's boxes sit where its clean contrast is: the same dark contrast in every frame listed, the
+    lane's cracks moving ``speed`` pixels per frame."""
+    sequence = conveyor_sequence(frames=8, height=128, width=160, speed=3, seed=0)
+    assert any(crack["moving"] for crack in sequence.cracks)
+    contrasts, columns = {}, {}
+    for crack in sequence.cracks:
+        frame = sequence.clean[crack["frame"]]
+        (x, y, w, h), (bx, by, bw, bh) = crack["feature"], crack["background"]
+        contrasts.setdefault(crack["name"], []).append(frame[y:y + h, x:x + w].mean() -
+                                                       frame[by:by + bh, bx:bx + bw].mean())
+        columns.setdefault(crack["name"], []).append((crack["frame"], x))
+    for name, values in contrasts.items():
+        assert max(values) < 0 and np.ptp(values) < 1e-6 * abs(np.mean(values)), name
+        steps = {(x1 - x0) / (f1 - f0) for (f0, x0), (f1, x1) in zip(columns[name], columns[name][1:])}
+        assert steps == ({3.0} if name.startswith("lane") else {0.0}) or len(values) == 1, name
+
+
+def test_crack_retention_is_one_for_the_clean_frames_and_drops_when_blurred():
+    from scipy import ndimage
+
+    from grainwright.benchmarks.stacks import crack_retention
+
+    sequence = conveyor_sequence(frames=6, height=128, width=160, seed=0)
+    kept = crack_retention(sequence, sequence.clean)
+    blurred = crack_retention(sequence, ndimage.uniform_filter(sequence.clean, (1, 7, 7)))
+    for label in ("moving", "still"):
+        if kept[f"cracks_{label}"]:
+            assert kept[f"crack_retention_{label}"] == 1.0
+            assert blurred[f"crack_retention_{label}"] < 0.8  # a 7 x 7 box filter wipes out a 1-pixel line
+
+
+def test_bench_sequence_quality_computes_every_row(tmp_path):
+    from grainwright.benchmarks.stacks import sequence_quality
+
+    figures = sequence_quality(tmp_path, frames=3, minutes=1.0, seed=0, threads=1, width=4, bm3d_frames_scored=0,
+                               log=lambda message: None, steps=2, shape=(64, 96))
+    assert figures["trained"]["unet-stack"]["steps"] == 2 and figures["trained"]["unet-stack"]["stack_axis"] == "T"
+    assert set(figures["rows"]) == {"noisy", "3-frame average", "unet-stack K=3", "unet-small (single frame)"}
+    for row in figures["rows"].values():
+        assert np.isfinite(row["psnr_whole"]) and "crack_retention_moving" in row

@@ -10,9 +10,10 @@ import torch
 
 from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.runtime.modelinfo import read_model_metadata
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
 from grainwright.trainer.data import stack_windows
-from grainwright.trainer.run import train_command
+from grainwright.trainer.run import frame_stride, train_command
 from grainwright.trainer.schemes.neighbor2neighbor import ADJACENT_PAIRS
 from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack, pick, separated_positions
 
@@ -77,7 +78,42 @@ def test_no_input_pixel_shares_a_row_or_column_with_a_target_pixel(seed):
     pattern repeated in every frame cannot be copied from a neighbour. The published adjacent pairing is not
     (the control shows the check can fail)."""
     assert not _target_lines_reach_the_input(separated_positions, seed)
+    assert not _target_lines_reach_the_input(_per_line_positions, seed)
     assert _target_lines_reach_the_input(_adjacent_positions, seed)
+
+
+def _per_line_positions(rng, count, height, width):
+    """The former pairing: diagonal partners with the row drawn per row of cells and the column per column of
+    cells (blind to the targets' rows and columns, but unevenly spaced)."""
+    row, col = rng.integers(0, 2, (count, height // 2)), rng.integers(0, 2, (count, width // 2))
+    rows, cols = 2 * np.arange(height // 2)[None, :], 2 * np.arange(width // 2)[None, :]
+    first = (rows + row)[:, :, None] * width + (cols + col)[:, None, :]
+    second = (rows + 1 - row)[:, :, None] * width + (cols + 1 - col)[:, None, :]
+    return first, second
+
+
+def _direction_is_readable_from_the_input(positions, seed, size=16):
+    """Whether the sampled input's geometry (the spacing of its rows and columns in the frame) varies between
+    patches. The target's direction is drawn with it, so a varying geometry is a clue to the direction a network
+    can read from the content; a geometry that is the same in every patch is none."""
+    first, _ = positions(np.random.default_rng(seed), 64, size, size)
+    geometries = {(tuple(np.diff(first[n] // size, axis=0).ravel()), tuple(np.diff(first[n] % size, axis=1).ravel()))
+                  for n in range(64)}
+    return len(geometries) > 1
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_the_input_is_a_regular_decimation_that_hides_the_target_direction(seed):
+    """Every patch's input rows and columns lie exactly 2 apart, whichever diagonal partner is the target; all
+    four directions occur. The former per-row/per-column choice fails this (control): its uneven spacing told the
+    network where the target was, and on the conveyor sequence the learned shift put the model below the noisy
+    input (docs/benchmarks.md)."""
+    assert not _direction_is_readable_from_the_input(separated_positions, seed)
+    assert _direction_is_readable_from_the_input(_per_line_positions, seed)
+    first, second = separated_positions(np.random.default_rng(seed), 64, 16, 16)
+    assert np.all(np.diff(first // 16, axis=1) == 2) and np.all(np.diff(first % 16, axis=2) == 2)
+    offsets = {(int(d // 16), int(d % 16)) for d in (second - first + 17)[:, 0, 0]}  # (dy + 1, dx + 1) per patch
+    assert offsets == {(0, 0), (0, 2), (2, 0), (2, 2)}  # the four diagonal directions
 
 
 def test_training_windows_are_k_frames_apart_and_reflect_at_the_ends(tmp_path):
@@ -89,6 +125,35 @@ def test_training_windows_are_k_frames_apart_and_reflect_at_the_ends(tmp_path):
     assert [int(v) for v in windows[4]["noisy_b"][0, 0]] == [6, 7, 6]
     with pytest.raises(InputError, match="s.tif: has 3 frame"):
         stack_windows(tmp_path / "s.tif", frames[:3], 3)
+
+
+@pytest.mark.parametrize("count", [6, 9, 13])
+def test_strided_windows_reflect_like_numpy_pad(tmp_path, count):
+    # Reference: numpy.pad(mode="reflect") of the frame numbers, every second entry around the centre.
+    frames = np.arange(count, dtype=np.uint16)[:, None, None, None] * np.ones((1, 2, 2, 1), np.uint16)
+    padded = np.pad(np.arange(count), 4 * count, mode="reflect")
+    for index, sample in enumerate(stack_windows(tmp_path / "s.tif", frames, 5, stride=2)):
+        wanted = [padded[4 * count + index + 2 * k] for k in range(-2, 3)]
+        assert [int(v) for v in sample["noisy"][0, 0]] == wanted
+
+
+def test_half_size_training_windows_see_the_full_size_motion(tmp_path):
+    """A bright dot moving 2 pixels per frame: in the sub-sampled training input the neighbouring frames show it
+    displaced by 2 half-size pixels per frame, the displacement the model meets at run time on full-size
+    consecutive frames. With consecutive frames (stride 1) the sub-sampling would halve it to 1."""
+    count, size, speed = 12, 32, 2
+    frames = np.zeros((count, size, size, 1), np.float32)
+    for index in range(count):
+        frames[index, 12, 4 + speed * index] = 1.0
+    config = {"scheme": "auto", "model": {"name": "unet-stack", "hyper": {"frames": 5}}}
+    stride = frame_stride(config)
+    assert stride == Neighbor2NeighborStack.frame_stride == 2
+    sample = stack_windows(tmp_path / "s.tif", frames, 5, stride)[5]["noisy"]  # centre frame 5: frames 1, 3 .. 9
+    first = (2 * np.arange(size // 2)[:, None]) * size + 2 * np.arange(size // 2)[None, :]  # the input grid, phase 0
+    window = torch.from_numpy(np.ascontiguousarray(sample.transpose(2, 0, 1)[None]))
+    half = pick(window, torch.from_numpy(first[None].astype(np.int64)))[0].numpy()
+    columns = [int(np.argmax(half[k].max(axis=0))) for k in range(5)]
+    assert np.diff(columns).tolist() == [speed] * 4
 
 
 def _trained_output(run, repeated, seed=99, size=48):
@@ -156,3 +221,37 @@ def test_schemes_and_models_must_agree_on_frames(tmp_path):
     with pytest.raises(ConfigError, match="trains multi-frame models"):
         train_command(None, str(data), scheme="noise2noise-stack", steps=1, out=str(tmp_path / "b"),
                       assignments=['model.name="unet-small"'] + single, announce=lambda message: None)
+
+
+def _axis_stacks(root, axes):
+    (root / "noisy-stacks").mkdir(parents=True)
+    rng = np.random.default_rng(9)
+    for index, axis in enumerate(axes):
+        stack = _pure_noise_stack(rng, 6, 32, False)[0]
+        if axis == "plain":
+            tifffile.imwrite(root / "noisy-stacks" / f"s{index}.tif", stack)
+        else:
+            tifffile.imwrite(root / "noisy-stacks" / f"s{index}.tif", stack, imagej=True,
+                             metadata={"axes": f"{axis}YX"})
+    return root
+
+
+@pytest.mark.parametrize(("axes", "setting", "expected"), [
+    (("Z", "Z"), None, "Z"), (("T",), None, "T"), (("Z", "T"), None, "I"), (("plain",), None, "I"),
+    (("Z",), "T", "T"),
+])
+def test_the_exported_model_records_the_training_stacks_axis(tmp_path, capsys, axes, setting, expected):
+    """The stack axis comes from the training stacks' ImageJ axes (tifffile writes them, tifffile reads them back
+    in the trainer), or from ``data.stack_axis``; the export carries it and ``grainwright info`` shows it."""
+    from grainwright.console.cli import main
+    from grainwright.models.export import export_checkpoint
+
+    data = _axis_stacks(tmp_path / "data", axes)
+    assignments = TINY + ([f'data.stack_axis="{setting}"'] if setting else [])
+    summary, run = train_command(None, str(data), steps=1, out=str(tmp_path / "run"), assignments=assignments,
+                                 announce=lambda message: None)
+    assert summary["stack_axis"] == expected
+    export_checkpoint(run.last, tmp_path / "model.onnx", threads=1)
+    assert read_model_metadata(tmp_path / "model.onnx")["stack"]["axis"] == expected
+    assert main(["info", str(tmp_path / "model.onnx")]) == 0
+    assert f"3 frames along {expected}" in capsys.readouterr().out

@@ -167,3 +167,93 @@ def test_compare_on_stacks_scores_every_slice(stack_model, tmp_path):
     assert means["bm3d"]["psnr"] > noisy_psnr
     assert (tmp_path / "report" / "slice-views" / "still.png").is_file()
     assert (tmp_path / "report" / "stack-slices.csv").read_text().count("\n") == 1 + 3 * 7
+
+
+@pytest.fixture(scope="module")
+def single_model(tmp_path_factory):
+    """A randomly initialised single-frame model of the same data (12-bit)."""
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    folder = tmp_path_factory.mktemp("single-model")
+    payload = new_checkpoint("unet-small", 1, Normalization("uint16", 12, 0.0, 4095.0, 1),
+                             hyper={"levels": 2, "width": 4}, seed=4)
+    export_checkpoint(save_checkpoint(folder / "single.pt", payload), folder / "single.onnx", threads=1)
+    return folder / "single.onnx"
+
+
+def test_slice_wise_denoises_each_slice_alone_and_keeps_the_volume_metadata(single_model, stack_model, tmp_path):
+    """Each output slice equals the single-frame model on that slice alone (the frame-by-frame runner path,
+    ``OnnxDenoiser.run``); axes, spacing and dtype are kept; a multi-frame model is refused by name."""
+    from grainwright.console.cli import main
+
+    volume = np.random.default_rng(6).integers(0, 4096, (4, 24, 20)).astype(np.uint16)
+    tifffile.imwrite(_mkdir(tmp_path / "in") / "thick.tif", volume,
+                     imagej=True, resolution=(10.0, 10.0), metadata={"axes": "ZYX", "spacing": 2.5, "unit": "mm"})
+    assert main(["denoise", str(single_model), str(tmp_path / "in"), "-o", str(tmp_path / "out"), "--slice-wise",
+                 "--fixed-pattern", "never", "--tile", "16", "--threads", "1", "-q"]) == 0
+    denoiser = OnnxDenoiser(single_model, threads=1, tile=16)
+    with tifffile.TiffFile(tmp_path / "out" / "thick.tif") as tiff:
+        assert tiff.series[0].axes == "ZYX" and tiff.imagej_metadata["spacing"] == 2.5
+        output = tiff.asarray()
+    for index, slice_ in enumerate(volume):
+        alone = denoiser.run(slice_[..., None], as_float=True)[..., 0]
+        assert np.array_equal(output[index], np.clip(np.rint(alone), 0, 4095).astype(np.uint16))
+    assert json.loads(read_text(tmp_path / "out" / "thick.tif"))["stack"]["window"] == 1
+    with pytest.raises(InputError, match="stack.onnx: reads 5 frames per output frame; slice-wise"):
+        list(denoise_files(OnnxDenoiser(stack_model, threads=1), [tmp_path / "in"], tmp_path / "other",
+                           slice_wise=True))
+
+
+def _frame_folder(folder, stack, numbers=None):
+    _mkdir(folder)
+    for number, frame in zip(numbers or range(len(stack)), stack):
+        tifffile.imwrite(folder / f"frame_{number:03d}.tif", frame)
+    return folder
+
+
+def test_a_folder_of_numbered_frames_is_denoised_as_one_stack(stack_model, tmp_path):
+    """``--frame-folders``: the folder's frames in name order slide through the window exactly as the same stack
+    in one file does, and come out as one stack file named after the folder; a rerun skips it."""
+    from grainwright.console.cli import main
+
+    stack = np.random.default_rng(7).integers(0, 4096, (6, 16, 16)).astype(np.uint16)
+    _frame_folder(tmp_path / "in" / "burst", stack)
+    arguments = ["denoise", str(stack_model), str(tmp_path / "in" / "burst"), "-o", str(tmp_path / "out"),
+                 "--frame-folders", "--fixed-pattern", "never", "--threads", "1", "-q"]
+    assert main(arguments) == 0
+    denoiser = OnnxDenoiser(stack_model, threads=1)
+    expected = denoise_stack_array(denoiser, stack[..., None].astype(np.float32))[..., 0]
+    output = tifffile.imread(tmp_path / "out" / "burst.tif")
+    assert np.array_equal(output, np.clip(np.rint(expected), 0, 4095).astype(np.uint16))
+    assert main(arguments + ["--format", "npy"]) == 0
+    assert np.array_equal(np.load(tmp_path / "out" / "burst.npy"), output)
+    again = list(denoise_files(denoiser, [tmp_path / "in" / "burst"], tmp_path / "out", frame_folders=True,
+                               fixed_pattern="never"))
+    assert again[0].status == "skipped"
+
+
+@pytest.mark.parametrize(("numbers", "shapes", "message"), [
+    ((0, 1, 2, 4, 5, 6), None, "frame_004.tif: gap in the frame numbering: frame_002.tif is followed by"),
+    (None, (16, 16, 16, 16, 12, 16), "frame_004.tif"),
+    ((0, 1, 2, 3), None, "burst: has 4 frame(s), fewer than the 5 the model reads per output frame"),
+])
+def test_a_bad_folder_of_frames_fails_naming_the_file(stack_model, tmp_path, capsys, numbers, shapes, message):
+    from grainwright.console.cli import main
+
+    count = len(numbers) if numbers else 6
+    rng = np.random.default_rng(8)
+    stack = [rng.integers(0, 4096, (edge, 16)).astype(np.uint16) for edge in (shapes or (16,) * count)]
+    _frame_folder(tmp_path / "in" / "burst", stack, numbers)
+    assert main(["denoise", str(stack_model), str(tmp_path / "in" / "burst"), "-o", str(tmp_path / "out"),
+                 "--frame-folders", "--threads", "1", "-q"]) == 1
+    captured = capsys.readouterr()
+    assert message in captured.err and "failed 1" in captured.out
+    assert not (tmp_path / "out" / "burst.tif").exists()
+
+
+def test_a_folder_of_frames_is_not_written_as_png(stack_model, tmp_path):
+    _frame_folder(tmp_path / "in" / "burst", np.zeros((6, 16, 16), np.uint16))
+    with pytest.raises(InputError, match="burst: a folder of frames is written as one stack file"):
+        list(denoise_files(OnnxDenoiser(stack_model, threads=1), [tmp_path / "in" / "burst"], tmp_path / "out",
+                           frame_folders=True, out_format="png"))

@@ -82,6 +82,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                          "generalized Anscombe for Poisson-Gaussian noise, log for gamma speckle (with the "
                          "log-domain bias of noisy targets removed on the way back), none for Gaussian noise and "
                          "for `supervised`.", choices=("auto", "none", "anscombe", "log")),
+        "stack_axis": Key("choice", "auto", "Multi-frame models: the axis the training stacks run along, recorded "
+                          "in the exported model (`Z` slices of a volume, `T` time points of a sequence, `I` "
+                          "unstated); `auto` = the axis the stacks' own metadata (ImageJ, OME) give when they all "
+                          "agree, else `I`.", choices=("auto", "Z", "T", "I")),
     },
     "noise": {
         "file": Key("str", "", "Noise description (TOML, from `grainwright inspect --save-noise`); empty = "

@@ -165,25 +165,30 @@ class PatchSource:
         return {role: np.ascontiguousarray(array.transpose(0, 3, 1, 2)) for role, array in patches.items()}
 
 
-def stack_windows(path: Path, frames: np.ndarray, stack_frames: int) -> list[dict[str, np.ndarray]]:
+def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int = 1) -> list[dict[str, np.ndarray]]:
     """Training samples of a multi-frame model from one stack ``(N, H, W, C)``: pairs of K-frame windows K frames
     apart, ``noisy`` centred on frame ``i`` and ``noisy_b`` on frame ``i + K`` (frames side by side along the
-    channels, frame-major; reflected at the ends of the stack as at run time). Their frames never overlap, so
-    the centre of one is a frame outside the other (Noise2Noise across frames), and every frame is a centre."""
-    from grainwright.inference.runtime.stack_window import window_indices
-
+    channels, frame-major; reflected at the ends of the stack as at run time). With ``stride`` 1 their frames never
+    overlap, so the centre of one is a frame outside the other (Noise2Noise across frames), and every frame is a
+    centre. ``stride`` s takes every s-th frame (``i - s r .. i + s r``): a scheme that halves the frames in x and y
+    (``neighbor2neighbor-stack``) takes s = 2, so that the motion between neighbouring frames of the window, in
+    its half-size pixels, is what the model meets between consecutive frames at full size."""
     count = frames.shape[0]
     if count < stack_frames + 1:
         raise InputError(path, f"has {count} frame(s); a {stack_frames}-frame model trains on stacks of at least "
                          f"{stack_frames + 1} frames")
+    period = 2 * (count - 1)  # mirror reflection about both end frames, repeated as numpy.pad(mode="reflect")
 
     def window(centre: int) -> np.ndarray:
-        return np.concatenate(list(frames[window_indices(centre, count, stack_frames)]), axis=2)
+        positions = np.abs(centre + stride * (np.arange(stack_frames) - stack_frames // 2)) % period
+        positions = np.where(positions > count - 1, period - positions, positions)
+        return np.concatenate(list(frames[positions]), axis=2)
 
     return [{"noisy": window(i), "noisy_b": window(i + stack_frames)} for i in range(count - stack_frames)]
 
 
-def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1) -> list[dict[str, np.ndarray]] | None:
+def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1,
+                 frame_stride: int = 1) -> list[dict[str, np.ndarray]] | None:
     """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields, or None (with
     a warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
     from grainwright.inference.images.imageio import read_frames
@@ -197,7 +202,7 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
         warnings.warn(f"skipped {error}", stacklevel=3)
         return None
     if layout.name == "noisy-stacks" and stack_frames > 1:
-        return stack_windows(sample[0], arrays[0], stack_frames)
+        return stack_windows(sample[0], arrays[0], stack_frames, frame_stride)
     if layout.name == "noisy-stacks":
         frames = arrays[0]
         if frames.shape[0] < 2:
@@ -217,10 +222,11 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
     return [dict(zip(layout.roles, images))]
 
 
-def read_layout(layout: Layout, patch_size: int,
-                stack_frames: int = 1) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
+def read_layout(layout: Layout, patch_size: int, stack_frames: int = 1,
+                frame_stride: int = 1) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
     """Read every sample of ``layout`` in native values; skip files that cannot be read, with a warning.
-    ``stack_frames`` > 1 (a multi-frame model) turns each stack into :func:`stack_windows`.
+    ``stack_frames`` > 1 (a multi-frame model) turns each stack into :func:`stack_windows` of every
+    ``frame_stride``-th frame.
 
     Returns the images (one ``{role: array}`` per image) and the file each came from.
 
@@ -233,7 +239,7 @@ def read_layout(layout: Layout, patch_size: int,
     images: list[dict[str, np.ndarray]] = []
     sources: list[Path] = []
     for sample in layout.samples:
-        read = _read_sample(layout, sample, stack_frames)
+        read = _read_sample(layout, sample, stack_frames, frame_stride)
         if read is None:
             continue
         images.extend(read)

@@ -148,7 +148,7 @@ def _read_training_images(config: dict[str, Any], announce: Callable[[str], None
     noise, noise_path = _noise_description(config, layout.root)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        images, _ = read_layout(layout, data_cfg["patch_size"], stack_frames=frames)
+        images, _ = read_layout(layout, data_cfg["patch_size"], stack_frames=frames, frame_stride=frame_stride(config))
     for warning in caught:
         announce(f"warning: {warning.message}")
     native = [item[role] for item in images for role in layout.roles]
@@ -167,6 +167,33 @@ def stack_frames(config: dict[str, Any]) -> int:
     """K of the configured architecture: the frames a multi-frame model reads per output frame (else 1)."""
     hyper = {**hyper_defaults(config["model"]["name"]), **config["model"]["hyper"]}
     return int(hyper.get("frames", 1))
+
+
+def frame_stride(config: dict[str, Any]) -> int:
+    """Every how many frames the training windows of a multi-frame model take (the scheme's ``frame_stride``;
+    ``auto`` picks ``neighbor2neighbor-stack`` for multi-frame models, see :func:`_choose_scheme_and_noise`)."""
+    if stack_frames(config) == 1:
+        return 1
+    name = "neighbor2neighbor-stack" if config["scheme"] == "auto" else config["scheme"]
+    return scheme_class(name).frame_stride
+
+
+def training_stack_axis(config: dict[str, Any], layout: Layout) -> str:
+    """The stack axis a multi-frame model is trained along: ``data.stack_axis``, or with ``auto`` the axis
+    (Z or T) that every training stack's metadata gives, else ``I`` (unstated, mixed, or folders of frames)."""
+    from grainwright.inference.images.stacks import open_stack
+
+    chosen = config["data"]["stack_axis"]
+    if chosen != "auto":
+        return chosen
+    axes = set()
+    for sample in layout.samples:
+        try:
+            with open_stack(sample[0]) as reader:
+                axes.add(reader.info.axis)
+        except GrainwrightError:
+            axes.add("I")  # unreadable stacks were skipped with a warning when the images were read
+    return axes.pop() if len(axes) == 1 else "I"
 
 
 def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, announce: Callable[[str], None]) -> str:
@@ -433,6 +460,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
                "channels_last": channels_last, "precision": precision, "stack_frames": model.stack_frames,
                "started_from": started_from}
+    if model.stack_frames > 1:
+        summary["stack_axis"] = training_stack_axis(config, layout)
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
                           validation=validation, ground_truth=layout.has_ground_truth,

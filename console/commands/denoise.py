@@ -77,6 +77,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--keep-mixed", action="store_true",
                         help="go on although existing outputs were made with another model or settings")
     parser.add_argument("--into-input-folder", action="store_true", help="allow -o to be an input's own folder")
+    parser.add_argument("--slice-wise", action="store_true",
+                        help="with a single-frame model: denoise each frame (slice) of a stack or volume on its own, "
+                        "frame by frame, keeping the file's axes and voxel size (for anisotropic volumes whose "
+                        "neighbouring slices differ too much to help)")
+    parser.add_argument("--frame-folders", action="store_true",
+                        help="read each folder given as one stack of numbered frames (name order, no gaps) and "
+                        "write it as one stack file OUT/FOLDER.tif (.npy with --format npy)")
     add_engine_arguments(parser)
     parser.add_argument("--receptive-field", type=int, metavar="PIXELS",
                         help="for a model without grainwright metadata: its receptive field (odd, pixels)")
@@ -113,7 +120,8 @@ def run(args: argparse.Namespace) -> int:
     start = time.perf_counter()
     options = {"recursive": args.recursive, "out_format": args.format, "as_float": args.float32,
                "overwrite": args.overwrite, "keep_mixed": args.keep_mixed,
-               "into_input_folder": args.into_input_folder, "fixed_pattern": args.fixed_pattern}
+               "into_input_folder": args.into_input_folder, "fixed_pattern": args.fixed_pattern,
+               "slice_wise": args.slice_wise, "frame_folders": args.frame_folders}
     if not on_cluster:
         counts, megapixels, stopped = _report(
             denoise_files(denoiser, args.inputs, args.out_dir, progress=not args.quiet, **options))

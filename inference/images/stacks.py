@@ -151,6 +151,7 @@ class _TiffStack(StackReader):
             if frame_shape is None:
                 frame_shape, dtype = this_shape, np.dtype(series.dtype)
                 axis = moving[0] if moving else next((a for a in axes if a in STACK_AXES), "I")
+                axis = axis if axis in ("Z", "T") else "I"  # tifffile's Q (unknown) and others: unstated
             elif (this_shape, np.dtype(series.dtype)) != (frame_shape, dtype):
                 raise InputError(path, f"frames have different shapes: page series {number} is "
                                  f"{this_shape[0]}x{this_shape[1]}x{this_shape[2]} {series.dtype}, the first is "

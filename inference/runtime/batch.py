@@ -94,13 +94,24 @@ class Job:
 
 
 def plan_jobs(
-    inputs: list[str | Path], out_dir: Path, *, recursive: bool = False, suffix: str | None = None
+    inputs: list[str | Path], out_dir: Path, *, recursive: bool = False, suffix: str | None = None,
+    frame_folders: bool = False,
 ) -> list[Job]:
-    """Pair each input file with its output path under ``out_dir`` (``suffix`` replaces the input's)."""
+    """Pair each input file with its output path under ``out_dir`` (``suffix`` replaces the input's).
+
+    With ``frame_folders``, each folder given is one stack of numbered frames (name order, see
+    :func:`grainwright.inference.images.stacks.numbered_frames`), written as one stack file
+    ``out_dir/FOLDER.tif`` (or ``FOLDER`` + ``suffix``)."""
     jobs: dict[Path, Job] = {}
     out_resolved = out_dir.resolve()
     for entry in inputs:
         entry = Path(entry)
+        if frame_folders and entry.is_dir():
+            output = out_dir / (entry.resolve().name + (suffix or ".tif"))
+            if output in jobs and jobs[output].source != entry:
+                raise InputError(entry, f"has the same output name as {jobs[output].source} ({output})")
+            jobs.setdefault(output, Job(entry, output))
+            continue
         # An output folder inside an input folder holds earlier outputs, not inputs.
         nested = entry.is_dir() and entry.resolve() in out_resolved.parents
         for source in find_images([entry], recursive=recursive):
@@ -153,19 +164,27 @@ def _noise_note(denoiser: OnnxDenoiser) -> str | None:
     return "per pixel from the training noise model" if denoiser.noise_model is not None else None
 
 
+STACK_SUFFIXES = (".tif", ".tiff", ".npy")  # what a folder of frames can be written as (one stack file)
+
+
 def _checked_jobs(inputs: list[str | Path], out_dir: Path, *, recursive: bool, out_format: str | None,
-                  into_input_folder: bool) -> list[Job]:
-    """The files to denoise and their outputs; refuses an unknown format, no inputs, and (unless
-    ``into_input_folder``) an output folder that holds an input."""
+                  into_input_folder: bool, frame_folders: bool = False) -> list[Job]:
+    """The files to denoise and their outputs; refuses an unknown format, no inputs, a frame folder written as
+    PNG, and (unless ``into_input_folder``) an output folder that holds an input."""
     suffix = None if out_format is None else "." + out_format.lower().lstrip(".")
     if suffix is not None and suffix not in SUPPORTED_SUFFIXES:
         raise GrainwrightError(f"--format must be one of {', '.join(s[1:] for s in SUPPORTED_SUFFIXES)}")
-    jobs = plan_jobs(inputs, out_dir, recursive=recursive, suffix=suffix)
+    jobs = plan_jobs(inputs, out_dir, recursive=recursive, suffix=suffix, frame_folders=frame_folders)
     if not jobs:
         raise GrainwrightError("no input images found (supported: " + ", ".join(SUPPORTED_SUFFIXES) + ")")
+    for job in jobs:
+        if job.source.is_dir() and job.output.suffix.lower() not in STACK_SUFFIXES:
+            raise InputError(job.source, "a folder of frames is written as one stack file: TIFF or .npy, not "
+                             f"{job.output.suffix}")
     if not into_input_folder:
         for job in jobs:
-            if job.output.parent.resolve() == job.source.parent.resolve():
+            holder = job.source if job.source.is_dir() else job.source.parent
+            if job.output.parent.resolve() == holder.resolve():
                 raise GrainwrightError(f"output folder {job.output.parent} holds the input {job.source}; choose "
                                        "another -o folder, or allow it with --into-input-folder")
     return jobs
@@ -194,6 +213,8 @@ def plan_batch(
     keep_mixed: bool = False,
     into_input_folder: bool = False,
     fixed_pattern: str = "auto",
+    slice_wise: bool = False,
+    frame_folders: bool = False,
 ) -> tuple[list[Job], dict[str, Any]]:
     """The checks a batch makes before writing anything, and its plan: the jobs and the expected record.
 
@@ -202,9 +223,13 @@ def plan_batch(
     if fixed_pattern not in FIXED_PATTERN_MODES:
         raise GrainwrightError(f"fixed-pattern mode must be one of {', '.join(FIXED_PATTERN_MODES)}, "
                                f"got {fixed_pattern!r}")
+    if slice_wise and denoiser.spec.stack_frames > 1:
+        raise InputError(denoiser.path, f"reads {denoiser.spec.stack_frames} frames per output frame; slice-wise "
+                         "denoising takes a single-frame model (each slice on its own)")
     jobs = _checked_jobs(inputs, Path(out_dir), recursive=recursive, out_format=out_format,
-                         into_input_folder=into_input_folder)
-    expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern)
+                         into_input_folder=into_input_folder, frame_folders=frame_folders)
+    expected = expected_record(denoiser, out_format=out_format, as_float=as_float, fixed_pattern=fixed_pattern,
+                               slice_wise=slice_wise)
     if not overwrite and not keep_mixed:
         _refuse_mixed_outputs(jobs, expected, Path(out_dir))
     return jobs, expected
@@ -222,6 +247,8 @@ def denoise_files(
     keep_mixed: bool = False,
     into_input_folder: bool = False,
     fixed_pattern: str = "auto",
+    slice_wise: bool = False,
+    frame_folders: bool = False,
     progress: bool = False,
 ) -> Iterator[FileResult]:
     """Denoise files into ``out_dir``, yielding one :class:`FileResult` per input.
@@ -251,6 +278,14 @@ def denoise_files(
         ``estimation.detect_banding`` flags the frame. Self-supervised models cannot remove a fixed pattern
         themselves. Streamed (tiled or striped) TIFFs are never corrected, since the estimate needs whole rows
         and columns; their result carries a note when a correction was asked for.
+    slice_wise : bool
+        Denoise every frame (slice) of a multi-frame file on its own with a single-frame model, through the
+        stack path: one frame at a time in bounded memory, the output keeping the file's axes and voxel size
+        (docs/stacks-and-volumes.md). Refused with a multi-frame model.
+    frame_folders : bool
+        Read each folder given as one stack of numbered frames and write it as one stack file
+        ``out_dir/FOLDER.tif`` (``.npy`` with ``out_format="npy"``); a multi-frame model slides its window
+        along the frames, a single-frame model denoises them one by one.
     progress : bool
         Show tqdm bars over files and tiles.
 
@@ -262,7 +297,8 @@ def denoise_files(
     """
     jobs, expected = plan_batch(denoiser, inputs, out_dir, recursive=recursive, out_format=out_format,
                                 as_float=as_float, overwrite=overwrite, keep_mixed=keep_mixed,
-                                into_input_folder=into_input_folder, fixed_pattern=fixed_pattern)
+                                into_input_folder=into_input_folder, fixed_pattern=fixed_pattern,
+                                slice_wise=slice_wise, frame_folders=frame_folders)
     for folder in sorted({job.output.parent for job in jobs}):
         remove_stale_temporaries(folder)  # what a killed earlier run left; never another host's or live process's
     files_bar = tqdm(total=len(jobs), unit="file", disable=not progress, position=0)
@@ -329,13 +365,13 @@ def new_record(denoiser: OnnxDenoiser, source: Path, expected: dict[str, Any]) -
 
 
 def expected_record(denoiser: OnnxDenoiser, *, out_format: str | None = None, as_float: bool = False,
-                    fixed_pattern: str = "auto") -> dict[str, Any]:
-    """What identifies a run for the skip-what-is-done check: the model's hash and the output settings."""
-    return {
-        "model_sha256": file_sha256(denoiser.path),
-        "settings": {**denoiser.settings(), "format": out_format, "float32": as_float,
-                     "fixed_pattern": fixed_pattern},
-    }
+                    fixed_pattern: str = "auto", slice_wise: bool = False) -> dict[str, Any]:
+    """What identifies a run for the skip-what-is-done check: the model's hash and the output settings
+    (``slice_wise`` only when set, so that earlier outputs keep matching)."""
+    settings = {**denoiser.settings(), "format": out_format, "float32": as_float, "fixed_pattern": fixed_pattern}
+    if slice_wise:
+        settings["slice_wise"] = True
+    return {"model_sha256": file_sha256(denoiser.path), "settings": settings}
 
 
 def denoise_file(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, overwrite: bool = False,
@@ -365,7 +401,9 @@ def denoise_file(denoiser: OnnxDenoiser, job: Job, expected: dict[str, Any], *, 
             return FileResult(source, output, "skipped", "kept (made with another model or settings)")
         _guard(write_fault, output, output.parent.mkdir, parents=True, exist_ok=True)
         record = {**new_record(denoiser, source, expected), **(extra_record or {})}
-        stacked = denoiser.spec.stack_frames > 1  # a multi-frame model slides its window along the file's frames
+        # A multi-frame model slides its window along the file's frames; slice-wise runs and folders of frames
+        # also go frame by frame through the stack path (bounded memory, axes and voxel size kept).
+        stacked = denoiser.spec.stack_frames > 1 or bool(expected["settings"].get("slice_wise")) or source.is_dir()
         streamed = not stacked and output.suffix.lower() in (".tif", ".tiff") \
             and source.suffix.lower() in (".tif", ".tiff") and _guard(input_fault, source, can_stream, source)
         if stacked:
@@ -483,6 +521,18 @@ def _stream_tiff(denoiser: OnnxDenoiser, source: Path, output: Path, record: dic
         return reader.frames * height * width / 1e6, notes
 
 
+def _stack_outputs(denoiser: OnnxDenoiser, read: Callable[[int], np.ndarray], count: int,
+                   tiles_bar: tqdm) -> Iterator[np.ndarray]:
+    """The output frames of a stack: the multi-frame model's sliding window, or a single-frame model on each frame
+    alone (slice-wise); ``(H, W, C)`` float32 native values."""
+    if denoiser.spec.stack_frames > 1:
+        yield from denoise_stack(denoiser, read, count, progress=tiles_bar.update)
+        return
+    for index in range(count):
+        frame = read(index)
+        yield denoiser.run(frame, sigma=denoiser.sigma_for(frame), as_float=True, progress=tiles_bar.update)
+
+
 def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str, Any], *, overwrite: bool,
            as_float: bool, fixed_pattern: str, durable: bool, tiles_bar: tqdm) -> tuple[float, list[str]]:
     """A multi-frame model over a stack or volume, frame by frame in bounded memory
@@ -505,7 +555,7 @@ def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str,
         record["stack"] = {"frames": info.frames, "axis": info.axis, "window": denoiser.spec.stack_frames,
                            "ends": "reflect"}
         tiles_bar.reset(total=len(denoiser.plan(info.height, info.width).tiles) * info.frames)
-        outputs = _guarded(denoise_stack(denoiser, read, info.frames, progress=tiles_bar.update), model_fault, source)
+        outputs = _guarded(_stack_outputs(denoiser, read, info.frames, tiles_bar), model_fault, source)
         out_info = same_flavour(info, dtype=np.float32 if as_float else info.dtype, suffix=output.suffix)
         frames = (values if as_float else to_dtype(values, info.dtype, denoiser.spec) for values in outputs)
         _guard(write_fault, output, write_stack, output, frames, out_info, text=json.dumps(record),

@@ -39,6 +39,9 @@ class ConveyorSequence:
     clean: np.ndarray  # (N, H, W) float32 DN
     moving: np.ndarray  # (H, W) bool: pixels whose clean value changes over the sequence (the lane)
     motion: dict = field(default_factory=dict)
+    # Hairline cracks with their boxes in each frame where both boxes are whole: dicts of "name", "frame",
+    # "moving" (on the lane) and "feature" / "background" boxes [x, y, w, h] (see scenario.Detail).
+    cracks: list = field(default_factory=list)
 
 
 @dataclass
@@ -66,13 +69,14 @@ def conveyor_sequence(frames: int = 24, height: int = 192, width: int = 256, spe
         Seed of the scene and of the noise.
     """
     rng = np.random.default_rng(seed)
-    still, _, _ = render_clean(height, width, int(rng.integers(2**31)))
+    still, still_details, _ = render_clean(height, width, int(rng.integers(2**31)))
     top, bottom = int(round(lane[0] * height)), int(round(lane[1] * height))
     travel = width + speed * (frames - 1)
     # The lane content: scene strips side by side, wide enough for the whole travel.
-    strips = []
+    strips, belt_details = [], []
     while sum(strip.shape[1] for strip in strips) < travel:
-        scene, _, _ = render_clean(height, width, int(rng.integers(2**31)))
+        scene, details, _ = render_clean(height, width, int(rng.integers(2**31)))
+        belt_details += [(detail, sum(strip.shape[1] for strip in strips)) for detail in details]
         strips.append(scene[top:bottom])
     belt = np.concatenate(strips, axis=1)[:, :travel]
     clean = np.repeat(still[None].astype(np.float32), frames, axis=0)
@@ -85,7 +89,37 @@ def conveyor_sequence(frames: int = 24, height: int = 192, width: int = 256, spe
     moving[top:bottom] = np.ptp(clean[:, top:bottom], axis=0) > 0
     motion = {"speed_pixels_per_frame": speed, "direction": "right", "lane_rows": [top, bottom],
               "moving_share": float(moving.mean()), "frames": frames}
-    return ConveyorSequence(noisy, clean, moving, motion)
+    cracks = _sequence_cracks(still_details, belt_details, (top, bottom), width, frames,
+                              [travel - width - speed * index for index in range(frames)])
+    return ConveyorSequence(noisy, clean, moving, motion, cracks)
+
+
+def _sequence_cracks(still_details: list, belt_details: list, lane: tuple[int, int], width: int, frames: int,
+                     starts: list[int]) -> list[dict]:
+    """The cracks of a conveyor sequence, per frame: those of the still scene clear of the lane, and those of the
+    lane's strips wherever the belt has carried both their boxes wholly into the frame (and into the lane)."""
+    top, bottom = lane
+
+    def inside(box: list[int], low: int, high: int) -> bool:
+        x, y, w, h = box
+        return 0 <= x and x + w <= width and low <= y and y + h <= high
+
+    cracks = []
+    for detail in still_details:
+        clear = all(y + h <= top or y >= bottom for _, y, _, h in (detail.feature, detail.background))
+        if detail.kind == "crack" and clear:
+            cracks += [{"name": detail.name, "frame": index, "moving": False, "feature": list(detail.feature),
+                        "background": list(detail.background)} for index in range(frames)]
+    for number, (detail, offset) in enumerate(belt_details):
+        if detail.kind != "crack":
+            continue
+        for index, start in enumerate(starts):
+            # A strip keeps its scene's rows, so only the column moves: belt column minus the frame's start.
+            feature, background = ([x + offset - start, y, w, h] for x, y, w, h in (detail.feature, detail.background))
+            if all(inside(box, top, bottom) for box in (feature, background)):
+                cracks.append({"name": f"lane-{number}-{detail.name}", "frame": index, "moving": True,
+                               "feature": feature, "background": background})
+    return cracks
 
 
 def cast_volume(slices: int = 48, size: int = 128, pores: int = 40, sigma: float = 180.0,

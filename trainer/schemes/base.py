@@ -34,6 +34,9 @@ class Scheme:
     multi_frame : bool
         True when the scheme trains multi-frame models on K-frame windows of stacks (``noisy`` and ``noisy_b``
         are windows K frames apart, frame-major channels); single-frame schemes refuse multi-frame models.
+    frame_stride : int
+        For multi-frame schemes: the training windows take every ``frame_stride``-th frame of a stack (1: K
+        consecutive frames, as at run time).
     clean_targets : bool
         True when the network learns clean targets; False when it learns noisy ones (its output then estimates
         the mean of the noisy data in the working domain, which the log domain's inverse must unbias).
@@ -47,6 +50,7 @@ class Scheme:
     forward_passes_per_pixel: float = 3.0
     clean_targets: bool = False
     multi_frame: bool = False
+    frame_stride: int = 1
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
                  level_maps: bool = True):

@@ -8,19 +8,36 @@ Single Noisy Images", CVPR 2021) sub-samples a noisy image ``y`` twice, one pixe
 the target is the **centre** frame at ``g2``. The target is the centre frame itself, so the scheme does not
 assume a still scene; the neighbours only add context the network may use where the scene holds still.
 
-No identity shortcut, also for noise correlated between frames. Within each 2x2 cell, ``g1`` and ``g2`` take
-diagonal partners, and the row chosen for ``g1`` is the same along a whole row of cells (likewise the column
-along a column of cells). So no pixel of the input, in any frame, lies in the row, the column or at the position
-of a target pixel. Noise shared by the frames of a stack, at a fixed position (fixed-pattern noise repeated in
+No identity shortcut, also for noise correlated between frames. ``g1`` and ``g2`` are diagonal partners, and the
+choice is made once per patch: ``g1`` takes the pixels of rows ``2i + r`` and columns ``2j + c``, ``g2`` those of
+rows ``2i + 1 - r`` and columns ``2j + 1 - c`` (``r``, ``c`` drawn per patch). So no pixel of the input, in any
+frame, lies in the row, the column or at the position of a target pixel. Noise shared by the frames of a stack, at a fixed position (fixed-pattern noise repeated in
 every frame, correlated CT slices) or along a row or column (banding), therefore never reaches the input from the
 target's own row, column or pixel: the network cannot learn to reproduce it, and on pure noise it learns the mean.
 (The published pairing takes adjacent pixels chosen per cell, so targets share a row or a column with input
 pixels; ``tests/test_stack_training.py`` shows that this leaks repeated banding.)
 
+Why one choice per patch, not per row of cells: with ``r`` drawn afresh for each row of cells (and ``c`` for each
+column), the input rows lie 1, 2 or 3 rows apart, and the spacing tells which way the target lies (a gap of 1
+above row ``i`` means ``r_i = 0``: the target is below). The network learns to read that from the content (edges
+and textures kinked by the uneven sampling) and to shift its output towards the target; on the evenly spaced
+full-resolution frames at run time that learned shift comes out as row- and column-structured errors. On the
+generated conveyor sequence this put a K = 5 model below the noisy input (docs/benchmarks.md). A regular
+decimation (rows and columns exactly 2 apart in every patch) carries no such clue: the target's direction is
+independent of the input, so the network learns the symmetric average.
+
 Loss, with ``f(y)`` the network's output on the full window without gradient (the paper's regulariser, weight
 growing linearly to ``neighbor2neighbor.gamma``):
 
     L = |f(g1(y)) - g2(y_c)|^2 + gamma_t * |f(g1(y)) - g2(y_c) - (g1(f(y)) - g2(f(y)))|^2
+
+Windows of every second frame. Sub-sampling halves every distance in x and y, motion included: a part moving
+3 pixels per frame moves 1.5 half-size pixels between the frames of a training window, and a network that learns
+to use its neighbours at that displacement meets twice it at run time, on full-size consecutive frames (on the
+conveyor sequence its output on the moving parts fell below the noisy input, worse the faster they moved). The
+training windows therefore take every second frame (``frame_stride = 2``: frames ``i - 2r .. i + 2r``, reflected
+at the ends of the stack), which doubles the displacement back: between neighbouring frames of a window the
+half-size motion equals the full-size motion between consecutive frames at run time. Still scenes are unchanged.
 
 Each training sample holds two windows of the same stack K frames apart (``noisy`` and ``noisy_b``); one of them
 is drawn per patch, so every frame serves as a centre.
@@ -50,14 +67,15 @@ def centre_frame(window: torch.Tensor, frames: int) -> torch.Tensor:
 def separated_positions(rng: np.random.Generator, count: int, height: int, width: int
                         ) -> tuple[np.ndarray, np.ndarray]:
     """Flat indices ``(count, H/2, W/2)`` of the input (``g1``) and target (``g2``) pixels: diagonal partners in
-    each 2x2 cell, with one row choice per row of cells and one column choice per column of cells, so that the
-    input rows and columns never hold a target pixel."""
-    row = rng.integers(0, 2, (count, height // 2))
-    col = rng.integers(0, 2, (count, width // 2))
-    rows = 2 * np.arange(height // 2)[None, :]
-    cols = 2 * np.arange(width // 2)[None, :]
-    first = (rows + row)[:, :, None] * width + (cols + col)[:, None, :]
-    second = (rows + 1 - row)[:, :, None] * width + (cols + 1 - col)[:, None, :]
+    each 2x2 cell, the same choice for every cell of a patch (rows ``2i + r`` and columns ``2j + c`` in, rows
+    ``2i + 1 - r`` and columns ``2j + 1 - c`` out). The input rows and columns never hold a target pixel, and the
+    input is a regular 2x decimation whatever ``r`` and ``c``, so it gives no clue to the target's direction."""
+    row = rng.integers(0, 2, (count, 1, 1))
+    col = rng.integers(0, 2, (count, 1, 1))
+    rows = 2 * np.arange(height // 2)[None, :, None]
+    cols = 2 * np.arange(width // 2)[None, None, :]
+    first = (rows + row) * width + cols + col
+    second = (rows + 1 - row) * width + cols + 1 - col
     return first.astype(np.int64), second.astype(np.int64)
 
 
@@ -65,6 +83,7 @@ class Neighbor2NeighborStack(Scheme):
     name = "neighbor2neighbor-stack"
     layouts = ("noisy-stacks",)
     multi_frame = True
+    frame_stride = 2  # sub-sampling halves the motion in x and y; every second frame doubles it back
     patch_multiple = 2
     forward_passes_per_pixel = 1.75  # a forward pass on the full window, forward and backward on a quarter of it
 
