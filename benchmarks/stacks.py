@@ -241,7 +241,8 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
     trained: dict[str, Any] = {}
     model = train_and_export(data, folder / f"vol-stack-{seed}", model="unet-stack",
                              hyper={"frames": frames, "levels": 2, "width": width}, scheme="neighbor2neighbor-stack",
-                             minutes=minutes, seed=seed, threads=threads, trained=trained)
+                             minutes=minutes, seed=seed, threads=threads, trained=trained,
+                             extra=("neighbor2neighbor.frame_stride=1",))  # a still volume: nearest slices
     table = {"noisy": psnr(clean, noisy), f"unet-stack K={frames}": psnr(clean, _as_written(
         denoise_stack_array(OnnxDenoiser(model, threads=threads), volume.noisy[..., None])[..., 0]))}
     scaled = noisy / FULL_SCALE

@@ -13,6 +13,7 @@ from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.modelinfo import read_model_metadata
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
 from grainwright.trainer.data import stack_windows
+from grainwright.trainer.config import load_config
 from grainwright.trainer.run import frame_stride, train_command
 from grainwright.trainer.schemes.neighbor2neighbor import ADJACENT_PAIRS
 from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack, pick, separated_positions
@@ -145,9 +146,11 @@ def test_half_size_training_windows_see_the_full_size_motion(tmp_path):
     frames = np.zeros((count, size, size, 1), np.float32)
     for index in range(count):
         frames[index, 12, 4 + speed * index] = 1.0
-    config = {"scheme": "auto", "model": {"name": "unet-stack", "hyper": {"frames": 5}}}
+    config = {"scheme": "auto", "model": {"name": "unet-stack", "hyper": {"frames": 5}},
+              "neighbor2neighbor": {"frame_stride": load_config(None)["neighbor2neighbor"]["frame_stride"]}}
     stride = frame_stride(config)
-    assert stride == Neighbor2NeighborStack.frame_stride == 2
+    assert stride == Neighbor2NeighborStack.frame_stride == 2  # the default
+    assert frame_stride({**config, "neighbor2neighbor": {"frame_stride": 1}}) == 1  # still stacks and volumes
     sample = stack_windows(tmp_path / "s.tif", frames, 5, stride)[5]["noisy"]  # centre frame 5: frames 1, 3 .. 9
     first = (2 * np.arange(size // 2)[:, None]) * size + 2 * np.arange(size // 2)[None, :]  # the input grid, phase 0
     window = torch.from_numpy(np.ascontiguousarray(sample.transpose(2, 0, 1)[None]))

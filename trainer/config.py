@@ -135,6 +135,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
     },
     "neighbor2neighbor": {
         "gamma": Key("float", 2.0, "Weight of the consistency regulariser (Huang et al. 2021 use 2).", 0.0, 100.0),
+        "frame_stride": Key("int", 2, "`neighbor2neighbor-stack`: its training windows take every n-th frame. 2 "
+                            "gives the half-size training windows the motion the model meets between consecutive "
+                            "full-size frames (sequences, anything that moves or shifts from slice to slice); 1 for "
+                            "still stacks and volumes whose structure runs along the stack axis.", 1, 4),
     },
     "recorrupted": {
         "alpha": Key("float", 0.3, "Recorruption strength: input y + alpha*z, target y - z/alpha. The network "

@@ -175,7 +175,7 @@ def frame_stride(config: dict[str, Any]) -> int:
     if stack_frames(config) == 1:
         return 1
     name = "neighbor2neighbor-stack" if config["scheme"] == "auto" else config["scheme"]
-    return scheme_class(name).frame_stride
+    return scheme_class(name).stride_for(config)
 
 
 def training_stack_axis(config: dict[str, Any], layout: Layout) -> str:

@@ -36,7 +36,7 @@ class Scheme:
         are windows K frames apart, frame-major channels); single-frame schemes refuse multi-frame models.
     frame_stride : int
         For multi-frame schemes: the training windows take every ``frame_stride``-th frame of a stack (1: K
-        consecutive frames, as at run time).
+        consecutive frames, as at run time); a scheme may let a config key override it (``stride_for``).
     clean_targets : bool
         True when the network learns clean targets; False when it learns noisy ones (its output then estimates
         the mean of the noisy data in the working domain, which the log domain's inverse must unbias).
@@ -61,6 +61,11 @@ class Scheme:
         self.noise = noise
         self.sigma = None if sigma is None else np.asarray(sigma, dtype=np.float32).reshape(1, -1, 1, 1)
         self.level_maps = level_maps
+
+    @classmethod
+    def stride_for(cls, config: dict[str, Any]) -> int:
+        """The frame stride of the training windows under ``config`` (default: the class's ``frame_stride``)."""
+        return cls.frame_stride
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         """Add the scheme's random draws to a batch of patches (numpy, ``(N, C, H, W)``)."""

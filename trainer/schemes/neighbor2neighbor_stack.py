@@ -37,12 +37,17 @@ to use its neighbours at that displacement meets twice it at run time, on full-s
 conveyor sequence its output on the moving parts fell below the noisy input, worse the faster they moved). The
 training windows therefore take every second frame (``frame_stride = 2``: frames ``i - 2r .. i + 2r``, reflected
 at the ends of the stack), which doubles the displacement back: between neighbouring frames of a window the
-half-size motion equals the full-size motion between consecutive frames at run time. Still scenes are unchanged.
+half-size motion equals the full-size motion between consecutive frames at run time. For a still stack or a volume
+whose structure runs along the stack axis there is no motion to match, and the nearer frames of consecutive
+windows are better context: ``neighbor2neighbor.frame_stride = 1`` (on the generated cast volume, 32 slices of
+64 x 64, 1,500 steps: 32.3 and 32.5 dB against 31.9 and 31.9 with stride 2, two training seeds).
 
 Each training sample holds two windows of the same stack K frames apart (``noisy`` and ``noisy_b``); one of them
 is drawn per patch, so every frame serves as a centre.
 """
 from __future__ import annotations
+
+from typing import Any
 
 import numpy as np
 import torch
@@ -86,6 +91,10 @@ class Neighbor2NeighborStack(Scheme):
     frame_stride = 2  # sub-sampling halves the motion in x and y; every second frame doubles it back
     patch_multiple = 2
     forward_passes_per_pixel = 1.75  # a forward pass on the full window, forward and backward on a quarter of it
+
+    @classmethod
+    def stride_for(cls, config: dict[str, Any]) -> int:
+        return int(config["neighbor2neighbor"]["frame_stride"])
 
     def positions(self, rng: np.random.Generator, count: int, height: int, width: int
                   ) -> tuple[np.ndarray, np.ndarray]:
