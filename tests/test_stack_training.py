@@ -12,8 +12,8 @@ from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.modelinfo import read_model_metadata
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
-from grainwright.trainer.data import stack_windows
 from grainwright.trainer.config import load_config
+from grainwright.trainer.data import stack_windows
 from grainwright.trainer.run import frame_stride, train_command
 from grainwright.trainer.schemes.neighbor2neighbor import ADJACENT_PAIRS
 from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack, pick, separated_positions
