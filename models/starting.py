@@ -239,8 +239,8 @@ def _level_lines(normalization: Any, noise: Any, payload: dict[str, Any]) -> lis
     if kind is not None:
         level = starting_working_level(normalization, noise)
         lines.append(f"noise level in the {kind} domain: {level * 255:.1f}/255 of the working range (trained on 0 "
-                     f"to {trained_level_max(payload) * 255:.0f}/255); denoise with --noise-sigma model to give it "
-                     "per pixel from the noise description")
+                     f"to {trained_level_max(payload) * 255:.0f}/255); denoise and compare give it per pixel from "
+                     "the noise description (--noise-sigma auto, the default, chooses model)")
     warning = level_warning(normalization, noise, payload)
     if warning:
         lines.append(warning)

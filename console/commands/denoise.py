@@ -46,9 +46,10 @@ def add_engine_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--strength", type=float, default=1.0, metavar="S",
                         help="noise-map models: factor on the noise map; other models: output = input + "
                         "S * (model output - input). Default 1.0")
-    parser.add_argument("--noise-sigma", type=_noise_sigma, default="estimate", metavar="LEVEL",
-                        help="noise-map models: noise standard deviation in native units, 'estimate' (per image, "
-                        "default), 'training' (the level in the model's metadata) or 'model' (per pixel, from the "
+    parser.add_argument("--noise-sigma", type=_noise_sigma, default="auto", metavar="LEVEL",
+                        help="noise-map models: 'auto' (default: 'model' for a model working in the Anscombe or log "
+                        "domain with a per-pixel noise model, else 'estimate'), a noise standard deviation in native "
+                        "units, 'estimate' (per image), 'training' (the level in the model's metadata) or 'model' (per pixel, from the "
                         "training noise model, e.g. Poisson-Gaussian)")
     parser.add_argument("--ensemble", type=int, choices=ENSEMBLE_SIZES, default=1,
                         help="average over 1, 2, 4 or 8 flips and 90-degree rotations (costs that many runs)")

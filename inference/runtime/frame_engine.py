@@ -58,7 +58,7 @@ class FrameEngine:
         tile: int | None = None,
         batch: int | None = None,
         strength: float = 1.0,
-        noise_sigma: float | str = "estimate",
+        noise_sigma: float | str = "auto",
         ensemble: int = 1,
         fixed_pattern: str = "auto",
         out_format: str | None = None,

@@ -56,7 +56,7 @@ ENSEMBLE_TRANSFORMS: tuple[tuple[bool, bool, bool], ...] = (
     (True, True, True),
 )
 ENSEMBLE_SIZES = (1, 2, 4, 8)
-NOISE_SIGMA_MODES = ("estimate", "training", "model")
+NOISE_SIGMA_MODES = ("auto", "estimate", "training", "model")
 
 
 def _transform(batch: np.ndarray, member: tuple[bool, bool, bool]) -> np.ndarray:
@@ -193,8 +193,12 @@ class OnnxDenoiser:
     strength : float
         For noise-map models, a factor on the noise map (0.5 denoises as if the noise were half as strong).
         For other models, a blend: ``output = input + strength * (model output - input)``.
-    noise_sigma : float or "estimate" or "training" or "model"
-        Noise-map models only: the noise standard deviation in native units, or "estimate" (per image, MAD
+    noise_sigma : float or "auto" or "estimate" or "training" or "model"
+        Noise-map models only: "auto" (the default: "model" for a model working in a variance-stabilised domain
+        whose metadata carries a noise model with a per-pixel level, such as Poisson-Gaussian noise through the
+        Anscombe transform or gamma speckle through the log, where the transform and not the image sets the
+        level the network sees; "estimate" otherwise), the noise standard deviation in native units, "estimate"
+        (per image, MAD
         estimator of Donoho & Johnstone 1994), or "training" (the level in the model's metadata), or "model"
         (a per-pixel map from the training noise model, e.g. ``sqrt(gain * x + read**2)`` for Poisson-Gaussian
         noise after Foi et al. 2008, evaluated on the noisy input as the estimate of ``x``).
@@ -212,7 +216,7 @@ class OnnxDenoiser:
         tile: int | None = None,
         batch: int | None = None,
         strength: float = 1.0,
-        noise_sigma: float | str = "estimate",
+        noise_sigma: float | str = "auto",
         ensemble: int = 1,
         spec: ModelSpec | None = None,
     ):
@@ -253,6 +257,8 @@ class OnnxDenoiser:
         self.spec = spec
         if spec.takes_noise_map and noise_sigma == "training" and spec.training_sigma is None:
             raise ConfigError(f"{self.path}: metadata has no training noise level; give a number or 'estimate'")
+        if noise_sigma == "auto":
+            noise_sigma = self._automatic_noise_sigma()
         self.noise_model = self._noise_model(noise_sigma) if spec.takes_noise_map else None
         self.output_name = self.session.get_outputs()[0].name
         self.tile = int(tile) if tile else default_tile(spec.margin, spec.alignment)
@@ -274,6 +280,19 @@ class OnnxDenoiser:
             return check_metadata(json.loads(text), self.path)
         except json.JSONDecodeError:
             raise InputError(self.path, "grainwright metadata is not valid JSON") from None
+
+    def _automatic_noise_sigma(self) -> str:
+        """"model" for a transformed-domain model with a per-pixel noise model, else "estimate".
+
+        One level estimated on the whole image misstates signal-dependent noise: dark regions pull it down, and
+        the graph then converts that one native level at every pixel's own slope, under-telling bright regions."""
+        metadata = self.metadata or {}
+        transform = (metadata.get("normalization") or {}).get("transform")
+        description = metadata.get("noise")
+        if not self.spec.takes_noise_map or not transform or not description or self.spec.low is None:
+            return "estimate"
+        model = noise_from_dict(description)
+        return "model" if model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None else "estimate"
 
     def _noise_model(self, noise_sigma: float | str) -> NoiseModel | None:
         if noise_sigma != "model":
