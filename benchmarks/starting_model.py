@@ -1,5 +1,5 @@
 """``grainwright bench starting-model``: the shipped starting model alone, with no training on the scored images,
-against classical filters tuned on ground truth, and its speed against the default ``noisy-only`` model.
+against classical filters tuned on ground truth, and its speed against the former default ``noisy-only`` model.
 
 Quality: ``bench train``'s held-out images (``TEST_IMAGES``: camera, coins, moon; at most 512 pixels, float32,
 noise unclipped) with additive white Gaussian noise of each ``--sigmas`` level (1/255 of the range; the noise
@@ -10,8 +10,9 @@ and, for reference, given exactly. Opponent: per image, the best PSNR of TV, NLM
 BM3D, each with its full parameter grid tuned on that image's ground truth (``bench train``'s opponent).
 
 Speed: seconds per megapixel of ``denoise`` (file to file: read, tile, run, write) on one 2048 x 2048 16-bit
-TIFF, for the starting model and the default ``noisy-only`` model (``configs/noisy-only.toml``'s architecture;
-its weights do not change its speed), alternated ``--repeats`` times in one run; the median is reported.
+TIFF, for the starting model and the former default ``noisy-only`` model (``FORMER_DEFAULT``, ``unet-small`` 2 x 24,
+the architecture ``configs/noisy-only.toml`` had before it took the starting model's own; weights do not change
+its speed), alternated ``--repeats`` times in one run; the median is reported.
 """
 from __future__ import annotations
 
@@ -28,6 +29,8 @@ import numpy as np
 SIGMAS = (10.0, 25.0, 50.0)
 # Targets of the starting-model issue: gap to the opponent allowed at each level (dB).
 ALLOWED_GAP = {10.0: 0.2, 25.0: 0.1, 50.0: 0.2}
+# The speed target's reference: the default noisy-only architecture when the starting-model issue was filed.
+FORMER_DEFAULT = ("unet-small", {"levels": 2, "width": 24})
 SPEED_EDGE = 2048
 
 
@@ -107,7 +110,6 @@ def speed(checkpoint: dict[str, Any], work: Path, threads: int, repeats: int) ->
     from grainwright.models.export import export_checkpoint
     from grainwright.models.registry import hyper_defaults
     from grainwright.models.starting import normalization_for_samples, starting_checkpoint_for
-    from grainwright.trainer.config import load_config
 
     frame_dir = work / "frame"
     frame_dir.mkdir(exist_ok=True)
@@ -120,13 +122,11 @@ def speed(checkpoint: dict[str, Any], work: Path, threads: int, repeats: int) ->
     starting_path = work / "starting-uint16.onnx"
     save_checkpoint(work / "starting-uint16.pt", starting_checkpoint_for(normalization, payload=checkpoint))
     export_checkpoint(work / "starting-uint16.pt", starting_path, overwrite=True, threads=threads)
-    config = load_config("noisy-only")
-    name = config["model"]["name"]
-    hyper = {**hyper_defaults(name), **config["model"]["hyper"]}
+    name, hyper = FORMER_DEFAULT[0], {**hyper_defaults(FORMER_DEFAULT[0]), **FORMER_DEFAULT[1]}
     save_checkpoint(work / "noisy-only.pt", new_checkpoint(name, 1, normalization, hyper=hyper))
     default_path = work / "noisy-only.onnx"
     export_checkpoint(work / "noisy-only.pt", default_path, overwrite=True, threads=threads)
-    models = {"starting model (unet-noisemap)": starting_path, f"default noisy-only ({name})": default_path}
+    models = {"starting model (unet-noisemap)": starting_path, f"former default noisy-only ({name})": default_path}
     times: dict[str, list[float]] = {label: [] for label in models}
     megapixels = SPEED_EDGE * SPEED_EDGE / 1e6
     for attempt in range(repeats + 1):

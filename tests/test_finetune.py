@@ -7,6 +7,7 @@ starting model's architecture on one thread.
 from __future__ import annotations
 
 import json
+import tomllib
 
 import numpy as np
 import pytest
@@ -17,6 +18,7 @@ from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
 from grainwright.models.checkpoint import load_checkpoint
 from grainwright.models.starting import starting_model_manifest
+from grainwright.trainer.config import defaults
 from grainwright.trainer.run import train_command
 
 SMALL = ["data.patch_size=32", "data.batch_size=8", "threads=1", "validation.every_steps=10",
@@ -60,6 +62,11 @@ def test_the_starting_model_is_the_default_start_and_is_recorded_in_the_run_and_
                                        "steps": starting_model_manifest()["steps"]}
     assert json.loads(run.summary.read_text())["started_from"]["sha256"] == sha
     assert 'weights = "starting-model"' in run.config.read_text()
+    # The fine-tuning schedule replaces optim.lr and optim.warmup_fraction, and the resolved config says so.
+    resolved = tomllib.loads(run.config.read_text())
+    assert resolved["optim"]["lr"] == resolved["start"]["lr"] == defaults()["start"]["lr"] < defaults()["optim"]["lr"]
+    assert resolved["optim"]["warmup_fraction"] == resolved["start"]["warmup_fraction"]
+    assert any(line.startswith("fine-tuning schedule: peak learning rate") for line in lines)
     assert any(line.startswith("start: fine-tuning the shipped starting model") for line in lines)
     assert f"started from the starting model (sha256 {sha[:12]})" in lines[-1]
     # start.pt holds the shipped weights as they were before the first step.
@@ -81,6 +88,7 @@ def test_the_opt_out_key_trains_from_random_weights(tmp_path):
     assert summary["started_from"]["weights"] == "random" and summary["selection"] is None
     assert not run.start.exists()
     assert 'weights = "random"' in run.config.read_text()
+    assert tomllib.loads(run.config.read_text())["optim"]["lr"] == defaults()["optim"]["lr"]
     shipped, trained = load_starting_model()["state_dict"], load_checkpoint(run.best)["state_dict"]
     # Four small steps from the shipped weights would leave them close; random weights are far from them.
     distance = sum(float((shipped[key] - trained[key]).abs().mean()) for key in shipped) / len(shipped)
@@ -104,7 +112,7 @@ def test_a_few_fine_tuning_steps_lower_the_held_out_criterion(tmp_path):
     # MC-SURE (Stein 1981; Ramani, Blu and Unser 2008) on the held-out frame, Gaussian noise of sigma 25/255.
     folder = _noisy_folder(tmp_path / "data")
     summary, run = train_command("noisy-only", str(folder), steps=40, out=str(tmp_path / "run"), announce=_quiet,
-                                 assignments=SMALL + ["optim.lr=3e-4"])
+                                 assignments=SMALL)
     selection = summary["selection"]
     assert selection["criterion"] == "MC-SURE" and selection["frames"] == 1
     assert selection["fine_tuned"] < selection["start"] and selection["kept"] == "fine-tuned"
@@ -118,7 +126,7 @@ def test_a_fine_tune_that_ends_worse_keeps_the_starting_state_and_says_so(tmp_pa
     # Adam with a peak learning rate of 0.1 moves every weight by about 0.1 per step: the network is wrecked.
     summary, run = train_command("noisy-only", str(folder), steps=5, out=str(tmp_path / "run"),
                                  announce=lines.append,
-                                 assignments=SMALL + ["optim.lr=0.1", "optim.warmup_fraction=0"])
+                                 assignments=SMALL + ["start.lr=0.1", "start.warmup_fraction=0"])
     selection = summary["selection"]
     assert selection["kept"] == "start" and selection["fine_tuned"] > selection["start"]
     assert "kept the starting state (fine-tuning did not help)" in lines[-1]

@@ -63,6 +63,11 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                        "earlier run folder or checkpoint of yours (continue fitting on new frames; architecture and "
                        "channels must match). The run keeps the better of its start and its end on held-out frames "
                        "and records which (`training-summary.json`: `started_from`, `selection`)."),
+        "lr": Key("float", 1e-4, "Peak learning rate when the run starts from trained weights (the starting model "
+                  "or an earlier run); it replaces `optim.lr`, which applies to random weights. Fine-tuning wants a "
+                  "lower peak: chosen by measurement at fixed step counts (docs/benchmarks.md).", 1e-7, 1.0),
+        "warmup_fraction": Key("float", 0.01, "Share of the budget spent warming up when the run starts from "
+                               "trained weights (replaces `optim.warmup_fraction`).", 0.0, 0.5),
     },
     "data": {
         "folder": Key("str", "", "Data folder (set by `--data`; recorded so that `--resume` finds it)."),

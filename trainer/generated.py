@@ -91,6 +91,8 @@ def load_recipe(path: str | Path, assignments: list[str] = ()) -> dict[str, Any]
     if generated["radius_min"] >= generated["radius_max"]:
         raise ConfigError("generated.radius_min must be below generated.radius_max")
     sigmas(generated)
+    # The starting model is what other runs start from; its own recipe starts from random weights unless it says.
+    raw.setdefault("start", {}).setdefault("weights", "random")
     config = validate(raw)
     if config["scheme"] != "supervised":
         raise ConfigError(f"scheme: the generated recipe trains 'supervised' only, got '{config['scheme']}'")

@@ -42,7 +42,14 @@ from grainwright.trainer.schemes.registry import (
     choose_scheme,
     scheme_class,
 )
-from grainwright.trainer.start import EARLIER_RUN, RANDOM, fit_start_config, heldout_frames, resolve_start
+from grainwright.trainer.start import (
+    EARLIER_RUN,
+    RANDOM,
+    fine_tuning_schedule,
+    fit_start_config,
+    heldout_frames,
+    resolve_start,
+)
 
 # Noisy images analysed for the noise model and the flags (evenly spaced over the list), to bound the start-up time.
 MAX_ANALYSED = 12
@@ -439,6 +446,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         started_from = resolve_start(config, name, model, data.channels, announce)
         resolved = started_from["weights"] if started_from["weights"] != EARLIER_RUN else config["start"]["weights"]
         config = dict(config, start=dict(config["start"], weights=resolved))
+    config = fine_tuning_schedule(config, announce if not resuming else lambda text: None)
     scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map)
     validation = _validation_batches(config, scheme, validation_images, layout.roles)
     heldout = [] if model.stack_frames > 1 else heldout_frames(validation_images, model.alignment, scheme,

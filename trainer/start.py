@@ -35,8 +35,8 @@ STARTING_MODEL = "starting-model"
 RANDOM = "random"
 EARLIER_RUN = "earlier run"
 # Held-out frames for the selection: centre crops of at most this edge (pixels), at most this many frames. Enough
-# pixels (about 5 x 10^5) for one SURE probe to resolve hundredths of a dB, a few seconds of a small model.
-HELDOUT_EDGE = 256
+# pixels (up to 2 x 10^6) for one SURE probe to resolve hundredths of a dB, seconds of a small model.
+HELDOUT_EDGE = 512
 HELDOUT_FRAMES = 8
 # Label of each criterion in the summary line and training-summary.json.
 CRITERIA = {"sure": "MC-SURE", "j-invariant": "J-invariant loss", "ground-truth": "MSE against ground truth"}
@@ -67,6 +67,19 @@ def resolve_start(config: dict[str, Any], scheme: str, model: torch.nn.Module, c
     if weights == STARTING_MODEL:
         return _from_starting_model(scheme, model, channels, announce)
     return _from_earlier_run(Path(weights), model, channels, announce)
+
+
+def fine_tuning_schedule(config: dict[str, Any], announce: Callable[[str], None]) -> dict[str, Any]:
+    """The config with ``start.lr`` and ``start.warmup_fraction`` as the learning-rate schedule's peak and warm-up
+    when the run starts from trained weights (``start.weights`` resolved, not ``random``): fine-tuning wants a
+    lower peak and a short warm-up. The resolved ``optim`` table then records what the run used."""
+    start = config["start"]
+    if start["weights"] == RANDOM:
+        return config
+    optim = dict(config["optim"], lr=start["lr"], warmup_fraction=start["warmup_fraction"])
+    announce(f"fine-tuning schedule: peak learning rate {start['lr']:g}, warm-up {start['warmup_fraction']:.0%} of "
+             "the budget (start.lr, start.warmup_fraction)")
+    return dict(config, optim=optim)
 
 
 def _architecture_text(name: str, hyper: dict[str, Any]) -> str:
