@@ -64,8 +64,9 @@ def test_the_starting_model_is_the_default_start_and_is_recorded_in_the_run_and_
     assert 'weights = "starting-model"' in run.config.read_text()
     # The fine-tuning schedule replaces optim.lr and optim.warmup_fraction, and the resolved config says so.
     resolved = tomllib.loads(run.config.read_text())
-    assert resolved["optim"]["lr"] == resolved["start"]["lr"] == defaults()["start"]["lr"] < defaults()["optim"]["lr"]
-    assert resolved["optim"]["warmup_fraction"] == resolved["start"]["warmup_fraction"]
+    assert resolved["optim"]["lr"] == resolved["start"]["lr"] == defaults()["start"]["lr"]
+    assert resolved["optim"]["warmup_fraction"] == resolved["start"]["warmup_fraction"] \
+        == defaults()["start"]["warmup_fraction"] < defaults()["optim"]["warmup_fraction"]
     assert any(line.startswith("fine-tuning schedule: peak learning rate") for line in lines)
     assert any(line.startswith("start: fine-tuning the shipped starting model") for line in lines)
     assert f"started from the starting model (sha256 {sha[:12]})" in lines[-1]
@@ -88,7 +89,7 @@ def test_the_opt_out_key_trains_from_random_weights(tmp_path):
     assert summary["started_from"]["weights"] == "random" and summary["selection"] is None
     assert not run.start.exists()
     assert 'weights = "random"' in run.config.read_text()
-    assert tomllib.loads(run.config.read_text())["optim"]["lr"] == defaults()["optim"]["lr"]
+    assert tomllib.loads(run.config.read_text())["optim"]["warmup_fraction"] == defaults()["optim"]["warmup_fraction"]
     shipped, trained = load_starting_model()["state_dict"], load_checkpoint(run.best)["state_dict"]
     # Four small steps from the shipped weights would leave them close; random weights are far from them.
     distance = sum(float((shipped[key] - trained[key]).abs().mean()) for key in shipped) / len(shipped)
