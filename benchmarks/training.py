@@ -344,6 +344,16 @@ def train_and_score(case: str, scheme: str, made: dict[str, Any], images: dict[s
           f"{_mean(rows[scheme + ENSEMBLE_LABEL]):.2f} dB after {summary['steps']} steps", flush=True)
 
 
+def case_schemes(case: str, gaussian_schemes: tuple[str, ...], only: str | None = None) -> tuple[str, ...]:
+    """The schemes trained for ``case``: its own list (the Gaussian case: ``--schemes``), kept to those named
+    in ``only`` (``--only-schemes``) when given."""
+    schemes = tuple(CASES[case].get("schemes", gaussian_schemes))
+    if not only:
+        return schemes
+    wanted = {name.strip() for name in only.split(",") if name.strip()}
+    return tuple(scheme for scheme in schemes if scheme in wanted)
+
+
 def run_bench(args: argparse.Namespace) -> int:
     """Run the benchmark; with ``--json``, results are written after every scheme and a rerun with the same
     file skips what is done (so schemes may get different ``--minutes-per-scheme`` in separate runs)."""
@@ -391,7 +401,7 @@ def run_bench(args: argparse.Namespace) -> int:
                     rows[f"{BASELINE_LABELS[method]} (tuned on ground truth)"] = table[method]["psnr"]
                 save()
             print(f"   opponent: {_mean(rows[opponent_label(case)]):.2f} dB", flush=True)
-            for scheme in CASES[case].get("schemes", gaussian_schemes):
+            for scheme in case_schemes(case, gaussian_schemes, getattr(args, "only_schemes", None)):
                 if scheme in rows:
                     continue
                 train_and_score(case, scheme, made, images, record, work, args)

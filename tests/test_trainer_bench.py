@@ -12,6 +12,7 @@ from grainwright.benchmarks.training import (
     OPPONENT,
     TEST_IMAGES,
     TRAIN_IMAGES,
+    case_schemes,
     check_targets,
     render_report,
     run_bench,
@@ -204,3 +205,12 @@ def test_speckle_case_leaves_the_scheme_to_the_config_and_is_judged_against_tv_n
                    "on ground truth"] == (True, "-0.40 dB")
     assert targets[f"speckle, 4 looks, {AS_CONFIGURED}{ENSEMBLE_LABEL}: within 0.5 dB of the per-image best of "
                    "TV/NLM/wavelet tuned on ground truth"] == (False, "-0.60 dB")
+
+
+def test_only_schemes_keeps_each_cases_own_order_and_may_leave_none():
+    gaussian = ("supervised", "recorrupted", "neighbor2neighbor")
+    assert case_schemes("gaussian", gaussian) == gaussian
+    assert case_schemes("poisson-gaussian", gaussian) == ("supervised", "recorrupted")
+    assert case_schemes("poisson-gaussian", gaussian, "neighbor2neighbor, recorrupted") == ("recorrupted",)
+    assert case_schemes("speckle", gaussian, "recorrupted,neighbor2neighbor") == ("neighbor2neighbor",)
+    assert case_schemes("speckle", gaussian, "sure") == ()

@@ -17,6 +17,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         "comparisons on a shared machine; default 0: the time box)")
     parser.add_argument("--schemes", default="supervised,noise2noise,masked,neighbor2neighbor,recorrupted",
                         metavar="LIST", help="comma-separated schemes for the Gaussian case")
+    parser.add_argument("--only-schemes", metavar="LIST",
+                        help="train only these of each case's schemes, in every case (e.g. recorrupted,"
+                        "neighbor2neighbor for the noisy-images-only rows); a case left with none is scored "
+                        "without training")
     parser.add_argument("--cases", default="gaussian,poisson-gaussian,speckle", metavar="LIST",
                         help="comma-separated noise cases (also: speckle-4, gamma speckle of 4 looks trained with the "
                         "config's own scheme and no noise.toml)")
