@@ -350,7 +350,12 @@ def case_schemes(case: str, gaussian_schemes: tuple[str, ...], only: str | None 
     schemes = tuple(CASES[case].get("schemes", gaussian_schemes))
     if not only:
         return schemes
+    from grainwright.trainer.schemes.registry import SCHEMES
+
     wanted = {name.strip() for name in only.split(",") if name.strip()}
+    unknown = sorted(wanted - set(SCHEMES) - {AS_CONFIGURED})
+    if unknown:
+        raise ConfigError(f"--only-schemes: unknown scheme(s) {', '.join(unknown)}; known: {', '.join(SCHEMES)}")
     return tuple(scheme for scheme in schemes if scheme in wanted)
 
 

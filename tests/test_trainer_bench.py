@@ -214,3 +214,5 @@ def test_only_schemes_keeps_each_cases_own_order_and_may_leave_none():
     assert case_schemes("poisson-gaussian", gaussian, "neighbor2neighbor, recorrupted") == ("recorrupted",)
     assert case_schemes("speckle", gaussian, "recorrupted,neighbor2neighbor") == ("neighbor2neighbor",)
     assert case_schemes("speckle", gaussian, "sure") == ()
+    with pytest.raises(ConfigError, match="unknown scheme"):
+        case_schemes("speckle", gaussian, "recorupted")
