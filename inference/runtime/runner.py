@@ -286,22 +286,30 @@ class OnnxDenoiser:
 
         One level estimated on the whole image misstates signal-dependent noise: dark regions pull it down, and
         the graph then converts that one native level at every pixel's own slope, under-telling bright regions."""
-        metadata = self.metadata or {}
-        transform = (metadata.get("normalization") or {}).get("transform")
-        description = metadata.get("noise")
-        if not self.spec.takes_noise_map or not transform or not description or self.spec.low is None:
+        transform = ((self.metadata or {}).get("normalization") or {}).get("transform")
+        if not self.spec.takes_noise_map or not transform or self.spec.high is None:
             return "estimate"
-        model = noise_from_dict(description)
-        return "model" if model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None else "estimate"
+        model = self._described_noise()
+        return "model" if model is not None and self._has_level_map(model) else "estimate"
+
+    def _described_noise(self) -> NoiseModel | None:
+        """The training noise model of the metadata, when it and the native range are there."""
+        description = (self.metadata or {}).get("noise")
+        if not description or self.spec.low is None or self.spec.high is None:
+            return None
+        return noise_from_dict(description)
+
+    @staticmethod
+    def _has_level_map(model: NoiseModel) -> bool:
+        return model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None
 
     def _noise_model(self, noise_sigma: float | str) -> NoiseModel | None:
         if noise_sigma != "model":
             return None
-        description = (self.metadata or {}).get("noise")
-        if not description or self.spec.low is None or self.spec.high is None:
+        model = self._described_noise()
+        if model is None:
             raise ConfigError(f"{self.path}: metadata has no noise model or native range; use 'estimate'")
-        model = noise_from_dict(description)
-        if model.sigma_map(np.zeros((1, 1, 1), np.float32)) is None:
+        if not self._has_level_map(model):
             raise ConfigError(f"{self.path}: the training noise ({model.kind}) has no per-pixel level; use 'estimate'")
         return model
 
