@@ -369,6 +369,10 @@ def run_bench(args: argparse.Namespace) -> int:
 
     cases = [case.strip() for case in args.cases.split(",") if case.strip()]
     gaussian_schemes = tuple(s.strip() for s in args.schemes.split(",") if s.strip())
+    for case in cases:  # a misspelt case or scheme fails here, before minutes of data and opponent tuning
+        if case not in CASES:
+            raise ConfigError(f"--cases: unknown case {case!r}; known: {', '.join(CASES)}")
+        case_schemes(case, gaussian_schemes, getattr(args, "only_schemes", None))
     saved = Path(args.json) if args.json else None
     results: dict[str, Any] = json.loads(saved.read_text()) if saved and saved.is_file() else {"cases": {}}
     resolved = load_config(args.config, common_settings(args))

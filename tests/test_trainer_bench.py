@@ -216,3 +216,14 @@ def test_only_schemes_keeps_each_cases_own_order_and_may_leave_none():
     assert case_schemes("speckle", gaussian, "sure") == ()
     with pytest.raises(ConfigError, match="unknown scheme"):
         case_schemes("speckle", gaussian, "recorupted")
+
+
+def test_a_misspelt_case_or_scheme_is_refused_before_any_work(tmp_path):
+    parser = argparse.ArgumentParser()
+    from grainwright.console.commands.bench_train import add_arguments
+    add_arguments(parser)
+    for argv, message in ((["--cases", "gausian"], "unknown case"), (["--only-schemes", "recorupted"], "unknown scheme")):
+        args = parser.parse_args(argv + ["--work", str(tmp_path / "work")])
+        with pytest.raises(ConfigError, match=message):
+            run_bench(args)
+        assert not (tmp_path / "work").exists()
