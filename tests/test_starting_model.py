@@ -46,6 +46,31 @@ def test_recipe_is_the_trainers_config_plus_a_generated_table(tmp_path):
         load_recipe("starting-model", ['scheme="masked"'])
 
 
+def test_inverse_level_weighting_divides_each_patchs_error_by_its_level():
+    """`level_weighting = "inverse"`: patch i's squared error counts in proportion to 1 / max(level_i, floor),
+    normalised to mean 1, against the plain mean squared error of `none` (computed here by hand)."""
+    from grainwright.trainer.generated import LevelRangeSupervised
+
+    recipe = load_recipe("starting-model")
+    torch.manual_seed(0)
+    model = build_model("unet-noisemap", 1, levels=2, width=4)
+    rng = np.random.default_rng(0)
+    levels = np.array([0.0, 0.05, 0.2], dtype=np.float32)  # the first is below the floor
+    plain = LevelRangeSupervised(recipe, 0.3)
+    batch = plain.prepare({"clean": rng.random((3, 1, 16, 16), dtype=np.float32)}, rng, levels=levels)
+    tensors = {key: torch.from_numpy(value) for key, value in batch.items()}
+    with torch.no_grad():
+        per_patch = ((model(tensors["noisy"], tensors["level"]) - tensors["clean"]) ** 2).mean(dim=(1, 2, 3))
+        weighted = LevelRangeSupervised(recipe, 0.3, "inverse", 0.02).loss(model, tensors, 1.0)
+        unweighted = plain.loss(model, tensors, 1.0)
+    weights = 1.0 / np.maximum(levels, 0.02)
+    expected = float(np.mean(per_patch.numpy() * weights / weights.mean()))
+    assert float(weighted) == pytest.approx(expected, rel=1e-5)
+    assert float(unweighted) == pytest.approx(float(per_patch.mean()), rel=1e-5)
+    with pytest.raises(ConfigError, match="generated.level_weighting"):
+        load_recipe("starting-model", ['generated.level_weighting="square"'])
+
+
 def test_generated_patches_mix_dead_leaves_and_photos_deterministically():
     recipe = load_recipe("starting-model", ["generated.pool=3", "generated.image_size=96", "generated.radius_max=40"])
     photos = photo_source(("brick", "page"))
