@@ -15,7 +15,8 @@ Any H and W: the graph pads the image (and the noise map) at the bottom and righ
 multiples of the model's alignment and crops the output back, exactly as grainwright's runtime pads before
 tiling (for which the declared ``alignment`` stays in the metadata: aligned tiles need no padding inside). One JSON
 document under the ``metadata_props`` key ``grainwright`` describes the model (:func:`build_metadata`). Every export checks ONNX Runtime against torch
-(numpy normalisation + torch network) and writes nothing when they differ by more than ``PARITY_TOLERANCE``.
+(numpy normalisation + torch network) and writes nothing when they differ by more than ``PARITY_TOLERANCE`` in
+the domain the network computes in (:func:`working_domain_difference`).
 """
 from __future__ import annotations
 
@@ -42,6 +43,7 @@ from grainwright.inference.common.errors import (
 )
 from grainwright.inference.images.crops import centre_crop
 from grainwright.inference.images.normalization import Normalization
+from grainwright.inference.images.transforms import anscombe_forward
 from grainwright.inference.runtime.modelinfo import (
     METADATA_FORMAT,
     METADATA_KEY,
@@ -63,7 +65,8 @@ from grainwright.models.onnx_io import (
 from grainwright.models.working_range import WorkingRange
 
 OPSET = 17
-# Largest ONNX Runtime vs torch difference accepted, in fractions of the native range (high - low).
+# Largest ONNX Runtime vs torch difference accepted, in working units of the domain the network computes in
+# (fractions of the native range when there is no transform; see working_domain_difference).
 PARITY_TOLERANCE = 1e-4
 PARITY_SHAPE = (123, 77)  # odd on purpose: the padding to the alignment inside the graph is checked too
 CALIBRATION_CROP = 256
@@ -148,13 +151,45 @@ def reference_output(model: DenoisingNetwork, normalization: Normalization, imag
 
 
 def parity_difference(session: ort.InferenceSession, model: DenoisingNetwork, normalization: Normalization,
-                      image: np.ndarray, noise_sigma: np.ndarray | None) -> float:
-    """Largest |ONNX Runtime - torch| over ``image``, in fractions of the native range."""
+                      image: np.ndarray, noise_sigma: np.ndarray | None) -> dict[str, float]:
+    """Largest |ONNX Runtime - torch| over ``image``: ``working`` in the domain the network computes in (what the
+    check holds to ``PARITY_TOLERANCE``, see :func:`working_domain_difference`) and ``native`` in fractions of the
+    native range (for the record)."""
     expected = reference_output(model, normalization, image, noise_sigma)
     actual = run_session(session, image, noise_sigma)
     if actual.shape != expected.shape:
         raise GrainwrightError(f"exported graph returned shape {actual.shape}, expected {expected.shape}")
-    return float(np.max(np.abs(actual.astype(np.float64) - expected)) / normalization.full_range)
+    native = float(np.max(np.abs(actual.astype(np.float64) - expected)) / normalization.full_range)
+    return {"working": working_domain_difference(normalization, actual, expected), "native": native}
+
+
+def working_domain_difference(normalization: Normalization, actual: np.ndarray, expected: np.ndarray) -> float:
+    """Largest difference of two native outputs in working units of the transform domain, where the network
+    computes: both mapped by the forward transform in float64 (the identity, the generalized Anscombe transform,
+    or ``log(x + epsilon)``), divided by the transform's ``scale``.
+
+    Why not native units: the log domain's inverse, ``exp``, multiplies a difference by the output's own size, so
+    the float32 rounding of the two network runs (about 1e-6 of the working range) becomes a large native
+    difference wherever the output lies far above the range, as the random parity image with its random noise map
+    drives it (125 times the range, 2.4e-4 of it, for a gamma-speckle model whose working-domain difference was
+    5e-7). In the working domain the yardstick is the same for every transform. A graph whose transform or
+    inverse disagrees with numpy's still shows: for the log transform the map is the exact inverse of the graph's
+    ``exp`` (its bias and offset are constants and cancel in the difference), for the Anscombe transform the
+    forward transform has the slope of the exact unbiased inverse's inverse to first order. Without a transform
+    this is the native difference in fractions of the range.
+    """
+    x_actual = (actual.astype(np.float64) - normalization.low) / normalization.full_range
+    x_expected = (expected.astype(np.float64) - normalization.low) / normalization.full_range
+    transform = normalization.transform
+    if not transform:
+        return float(np.max(np.abs(x_actual - x_expected)))
+    if transform["kind"] == "anscombe":
+        def forward(x: np.ndarray) -> np.ndarray:
+            return anscombe_forward(np.maximum(x, 0.0), transform["gain"], transform["read"])
+    else:
+        def forward(x: np.ndarray) -> np.ndarray:  # exp() - epsilon never reaches -epsilon unless it underflows
+            return np.log(np.maximum(x + transform["epsilon"], np.finfo(np.float64).tiny))
+    return float(np.max(np.abs(forward(x_actual) - forward(x_expected))) / transform["scale"])
 
 
 def typical_sigma_native(payload: dict[str, Any], normalization: Normalization) -> float:
@@ -353,25 +388,32 @@ def _parity_checks(session: Any, model: Any, normalization: Normalization, image
                    noise_map_for: Callable[[np.ndarray, bool], np.ndarray | None],
                    rng: np.random.Generator) -> dict[str, Any]:
     """ONNX Runtime against torch on a random image of odd size (the graph pads to the alignment and crops back)
-    and on the centre crop of the first calibration image, as the largest absolute difference in fractions of the
-    native range."""
+    and on the centre crop of the first calibration image, as the largest absolute difference in the working
+    domain (checked) and in fractions of the native range (recorded)."""
     random_image = rng.uniform(normalization.low, normalization.high, (1, model.input_channels, *PARITY_SHAPE))
     random_image = random_image.astype(np.float32)
     parity: dict[str, Any] = {
         "tolerance": PARITY_TOLERANCE,
-        "units": "fractions of the native range (high - low), i.e. the working range before any transform",
-        "random": {"shape": list(random_image.shape),
-                   "max_abs_diff": parity_difference(session, model, normalization, random_image,
-                                                     noise_map_for(random_image, random=True))},
+        "units": "max_abs_diff: working units of the domain the network computes in (after the variance-stabilising "
+                 "transform, if any; without one, fractions of the native range); max_abs_diff_native: fractions "
+                 "of the native range (high - low)",
+        "random": _parity_entry(session, model, normalization, random_image, noise_map_for(random_image, random=True)),
         "calibration": None,
     }
     if images:
         crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
         crop = np.concatenate([crop] * model.stack_frames, axis=1)  # a multi-frame model: a still window
-        parity["calibration"] = {"file": images[0].path.name, "shape": list(crop.shape),
-                                 "max_abs_diff": parity_difference(session, model, normalization, crop,
-                                                                   noise_map_for(crop, random=False))}
+        parity["calibration"] = {"file": images[0].path.name,
+                                 **_parity_entry(session, model, normalization, crop, noise_map_for(crop, random=False))}
     return parity
+
+
+def _parity_entry(session: Any, model: Any, normalization: Normalization, image: np.ndarray,
+                  noise_sigma: np.ndarray | None) -> dict[str, Any]:
+    """One parity record: the input's shape and both differences of :func:`parity_difference`."""
+    difference = parity_difference(session, model, normalization, image, noise_sigma)
+    return {"shape": list(image.shape), "max_abs_diff": difference["working"],
+            "max_abs_diff_native": difference["native"]}
 
 
 def _export_int8(proto: Any, model: Any, normalization: Normalization, images: list[CalibrationImage],
@@ -452,14 +494,14 @@ def export_checkpoint(
     worst = max(entry["max_abs_diff"] for entry in (parity["random"], parity["calibration"]) if entry)
     if not worst <= PARITY_TOLERANCE:
         raise GrainwrightError(
-            f"{checkpoint}: parity check failed, ONNX Runtime and torch differ by {worst:.3g} of the range "
+            f"{checkpoint}: parity check failed, ONNX Runtime and torch differ by {worst:.3g} of the working range "
             f"(limit {PARITY_TOLERANCE:g}); nothing was written"
         )
 
     metadata = build_metadata(payload, model, normalization, parity, checkpoint, record_data_path)
     write_model(attach_metadata(proto, metadata), output, overwrite=overwrite)
     result = ExportResult(output, metadata)
-    result.messages.append(f"wrote {output} (parity {worst:.2g} of the range, limit {PARITY_TOLERANCE:g})")
+    result.messages.append(f"wrote {output} (parity {worst:.2g} of the working range, limit {PARITY_TOLERANCE:g})")
     log(result.messages[-1])
     if int8:
         result.messages.append(_export_int8(proto, model, normalization, images, noise_map_for, metadata, result,

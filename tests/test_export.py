@@ -151,6 +151,58 @@ def test_run_folder_exports_its_best_checkpoint(tmp_path):
     assert result.metadata["architecture"]["hyper"]["depth"] == 3
 
 
+# Gamma speckle of 10 looks on float data up to 2.7 (bench train's speckle case): the trainer's log transform with
+# the speckle bias removed on the way back, and the level the trainer recorded for that data.
+SPECKLE_FLOAT = Normalization("float32", None, 0.0, 2.7, 1).with_log(looks=10.0, noisy_targets=True)
+
+
+def test_working_domain_difference_undoes_the_log_inverse():
+    # Two outputs whose log-domain values differ by exactly delta (exp(a) / exp(b) = exp(delta * scale)), far above
+    # the range: the native difference is large, the working-domain one is delta (log and exp are exact inverses).
+    transform, delta = SPECKLE_FLOAT.transform, 3e-6
+    working = np.array([0.2, 0.9, 1.9], np.float64)  # 1.9: about 125 times the range, as in the failed export
+    log_value = working * transform["scale"] + transform["offset"]
+    native = (np.exp(log_value - transform["bias"]) - transform["epsilon"]) * 2.7
+    shifted = (np.exp(log_value + delta * transform["scale"] - transform["bias"]) - transform["epsilon"]) * 2.7
+    assert export_module.working_domain_difference(SPECKLE_FLOAT, shifted, native) == pytest.approx(delta, rel=1e-6)
+    assert np.max(np.abs(shifted - native)) / 2.7 > 1e-4  # what the native measure refused
+    plain = Normalization("float32", None, 0.0, 2.0, 1)  # no transform: fractions of the native range, as before
+    assert export_module.working_domain_difference(plain, np.array([1.0]), np.array([1.001])) == pytest.approx(5e-4)
+
+
+def test_gamma_speckle_starting_model_passes_parity_above_the_range(tmp_path):
+    # The export that failed (bench train, speckle of 10 looks): the random parity image with its random noise map
+    # (0.25 to 4 times the level, whatever the pixel) drives the network's log-domain output above the range, where
+    # exp() turned float32 rounding into 2.4e-4 of the native range.
+    from grainwright.models.starting import starting_checkpoint_for
+
+    payload = starting_checkpoint_for(SPECKLE_FLOAT)
+    payload["training_noise"] = {"sigma_native": 0.1243}
+    source = save_checkpoint(tmp_path / "start.pt", payload)
+    parity = export_checkpoint(source, tmp_path / "start.onnx", threads=1).metadata["parity"]
+    assert parity["random"]["max_abs_diff"] <= export_module.PARITY_TOLERANCE
+    assert parity["random"]["max_abs_diff_native"] > 0.0  # recorded beside it
+
+
+def test_log_domain_mismatch_is_still_refused(tmp_path, monkeypatch):
+    # A torch side whose log-domain bias is off by 1e-3 of the working range: refused even though the measure
+    # works in the log domain (the bias does not cancel when only one side has it).
+    from grainwright.models.starting import starting_checkpoint_for
+
+    source = save_checkpoint(tmp_path / "start.pt", starting_checkpoint_for(SPECKLE_FLOAT))
+    real, transform = export_module.reference_output, SPECKLE_FLOAT.transform
+
+    def biased(*args, **kwargs):
+        native = real(*args, **kwargs).astype(np.float64)
+        moved = (native / 2.7 + transform["epsilon"]) * np.exp(1e-3 * transform["scale"]) - transform["epsilon"]
+        return (moved * 2.7).astype(np.float32)
+
+    monkeypatch.setattr(export_module, "reference_output", biased)
+    with pytest.raises(GrainwrightError, match="parity check failed"):
+        export_checkpoint(source, tmp_path / "start.onnx", threads=1)
+    assert not (tmp_path / "start.onnx").exists()
+
+
 def test_parity_failure_writes_nothing(tmp_path, monkeypatch):
     source, _ = _checkpoint(tmp_path)
     real = export_module.reference_output

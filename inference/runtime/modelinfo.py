@@ -144,7 +144,8 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
         if entry:
             where = entry.get("file", "random input")
             lines.append(f"parity ({name:<11}) max |ONNX Runtime - torch| = {_figure(entry.get('max_abs_diff'))} of "
-                         f"the range on {where} {_figure(entry.get('shape'))} (limit {_figure(parity.get('tolerance'))})")
+                         f"the working range on {where} {_figure(entry.get('shape'))} "
+                         f"(limit {_figure(parity.get('tolerance'))})")
     int8 = metadata.get("int8")
     if int8:
         lines.append(f"INT8              {_figure(int8.get('psnr_vs_fp32_db'))} dB vs FP32 on "
