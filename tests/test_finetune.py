@@ -157,6 +157,30 @@ def test_a_data_set_whose_channels_do_not_fit_gets_one_line_naming_the_opt_out_k
     assert not (tmp_path / "run").exists()
 
 
+def test_a_bad_start_weights_path_fails_first_in_one_line_naming_the_key(tmp_path, monkeypatch, capsys):
+    import grainwright.trainer.run as run_module
+    from grainwright.console.cli import main
+
+    def no_work(*args, **kwargs):  # neither the data nor the step-time measurement may be reached
+        raise AssertionError("work started before start.weights was checked")
+
+    monkeypatch.setattr(run_module, "_read_training_images", no_work)
+    monkeypatch.setattr(run_module, "fastest_step", no_work)
+    folder = _noisy_folder(tmp_path / "data", count=2, size=64)
+    missing = tmp_path / "no-such-run"
+    with pytest.raises(ConfigError, match="start.weights") as caught:
+        train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "run"), announce=_quiet,
+                      assignments=SMALL + [f'start.weights="{missing.as_posix()}"'])
+    assert str(missing) in str(caught.value) and "\n" not in str(caught.value)
+    empty = tmp_path / "not-a-run"
+    empty.mkdir()
+    assert main(["train", "--data", str(folder), "--steps", "2", "--out", str(tmp_path / "run"),
+                 "--set", f'start.weights="{empty.as_posix()}"']) == 2
+    error = capsys.readouterr().err.strip().splitlines()
+    assert len(error) == 1 and "start.weights" in error[0] and "best checkpoint" in error[0]
+    assert not (tmp_path / "run").exists()
+
+
 @pytest.mark.slow
 def test_an_earlier_run_of_other_channels_gets_one_line_naming_the_opt_out_key(tmp_path):
     gray = _noisy_folder(tmp_path / "gray", count=2, size=64)

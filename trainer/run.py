@@ -45,6 +45,7 @@ from grainwright.trainer.schemes.registry import (
 from grainwright.trainer.start import (
     EARLIER_RUN,
     RANDOM,
+    check_start_weights,
     fine_tuning_schedule,
     fit_start_config,
     heldout_frames,
@@ -430,6 +431,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     problem with the data or the config; nothing is written. ``resuming``: the weights come from the run's
     ``last.pt``, so the start (``start.weights``) is not loaded again.
     """
+    if not resuming:
+        check_start_weights(config)
     data = _read_training_images(config, announce)
     layout = data.layout
     name = _choose_scheme_and_noise(config, data, announce)

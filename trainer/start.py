@@ -69,6 +69,22 @@ def resolve_start(config: dict[str, Any], scheme: str, model: torch.nn.Module, c
     return _from_earlier_run(Path(weights), model, channels, announce)
 
 
+def check_start_weights(config: dict[str, Any]) -> None:
+    """Refuse, before any work (reading the data, measuring the step arithmetic), a ``start.weights`` path that
+    names no checkpoint file and no run folder with a best checkpoint: one ``ConfigError`` naming the key."""
+    weights = config["start"]["weights"]
+    if weights in (STARTING_MODEL, RANDOM):
+        return
+    from grainwright.inference.common.errors import InputError
+    from grainwright.models.checkpoint import resolve_checkpoint
+
+    try:
+        resolve_checkpoint(weights)
+    except InputError as error:
+        raise ConfigError(f"start.weights: {error} (give an earlier run folder or checkpoint of yours, "
+                          f"\"{STARTING_MODEL}\" or \"{RANDOM}\")") from None
+
+
 def fine_tuning_schedule(config: dict[str, Any], announce: Callable[[str], None]) -> dict[str, Any]:
     """The config with ``start.lr`` and ``start.warmup_fraction`` as the learning-rate schedule's peak and warm-up
     when the run starts from trained weights (``start.weights`` resolved, not ``random``): fine-tuning wants a
