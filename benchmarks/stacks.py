@@ -228,7 +228,7 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
 
 
 def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
-                   log: Callable[[str], None]) -> dict[str, Any]:
+                   log: Callable[[str], None], steps: int = 0, settings: tuple[str, ...] = ()) -> dict[str, Any]:
     from skimage.restoration import denoise_nl_means, denoise_tv_chambolle
 
     from grainwright.inference.baselines.bm3d import bm3d
@@ -237,12 +237,12 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
     data = folder / f"volume-{seed}"
     write_stack_pair(data, "casting", volume.noisy, volume.clean, volume_info(volume))
     noisy, clean = volume.noisy.astype(np.float64), volume.clean
-    log(f"volume seed {seed}: training the {frames}-frame model for {minutes} min")
+    log(f"volume seed {seed}: training the {frames}-frame model ({f'{steps} steps' if steps else f'{minutes} min'})")
     trained: dict[str, Any] = {}
     model = train_and_export(data, folder / f"vol-stack-{seed}", model="unet-stack",
                              hyper={"frames": frames, "levels": 2, "width": width}, scheme="neighbor2neighbor-stack",
-                             minutes=minutes, seed=seed, threads=threads, trained=trained,
-                             extra=("neighbor2neighbor.frame_stride=1",))  # a still volume: nearest slices
+                             minutes=minutes, steps=steps, seed=seed, threads=threads, trained=trained,
+                             extra=("neighbor2neighbor.frame_stride=1", *settings))  # a still volume: nearest slices
     table = {"noisy": psnr(clean, noisy), f"unet-stack K={frames}": psnr(clean, _as_written(
         denoise_stack_array(OnnxDenoiser(model, threads=threads), volume.noisy[..., None])[..., 0]))}
     scaled = noisy / FULL_SCALE
@@ -298,7 +298,8 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
             log(f"sequence: {json.dumps(figures['sequence'], indent=1)}")
         if "volume" in args.parts:
             figures["volume"] = [volume_quality(folder, frames=args.frames, minutes=args.minutes, seed=seed,
-                                                threads=args.threads, width=args.width, log=log)
+                                                threads=args.threads, width=args.width, log=log, steps=args.steps,
+                                                settings=tuple(args.set))
                                  for seed in args.seeds]
             log(f"volume: {json.dumps(figures['volume'], indent=1)}")
     if args.json:

@@ -62,6 +62,24 @@ class StackUNetDenoiser(UNetSmallDenoiser):
         prediction = self.predict(image)
         return image[:, self.centre] - prediction if self.skip else prediction
 
+    def load_single_frame(self, state_dict: dict[str, torch.Tensor]) -> None:
+        """Start from the weights of a single-frame ``unet-small`` of the same channels, levels and width: every
+        layer as it is, the first convolution's weights on the centre frame's channels, zero on the neighbours'.
+        The model then computes exactly what the single-frame model computes on the centre frame, and training
+        can only add what the neighbours contribute (the inflation of 2-D weights into a wider input, as in
+        J. Carreira, A. Zisserman, "Quo Vadis, Action Recognition?", CVPR 2017, but with the weight on the centre
+        frame alone instead of spread over the frames). Raises ``ValueError`` when the shapes do not fit."""
+        first = "encoders.0.0.weight"
+        inflated = dict(state_dict)
+        single = state_dict[first]
+        wanted = self.encoders[0][0].weight.shape
+        if single.shape != (wanted[0], self.channels, *wanted[2:]):
+            raise ValueError(f"first convolution {tuple(single.shape)} does not fit {tuple(wanted)} by frames")
+        weight = torch.zeros(wanted, dtype=single.dtype)
+        weight[:, self.centre] = single
+        inflated[first] = weight
+        self.load_state_dict(inflated)
+
     def macs_per_pixel(self) -> float:
         return super().macs_per_pixel() + 9 * (self.input_channels - self.channels) * self.hyper["width"]
 

@@ -14,9 +14,13 @@ from grainwright.inference.runtime.modelinfo import read_model_metadata
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
 from grainwright.trainer.config import load_config
 from grainwright.trainer.data import stack_windows
-from grainwright.trainer.run import frame_stride, train_command
-from grainwright.trainer.schemes.neighbor2neighbor import ADJACENT_PAIRS
-from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack, pick, separated_positions
+from grainwright.trainer.run import frame_stride, stack_pairing, train_command
+from grainwright.trainer.schemes.neighbor2neighbor_stack import (
+    Neighbor2NeighborStack,
+    adjacent_positions,
+    pick,
+    separated_positions,
+)
 
 MEAN, TEMPORAL = 2000.0, 200.0  # 12-bit units
 TINY = ['model.name="unet-stack"', "model.hyper.frames=3", "model.hyper.levels=2", "model.hyper.width=4",
@@ -25,36 +29,40 @@ TINY = ['model.name="unet-stack"', "model.hyper.frames=3", "model.hyper.levels=2
         "model.channels_last=false", 'model.precision="float32"', 'data.fixed_pattern="never"']
 
 
-def _fixed_pattern(rng, size):
-    """Noise repeated in every frame: row and column offsets (banding) and a per-pixel pattern."""
-    return rng.normal(0, 150, (size, 1)) + rng.normal(0, 150, (1, size)) + rng.normal(0, 100, (size, size))
+def _fixed_pattern(rng, size, kind="banding-and-pixel"):
+    """Noise repeated in every frame: row and column offsets (banding) and a per-pixel pattern, or the per-pixel
+    pattern alone."""
+    pixel = rng.normal(0, 100, (size, size))
+    return pixel if kind == "pixel" else rng.normal(0, 150, (size, 1)) + rng.normal(0, 150, (1, size)) + pixel
 
 
-def _pure_noise_stack(rng, frames, size, repeated):
-    fixed = _fixed_pattern(rng, size) if repeated else 0.0
-    stack = MEAN + fixed + rng.normal(0, TEMPORAL, (frames, size, size))
+def _temporal_noise(rng, frames, size, correlation=0.0):
+    """Noise of standard deviation TEMPORAL per frame, correlated ``correlation`` between neighbouring frames (a
+    first-order autoregression along the stack, as reconstruction filters spread noise across CT slices)."""
+    noise = rng.normal(0, TEMPORAL, (frames, size, size))
+    for index in range(1, frames):
+        noise[index] = correlation * noise[index - 1] + np.sqrt(1 - correlation**2) * noise[index]
+    return noise
+
+
+def _pure_noise_stack(rng, frames, size, repeated, kind="banding-and-pixel", correlation=0.0):
+    fixed = _fixed_pattern(rng, size, kind) if repeated else 0.0
+    stack = MEAN + fixed + _temporal_noise(rng, frames, size, correlation)
     return np.clip(np.rint(stack), 0, 4095).astype(np.uint16), fixed
 
 
-def _write_stacks(root, repeated, count=2, frames=12, size=48, seed=0):
+def _write_stacks(root, repeated, count=2, frames=12, size=48, seed=0, kind="banding-and-pixel", correlation=0.0):
     rng = np.random.default_rng(seed)
     (root / "noisy-stacks").mkdir(parents=True)
     for index in range(count):
-        tifffile.imwrite(root / "noisy-stacks" / f"stack{index}.tif", _pure_noise_stack(rng, frames, size, repeated)[0])
+        stack = _pure_noise_stack(rng, frames, size, repeated, kind, correlation)[0]
+        tifffile.imwrite(root / "noisy-stacks" / f"stack{index}.tif", stack)
     return root
 
 
-def _adjacent_positions(rng, count, height, width):
-    """The published Neighbor2Neighbor pairing (adjacent pixels drawn per 2x2 cell), as flat indices."""
-    pair = ADJACENT_PAIRS[rng.integers(0, len(ADJACENT_PAIRS), (count, height // 2, width // 2))]
-    cell_rows = 2 * np.arange(height // 2)[None, :, None]
-    cell_cols = 2 * np.arange(width // 2)[None, None, :]
-    return tuple((cell_rows + pair[..., k] // 2) * width + cell_cols + pair[..., k] % 2 for k in (0, 1))
-
-
-def _target_lines_reach_the_input(positions, seed):
-    """Whether changing every pixel in the rows and columns of the target pixels, in every frame, changes the
-    sub-sampled input of some patch."""
+def _targets_reach_the_input(positions, seed, lines=True):
+    """Whether changing every pixel in the rows and columns of the target pixels (``lines``), or the target
+    pixels' positions alone, in every frame, changes the sub-sampled input of some patch."""
     rng = np.random.default_rng(seed)
     scheme = Neighbor2NeighborStack({"neighbor2neighbor": {"gamma": 2.0}})
     scheme.positions = positions  # the control swaps the pairing in
@@ -64,9 +72,12 @@ def _target_lines_reach_the_input(positions, seed):
     reached = False
     for n in range(8):
         changed = window.copy()
-        rows, cols = np.unique(second[n] // 16), np.unique(second[n] % 16)
-        changed[n][:, rows, :] += 1.0
-        changed[n][:, :, cols] += 1.0
+        if lines:
+            rows, cols = np.unique(second[n] // 16), np.unique(second[n] % 16)
+            changed[n][:, rows, :] += 1.0
+            changed[n][:, :, cols] += 1.0
+        else:
+            changed[n].reshape(5, -1)[:, second[n].ravel()] += 1.0
         before = pick(torch.from_numpy(window[n:n + 1]), first[n:n + 1])
         after = pick(torch.from_numpy(changed[n:n + 1]), first[n:n + 1])
         reached |= not torch.equal(before, after)
@@ -78,9 +89,33 @@ def test_no_input_pixel_shares_a_row_or_column_with_a_target_pixel(seed):
     """The input sub-image of every frame is blind to the target pixels' rows and columns, so banding or a fixed
     pattern repeated in every frame cannot be copied from a neighbour. The published adjacent pairing is not
     (the control shows the check can fail)."""
-    assert not _target_lines_reach_the_input(separated_positions, seed)
-    assert not _target_lines_reach_the_input(_per_line_positions, seed)
-    assert _target_lines_reach_the_input(_adjacent_positions, seed)
+    assert not _targets_reach_the_input(separated_positions, seed)
+    assert not _targets_reach_the_input(_per_line_positions, seed)
+    assert _targets_reach_the_input(adjacent_positions, seed)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_no_input_pixel_lies_at_a_target_position_in_any_frame(seed):
+    """Both pairings keep every target position out of the input in every frame of the window, so noise repeated
+    at a pixel in every frame (a fixed pixel pattern) or correlated between frames at the same pixel (CT slices)
+    never reaches the network from a neighbour. Control: a sampler whose input is the target positions fails."""
+    for positions in (adjacent_positions, separated_positions):
+        assert not _targets_reach_the_input(positions, seed, lines=False)
+        assert _targets_reach_the_input(lambda rng, n, h, w, chosen=positions: (chosen(rng, n, h, w)[1],) * 2, seed,
+                                        lines=False)
+
+
+@pytest.mark.parametrize(("chosen", "flags", "corrected", "expected"), [
+    ("auto", [], False, "adjacent"),
+    ("auto", ["correlation"], True, "adjacent"),
+    ("auto", ["banding"], True, "adjacent"),
+    ("auto", ["banding"], False, "row-column-blind"),
+    ("row-column-blind", [], False, "row-column-blind"),
+    ("adjacent", ["banding"], False, "adjacent"),
+])
+def test_the_pairing_is_row_column_blind_when_banding_reaches_the_training_frames(chosen, flags, corrected,
+                                                                                  expected):
+    assert stack_pairing(chosen, flags, corrected)[0] == expected
 
 
 def _per_line_positions(rng, count, height, width):
@@ -159,36 +194,51 @@ def test_half_size_training_windows_see_the_full_size_motion(tmp_path):
     assert np.diff(columns).tolist() == [speed] * 4
 
 
-def _trained_output(run, repeated, seed=99, size=48):
+def _trained_output(run, repeated, seed=99, size=48, kind="banding-and-pixel", correlation=0.0):
     payload = load_checkpoint(run.last)
     model = model_from_checkpoint(payload)
     normalization = Normalization.from_dict(payload["normalization"])
-    stack, fixed = _pure_noise_stack(np.random.default_rng(seed), 3, size, repeated)
+    stack, fixed = _pure_noise_stack(np.random.default_rng(seed), 3, size, repeated, kind, correlation)
     working = torch.from_numpy(normalization.to_working(stack[None].astype(np.float32)))
     with torch.no_grad():
         output = normalization.from_working_float(model(working).numpy())[0, 0]
     return output, stack[1].astype(np.float64), fixed
 
 
+# (noise, pairing asked for, the pairing the run must use, steps). The row/column-blind pairing for banding repeated
+# in every frame; the published adjacent pairing (chosen by `auto` when no banding is flagged) for independent
+# noise, a pixel pattern repeated in every frame and noise correlated 0.5 between neighbouring frames.
+PURE_NOISE_CASES = {
+    "independent": ({"repeated": False}, "auto", "adjacent", 2000),
+    "banding-and-pixel-pattern-in-every-frame": ({"repeated": True}, "row-column-blind", "row-column-blind", 3000),
+    "pixel-pattern-in-every-frame": ({"repeated": True, "kind": "pixel"}, "adjacent", "adjacent", 2000),
+    "correlated-between-frames": ({"repeated": False, "correlation": 0.5}, "adjacent", "adjacent", 2000),
+}
+
+
 @pytest.mark.slow
-@pytest.mark.parametrize(("repeated", "steps"), [(False, 2000), (True, 3000)],
-                         ids=["independent", "fixed-pattern-in-every-frame"])
-def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, repeated, steps):
+@pytest.mark.parametrize("case", list(PURE_NOISE_CASES))
+def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, case):
     """Pure noise has nothing to learn but its mean. The model starts as the identity (its skip hands the centre
-    frame through), so reaching the mean shows the scheme pushes it away from copying its input, also when row,
-    column and pixel patterns repeat in every frame (which plain averaging along the stack would keep). Measured
-    once at 4,000 steps with the pattern repeated: output/input standard deviation 0.13 and correlation with the
-    pattern -0.17 with this scheme's pairing, against 0.53 and +0.90 with the published adjacent pairing."""
-    data = _write_stacks(tmp_path / "data", repeated)
-    _, run = train_command(None, str(data), steps=steps, out=str(tmp_path / "run"),
-                           assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0"], announce=lambda message: None)
-    output, centre, fixed = _trained_output(run, repeated)
+    frame through), so reaching the mean shows the scheme pushes it away from copying its input, also when noise
+    repeats in every frame or is correlated between frames (which plain averaging along the stack would keep).
+    Measured once at 4,000 steps with row, column and pixel patterns repeated: output/input standard deviation
+    0.13 and correlation with the pattern -0.17 with the row/column-blind pairing, against 0.53 and +0.90 with the
+    published adjacent pairing (which is why `auto` takes the blind one when banding is flagged and left)."""
+    noise, chosen, used, steps = PURE_NOISE_CASES[case]
+    data = _write_stacks(tmp_path / "data", **noise)
+    summary, run = train_command(None, str(data), steps=steps, out=str(tmp_path / "run"),
+                                 assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0",
+                                                     f'neighbor2neighbor.stack_pairing="{chosen}"'],
+                                 announce=lambda message: None)
+    assert summary["stack_pairing"] == used
+    output, centre, fixed = _trained_output(run, **noise)
     figures = (f"output mean {output.mean():.0f}, std {output.std():.0f}; input mean {centre.mean():.0f}, "
                f"std {centre.std():.0f}")
     assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
     assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.5, figures
-    if repeated:  # the pattern repeated in every frame is not reproduced either
+    if noise["repeated"]:  # the pattern repeated in every frame is not reproduced either
         assert abs(np.corrcoef(output.ravel(), np.broadcast_to(fixed, output.shape).ravel())[0, 1]) < 0.5, figures
 
 
@@ -258,3 +308,41 @@ def test_the_exported_model_records_the_training_stacks_axis(tmp_path, capsys, a
     assert read_model_metadata(tmp_path / "model.onnx")["stack"]["axis"] == expected
     assert main(["info", str(tmp_path / "model.onnx")]) == 0
     assert f"3 frames along {expected}" in capsys.readouterr().out
+
+
+def test_a_multi_frame_model_inflated_from_a_single_frame_one_computes_the_same():
+    """All layers copied, the first layer's weights on the centre frame and zero on the neighbours: the K-frame
+    model's output equals the single-frame model's on the centre frame, whatever the neighbours hold."""
+    from grainwright.models.registry import build_model
+
+    torch.manual_seed(3)
+    single = build_model("unet-small", 1, levels=2, width=8)
+    stack = build_model("unet-stack", 1, frames=5, levels=2, width=8)
+    stack.load_single_frame(single.state_dict())
+    window = torch.rand(2, 5, 32, 32)
+    with torch.no_grad():
+        assert torch.equal(stack(window), single(window[:, 2:3]))
+        window[:, [0, 1, 3, 4]] = torch.rand(2, 4, 32, 32)
+        assert torch.equal(stack(window), single(window[:, 2:3]))
+    with pytest.raises(ValueError, match="first convolution"):
+        build_model("unet-stack", 1, frames=5, levels=2, width=8).load_single_frame(
+            build_model("unet-small", 2, levels=2, width=8).state_dict())
+
+
+@pytest.mark.slow
+def test_a_multi_frame_run_starts_from_an_earlier_single_frame_run(tmp_path):
+    data = _write_stacks(tmp_path / "data", False, count=2, frames=8, size=32)
+    single = [a for a in TINY if not a.startswith(("model.name", "model.hyper.frames"))]
+    train_command(None, str(data), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "single"),
+                  assignments=['model.name="unet-small"'] + single, announce=lambda message: None)
+    said = []
+    summary, run = train_command(None, str(data), steps=2, out=str(tmp_path / "stack"),
+                                 assignments=TINY + [f'start.weights="{tmp_path / "single"}"'], announce=said.append)
+    assert summary["started_from"]["inflated_from"] == "unet-small"
+    assert any("on the centre frame" in line for line in said)
+    start = load_checkpoint(run.start)["state_dict"]["encoders.0.0.weight"]
+    assert torch.count_nonzero(start[:, [0, 2]]) == 0 and torch.count_nonzero(start[:, 1]) > 0
+    wider = [a for a in TINY if not a.startswith("model.hyper.width")] + ["model.hyper.width=8"]
+    with pytest.raises(ConfigError, match="start.weights"):
+        train_command(None, str(data), steps=1, out=str(tmp_path / "wider"),
+                      assignments=wider + [f'start.weights="{tmp_path / "single"}"'], announce=lambda message: None)

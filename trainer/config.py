@@ -145,6 +145,12 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                             "gives the half-size training windows the motion the model meets between consecutive "
                             "full-size frames (sequences, anything that moves or shifts from slice to slice); 1 for "
                             "still stacks and volumes whose structure runs along the stack axis.", 1, 4),
+        "stack_pairing": Key("choice", "auto", "`neighbor2neighbor-stack`: the input and target pixels of each "
+                             "2x2 cell. `adjacent` = the published pairing (no input pixel at a target position in "
+                             "any frame); `row-column-blind` = diagonal partners, no input pixel in a target's row or "
+                             "column either (for banding repeated in every frame; smooths fine line structure); "
+                             "`auto` = row-column-blind when the noise analysis flags banding and the row/column "
+                             "correction is off (`data.fixed_pattern`), else adjacent.", choices=("auto", "adjacent", "row-column-blind")),
     },
     "recorrupted": {
         "alpha": Key("float", 0.3, "Recorruption strength: input y + alpha*z, target y - z/alpha. The network "

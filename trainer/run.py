@@ -332,6 +332,32 @@ def _to_working(config: dict[str, Any], data: _TrainingImages,
     return working, True
 
 
+def stack_pairing(chosen: str, flags: list[str], corrected: bool) -> tuple[str, str]:
+    """The pixel pairing of ``neighbor2neighbor-stack`` and why: ``chosen`` unless it is ``auto``; then the
+    row/column-blind pairing when the noise analysis flagged banding and the row/column correction did not run
+    (structure along rows or columns, possibly repeated in every frame, would reach the input through the
+    target's own row or column), else the published adjacent pairing (pixel-wise noise repeated in every frame
+    and noise correlated between frames stay out of its input too)."""
+    if chosen != "auto":
+        return chosen, f"neighbor2neighbor.stack_pairing = \"{chosen}\""
+    if "banding" in flags and not corrected:
+        return "row-column-blind", ("banding flagged and not corrected (data.fixed_pattern): no input pixel shares "
+                                    "a row or a column with its target")
+    why = "banding flagged and corrected before training" if "banding" in flags else "no banding flagged"
+    return "adjacent", f"{why}: the published adjacent pairing"
+
+
+def _resolve_stack_pairing(config: dict[str, Any], scheme: str, findings: NoiseFindings | None, corrected: bool,
+                           announce: Callable[[str], None]) -> dict[str, Any]:
+    """The config with ``neighbor2neighbor.stack_pairing`` resolved (``neighbor2neighbor-stack`` only)."""
+    if scheme != "neighbor2neighbor-stack":
+        return config
+    table = config["neighbor2neighbor"]
+    pairing, reason = stack_pairing(table["stack_pairing"], [] if findings is None else findings.flags, corrected)
+    announce(f"pixel pairing: {pairing} ({reason})")
+    return dict(config, neighbor2neighbor=dict(table, stack_pairing=pairing))
+
+
 def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
            ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]]]:
     """Stage 5: training and validation images, split by image; a single image is split into two regions."""
@@ -439,6 +465,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     config = dict(config, scheme=name)
     transform, transform_decided_by, sigma = _working_range(config, name, data, announce)
     working, fixed_pattern = _to_working(config, data, announce)
+    config = _resolve_stack_pairing(config, name, data.findings, fixed_pattern, announce)
     train_images, validation_images = _split(config, working, announce)
     config = fit_start_config(config, data.channels)
     model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)
@@ -473,6 +500,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
                "started_from": started_from}
     if model.stack_frames > 1:
         summary["stack_axis"] = training_stack_axis(config, layout)
+    if name == "neighbor2neighbor-stack":
+        summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
                           validation=validation, ground_truth=layout.has_ground_truth,

@@ -138,6 +138,13 @@ def _from_earlier_run(path: Path, model: torch.nn.Module, channels: int,
     file = resolve_checkpoint(path)
     payload = load_checkpoint(file)
     theirs = int((payload.get("normalization") or {}).get("channels", payload["channels"]))
+    if _single_frame_fits(payload, model) and theirs == channels:
+        model.load_single_frame(payload["state_dict"])
+        steps = (payload.get("training_summary") or {}).get("steps")
+        announce(f"start: the single-frame model of the earlier run {file} ({payload.get('scheme')}, {steps} steps) "
+                 f"on the centre frame, the {model.stack_frames - 1} neighbours' first-layer weights zero")
+        return {"weights": EARLIER_RUN, "path": str(file), "sha256": hashlib.sha256(file.read_bytes()).hexdigest(),
+                "steps": steps, "scheme": payload.get("scheme"), "inflated_from": payload["architecture"]}
     if payload["architecture"] != model.name or dict(payload["hyper"]) != dict(model.hyper) or theirs != channels:
         raise ConfigError(f"start.weights: {file} holds {_architecture_text(payload['architecture'], payload['hyper'])}"
                           f" for {theirs}-channel data; this run builds {_architecture_text(model.name, model.hyper)}"
@@ -148,6 +155,15 @@ def _from_earlier_run(path: Path, model: torch.nn.Module, channels: int,
     announce(f"start: continuing from the earlier run {file} ({payload.get('scheme')}, {steps} steps)")
     return {"weights": EARLIER_RUN, "path": str(file), "sha256": hashlib.sha256(file.read_bytes()).hexdigest(),
             "steps": steps, "scheme": payload.get("scheme")}
+
+
+def _single_frame_fits(payload: dict[str, Any], model: torch.nn.Module) -> bool:
+    """Whether ``payload`` holds the single-frame ``unet-small`` a multi-frame ``unet-stack`` can start from: the
+    same levels, width and skip (its K frames are the only difference)."""
+    if getattr(model, "stack_frames", 1) == 1 or payload["architecture"] != "unet-small":
+        return False
+    frame_wise = {key: value for key, value in model.hyper.items() if key != "frames"}
+    return dict(payload["hyper"]) == frame_wise
 
 
 # -- held-out selection -----------------------------------------------------------------------------------------

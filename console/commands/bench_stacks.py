@@ -17,12 +17,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--width", type=int, default=24, help="U-Net width of both models (default 24)")
     parser.add_argument("--minutes", type=float, default=10.0, help="training budget per model (default 10)")
     parser.add_argument("--steps", type=int, default=0,
-                        help="sequence: training budget per model in optimiser steps instead of --minutes (fixed-step "
+                        help="training budget per model in optimiser steps instead of --minutes (fixed-step "
                         "comparisons on a shared machine; default 0 = use --minutes)")
     parser.add_argument("--sequence-size", type=int, nargs=2, default=[192, 256], metavar=("H", "W"),
                         help="frame size of the generated sequence (pixels, default 192 256)")
     parser.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
-                        help="sequence: a training config assignment for both models (repeatable), e.g. optim.lr=3e-3")
+                        help="a training config assignment for every trained model (repeatable), e.g. optim.lr=3e-3")
     parser.add_argument("--seeds", type=int, nargs="+", default=[0, 1, 2], help="one run per seed (default 0 1 2)")
     parser.add_argument("--threads", type=int, default=2, help="torch and ONNX Runtime threads (default 2)")
     parser.add_argument("--size", type=int, default=512, help="frame edge of the speed runs (pixels, default 512)")

@@ -8,16 +8,30 @@ Single Noisy Images", CVPR 2021) sub-samples a noisy image ``y`` twice, one pixe
 the target is the **centre** frame at ``g2``. The target is the centre frame itself, so the scheme does not
 assume a still scene; the neighbours only add context the network may use where the scene holds still.
 
-No identity shortcut, also for noise correlated between frames. ``g1`` and ``g2`` are diagonal partners, and the
-choice is made once per patch: ``g1`` takes the pixels of rows ``2i + r`` and columns ``2j + c``, ``g2`` those of
-rows ``2i + 1 - r`` and columns ``2j + 1 - c`` (``r``, ``c`` drawn per patch). So no pixel of the input, in any
-frame, lies in the row, the column or at the position of a target pixel. Noise shared by the frames of a stack, at a fixed position (fixed-pattern noise repeated in
-every frame, correlated CT slices) or along a row or column (banding), therefore never reaches the input from the
-target's own row, column or pixel: the network cannot learn to reproduce it, and on pure noise it learns the mean.
-(The published pairing takes adjacent pixels chosen per cell, so targets share a row or a column with input
-pixels; ``tests/test_stack_training.py`` shows that this leaks repeated banding.)
+No identity shortcut, also for noise correlated between frames. Every frame is sampled at ``g1`` only, and ``g1``
+never holds a target position: noise repeated at a pixel in every frame (a fixed pixel pattern) or correlated
+between frames at the same pixel (CT slices, whose reconstruction spreads noise across slices) never reaches the
+input from the target's own position, in any frame. Two pairings (``neighbor2neighbor.stack_pairing``):
 
-Why one choice per patch, not per row of cells: with ``r`` drawn afresh for each row of cells (and ``c`` for each
+- ``adjacent``, the published one: two adjacent pixels of each 2x2 cell (sharing a row or a column), drawn per
+  cell. Input pixels share rows and columns with target pixels, so noise structured along rows or columns
+  (banding) reaches the input through the target's own row or column (in the centre frame itself, and in every
+  frame when the banding repeats). That harms single-frame Neighbor2Neighbor alike, and the trainer's row/column
+  correction (``data.fixed_pattern``) removes it before training when the noise analysis flags banding.
+- ``row-column-blind``: diagonal partners, one choice per patch: ``g1`` takes the pixels of rows ``2i + r`` and
+  columns ``2j + c``, ``g2`` those of rows ``2i + 1 - r`` and columns ``2j + 1 - c`` (``r``, ``c`` drawn per
+  patch). No input pixel, in any frame, lies in the row, the column or at the position of a target pixel, so
+  banding repeated in every frame cannot be copied either (``tests/test_stack_training.py`` shows the adjacent
+  pairing leaks it). The price: structure that changes from one row (or column) to the next cannot be told from
+  banding and is smoothed away; on the generated conveyor sequence it cost about 3 dB (docs/benchmarks.md).
+
+``auto`` (the trainer, ``grainwright.trainer.run.stack_pairing``) takes the row/column-blind pairing when the
+noise analysis flags banding that the row/column correction did not remove (``data.fixed_pattern = "never"``),
+else the adjacent one. On pure-noise stacks a model trained either way learns the mean (the tests: independent
+noise, a pixel pattern repeated in every frame and noise correlated between frames with the adjacent pairing;
+row, column and pixel patterns repeated in every frame with the blind one).
+
+Why the blind pairing makes one choice per patch, not per row of cells: with ``r`` drawn afresh for each row of cells (and ``c`` for each
 column), the input rows lie 1, 2 or 3 rows apart, and the spacing tells which way the target lies (a gap of 1
 above row ``i`` means ``r_i = 0``: the target is below). The network learns to read that from the content (edges
 and textures kinked by the uneven sampling) and to shift its output towards the target; on the evenly spaced
@@ -53,6 +67,7 @@ import numpy as np
 import torch
 
 from grainwright.trainer.schemes.base import Scheme, apply_model
+from grainwright.trainer.schemes.neighbor2neighbor import ADJACENT_PAIRS
 
 
 def pick(image: torch.Tensor, positions: torch.Tensor) -> torch.Tensor:
@@ -84,6 +99,20 @@ def separated_positions(rng: np.random.Generator, count: int, height: int, width
     return first.astype(np.int64), second.astype(np.int64)
 
 
+def adjacent_positions(rng: np.random.Generator, count: int, height: int, width: int
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """Flat indices ``(count, H/2, W/2)`` of the input (``g1``) and target (``g2``) pixels of the published
+    pairing: two adjacent pixels (sharing a row or a column) of each 2x2 cell, drawn per cell."""
+    pair = ADJACENT_PAIRS[rng.integers(0, len(ADJACENT_PAIRS), (count, height // 2, width // 2))]
+    rows = 2 * np.arange(height // 2)[None, :, None]
+    cols = 2 * np.arange(width // 2)[None, None, :]
+    first, second = ((rows + pair[..., k] // 2) * width + cols + pair[..., k] % 2 for k in (0, 1))
+    return first.astype(np.int64), second.astype(np.int64)
+
+
+PAIRINGS = {"adjacent": adjacent_positions, "row-column-blind": separated_positions}
+
+
 class Neighbor2NeighborStack(Scheme):
     name = "neighbor2neighbor-stack"
     layouts = ("noisy-stacks",)
@@ -98,7 +127,7 @@ class Neighbor2NeighborStack(Scheme):
 
     def positions(self, rng: np.random.Generator, count: int, height: int, width: int
                   ) -> tuple[np.ndarray, np.ndarray]:
-        return separated_positions(rng, count, height, width)
+        return PAIRINGS[self.config["neighbor2neighbor"]["stack_pairing"]](rng, count, height, width)
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         n, _, h, w = patches["noisy"].shape
