@@ -149,7 +149,8 @@ def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any]
     export_checkpoint(run.best, out / "model.onnx", threads=threads, overwrite=True)
     if trained is not None:
         trained[model] = {"steps": summary.get("steps"), "minutes": summary.get("minutes"),
-                          "stack_axis": summary.get("stack_axis")}
+                          "stack_axis": summary.get("stack_axis"), "stack_pairing": summary.get("stack_pairing"),
+                          "fixed_pattern_corrected": summary.get("fixed_pattern_corrected")}
     return out / "model.onnx"
 
 
