@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -84,6 +85,32 @@ def test_generated_patches_mix_dead_leaves_and_photos_deterministically():
     # A source started at step 9 holds the same pool as one that took 9 steps.
     resumed = GeneratedPatches(7, recipe["generated"], photos, start_step=9)
     np.testing.assert_array_equal(resumed.images, first.images)
+
+
+def test_the_refinement_recipe_continues_an_earlier_run_and_packages_both_stages(tmp_path):
+    """The shipped weights come from two stages: `starting-model` and `starting-model-refine` started from its
+    run (start.weights). The second starts from the first's final checkpoint and records which (SHA-256), and its manifest carries the first stage and the two-line command."""
+    from grainwright.trainer.generated import package_run
+
+    tiny = ["model.precision=\"float32\"", "model.hyper.levels=2", "model.hyper.width=4", "generated.pool=2",
+            "generated.image_size=64", "generated.validation_images=1", "validation.patches=16",
+            "validation.every_steps=2", "budget.steps=2"]
+    quiet = {"announce": lambda message: None}
+    _, first = train_generated("starting-model", tmp_path / "first", assignments=tiny, **quiet)
+    start = f"start.weights=\"{first.root}\""
+    summary, second = train_generated("starting-model-refine", tmp_path / "second", assignments=[*tiny, start],
+                                      **quiet)
+    started = summary["started_from"]
+    assert started["weights"] == "earlier run" and started["steps"] == 2
+    assert started["sha256"] == hashlib.sha256(first.best.read_bytes()).hexdigest()
+    manifest = package_run(second.root, tmp_path / "into", recipe_path="starting-model-refine")
+    assert manifest["recipe"]["file"] == "configs/starting-model-refine.toml"
+    assert "--recipe starting-model-refine --set start.weights=" in manifest["recipe"]["command"]
+    (stage,) = manifest["earlier_stages"]
+    assert stage["steps"] == 2 and stage["resolved"]["generated"]["level_weighting"] == "none"
+    assert manifest["recipe"]["resolved"]["generated"]["level_weighting"] == "inverse"
+    with pytest.raises(ConfigError, match="start.weights"):
+        train_generated("starting-model-refine", tmp_path / "third", assignments=tiny, **quiet)
 
 
 @pytest.mark.slow
@@ -312,16 +339,18 @@ def test_the_shipped_weights_match_their_manifest():
     payload = load_starting_model()  # weights_only, after the SHA-256 check
     assert payload["architecture"] == manifest["architecture"]["name"] == "unet-noisemap"
     assert payload["hyper"] == manifest["architecture"]["hyper"]
-    # The recipe in the manifest is the shipped one, and the run completed its budget.
-    assert manifest["recipe"]["text"] == shipped_recipe_text()
+    # The recipe in the manifest is the shipped file it names, and the run completed its budget (every stage).
+    assert manifest["recipe"]["text"] == shipped_recipe_text(Path(manifest["recipe"]["file"]).stem)
     assert manifest["steps"] == manifest["recipe"]["resolved"]["budget"]["steps"]
+    for stage in manifest.get("earlier_stages", []):
+        assert stage["steps"] == stage["resolved"]["budget"]["steps"] and stage["validation_history"]
     assert manifest["validation"]["history"], "the learning curve is recorded"
 
 
-def shipped_recipe_text() -> str:
+def shipped_recipe_text(name: str = "starting-model") -> str:
     from grainwright.trainer.config import shipped_config
 
-    return shipped_config("starting-model").read_text()
+    return shipped_config(name).read_text()
 
 
 @pytest.mark.slow

@@ -38,6 +38,7 @@ from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import Key, _check_value, shipped_config, validate
 from grainwright.trainer.data import PatchSource
 from grainwright.trainer.loop import TrainingSetup, fastest_step, train
+from grainwright.trainer.start import check_start_weights, fine_tuning_schedule, resolve_start
 from grainwright.trainer.schemes.base import apply_model
 from grainwright.trainer.schemes.supervised import Supervised
 
@@ -260,6 +261,11 @@ def prepare_generated(recipe: dict[str, Any], start_step: int = 0,
     if config["data"]["patch_size"] % model.alignment or config["data"]["patch_size"] > generated["image_size"]:
         raise ConfigError(f"data.patch_size: {config['data']['patch_size']} must be a multiple of "
                           f"{model.alignment} and at most generated.image_size")
+    started_from = None
+    if config["start"]["weights"] != "random":  # a refinement of an earlier recipe run (same architecture)
+        check_start_weights(config)
+        started_from = resolve_start(config, "supervised", model, 1, announce)
+        config = fine_tuning_schedule(config, announce)
     channels_last, precision = config["model"]["channels_last"], config["model"]["precision"]
     if "auto" in (channels_last, precision):
         layouts = (False, True) if channels_last == "auto" else (channels_last,)
@@ -279,6 +285,8 @@ def prepare_generated(recipe: dict[str, Any], start_step: int = 0,
                + generated["validation_images"], "data_folder": None, "transform": "none",
                "parameters": model.parameter_count(), "macs_per_pixel": model.macs_per_pixel(),
                "channels_last": channels_last, "precision": precision}
+    if started_from is not None:
+        summary["started_from"] = started_from
     return TrainingSetup(config=config, scheme=scheme, model=model, train=source,
                          validation=validation_batches(recipe, scheme), ground_truth=True,
                          normalization=STARTING_NORMALIZATION, channels_last=channels_last, precision=precision,
@@ -357,6 +365,25 @@ def train_generated(recipe_path: str | Path, out: str | Path | None = None, *, r
 
 
 
+def _machine_entries(root: Path) -> list[dict[str, Any]]:
+    return json.loads((root / "machine.json").read_text()) if (root / "machine.json").is_file() else []
+
+
+def _earlier_stage(checkpoint: Path, started_from: dict[str, Any]) -> dict[str, Any]:
+    """What the manifest keeps of the run a refinement started from: its resolved recipe, steps, wall time,
+    machine entries and learning curve (read from its run folder when it is still there)."""
+    root = checkpoint.parent.parent if checkpoint.parent.name == "checkpoints" else checkpoint.parent
+    stage: dict[str, Any] = {"checkpoint_sha256": started_from.get("sha256"), "steps": started_from.get("steps")}
+    if (root / "training-summary.json").is_file():
+        summary = json.loads((root / "training-summary.json").read_text())
+        stage.update(wall_time_minutes=summary.get("minutes"), validation_history=summary.get("validation_history"),
+                     precision=summary.get("precision"))
+    if (root / "config.toml").is_file():
+        stage["resolved"] = tomllib.loads((root / "config.toml").read_text())
+    stage["machine"] = _machine_entries(root)
+    return stage
+
+
 def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path = "starting-model",
                 extra: dict[str, Any] | None = None) -> dict[str, Any]:
     """Write a finished recipe run as the shipped starting model: ``into/starting-model.pt`` (the run's
@@ -385,7 +412,14 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
                           f"{resolved['budget']['steps']}; package a finished run")
     weights = save_checkpoint(Path(into) / WEIGHTS, payload)
     model = build_model(payload["architecture"], payload["channels"], **payload["hyper"])
-    machine = json.loads((run.root / "machine.json").read_text()) if (run.root / "machine.json").is_file() else []
+    machine = _machine_entries(run.root)
+    command = "grainwright starting-model train --out RUN_DIR"
+    earlier = summary.get("started_from")
+    stages = []
+    if earlier:  # a refinement: the earlier stage's run is part of the weights' history, and of the command
+        stages = [_earlier_stage(Path(earlier["path"]), earlier)]
+        command = ("grainwright starting-model train --out STAGE1_DIR; grainwright starting-model train --recipe "
+                   f"{recipe_file.stem} --set start.weights='\"STAGE1_DIR\"' --out RUN_DIR")
     manifest = {
         "name": "grainwright starting model",
         "weights_file": WEIGHTS,
@@ -393,7 +427,7 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
         "weights_bytes": weights.stat().st_size,
         "architecture": model.describe(),
         "recipe": {"file": f"configs/{recipe_file.name}", "text": recipe_text, "resolved": resolved,
-                   "command": "grainwright starting-model train --out RUN_DIR"},
+                   "command": command},
         "seed": resolved["seed"],
         "steps": summary.get("steps"),
         "wall_time_minutes": summary.get("minutes"),
@@ -407,6 +441,7 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
         "training_data": f"dead-leaves stream + scikit-image sample photographs {', '.join(TRAINING)}",
         "created": payload.get("created"),
         "tool_version": payload.get("tool_version"),
+        **({"earlier_stages": stages} if stages else {}),
         **(extra or {}),
     }
     write_json_atomic(Path(into) / MANIFEST, manifest)

@@ -45,6 +45,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     package.add_argument("run_dir", metavar="RUN_DIR", help="a finished run of the recipe")
     package.add_argument("--into", required=True, metavar="DIR", help="folder to write starting-model.pt and "
                          "starting-model.json into (the source tree's models/)")
+    package.add_argument("--recipe", default="starting-model", metavar="RECIPE.toml",
+                         help="the recipe the run followed, kept verbatim in the manifest (default: starting-model)")
     package.add_argument("--extra", metavar="FILE.json", help="a JSON object merged into the manifest (e.g. "
                          "benchmark figures)")
 
@@ -73,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
         from grainwright.trainer.generated import package_run
 
         extra = json.loads(Path(args.extra).read_text()) if args.extra else None
-        manifest = package_run(args.run_dir, args.into, extra=extra)
+        manifest = package_run(args.run_dir, args.into, recipe_path=args.recipe, extra=extra)
         print(f"wrote {manifest['weights_file']} ({manifest['weights_bytes']} bytes, sha256 "
               f"{manifest['weights_sha256']}) and its manifest into {args.into}")
         return 0
