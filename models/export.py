@@ -403,8 +403,8 @@ def _parity_checks(session: Any, model: Any, normalization: Normalization, image
     if images:
         crop = centre_crop(images[0].frame, CALIBRATION_CROP, channels_first=True)[None]
         crop = np.concatenate([crop] * model.stack_frames, axis=1)  # a multi-frame model: a still window
-        parity["calibration"] = {"file": images[0].path.name,
-                                 **_parity_entry(session, model, normalization, crop, noise_map_for(crop, random=False))}
+        entry = _parity_entry(session, model, normalization, crop, noise_map_for(crop, random=False))
+        parity["calibration"] = {"file": images[0].path.name, **entry}
     return parity
 
 
