@@ -59,7 +59,7 @@ def test_the_starting_model_is_the_default_start_and_is_recorded_in_the_run_and_
                                  announce=lines.append, assignments=SMALL)
     sha = starting_model_manifest()["weights_sha256"]
     assert summary["started_from"] == {"weights": "starting-model", "sha256": sha,
-                                       "steps": starting_model_manifest()["steps"]}
+                                       "steps": starting_model_manifest()["total_steps"]}
     assert json.loads(run.summary.read_text())["started_from"]["sha256"] == sha
     assert 'weights = "starting-model"' in run.config.read_text()
     # The fine-tuning schedule replaces optim.lr and optim.warmup_fraction, and the resolved config says so.

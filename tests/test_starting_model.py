@@ -106,6 +106,7 @@ def test_the_refinement_recipe_continues_an_earlier_run_and_packages_both_stages
     manifest = package_run(second.root, tmp_path / "into", recipe_path="starting-model-refine")
     assert manifest["recipe"]["file"] == "configs/starting-model-refine.toml"
     assert "--recipe starting-model-refine --set start.weights=" in manifest["recipe"]["command"]
+    assert manifest["steps"] == 2 and manifest["total_steps"] == 4  # the run's own, and over both stages
     (stage,) = manifest["earlier_stages"]
     assert stage["steps"] == 2 and stage["resolved"]["generated"]["level_weighting"] == "none"
     assert manifest["recipe"]["resolved"]["generated"]["level_weighting"] == "inverse"

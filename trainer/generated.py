@@ -430,6 +430,7 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
                    "command": command},
         "seed": resolved["seed"],
         "steps": summary.get("steps"),
+        "total_steps": summary.get("steps", 0) + sum(stage.get("steps") or 0 for stage in stages),
         "wall_time_minutes": summary.get("minutes"),
         "precision": resolved["model"]["precision"],
         "threads": resolved["threads"],

@@ -124,11 +124,12 @@ def _from_starting_model(scheme: str, model: torch.nn.Module, channels: int,
                           "denoised on its own) or start.weights = \"random\"")
     model.load_state_dict(payload["state_dict"])
     manifest = starting_model_manifest()
-    announce(f"start: fine-tuning the shipped starting model ({payload['architecture']}, {manifest.get('steps')} "
+    steps = manifest.get("total_steps", manifest.get("steps"))  # over all its stages
+    announce(f"start: fine-tuning the shipped starting model ({payload['architecture']}, {steps} "
              f"steps, sha256 {manifest['weights_sha256'][:12]}...)"
              + (f"; each of the {channels} channels on its own" if channels > 1 else "")
              + "; start.weights = \"random\" trains from random weights")
-    return {"weights": STARTING_MODEL, "sha256": manifest["weights_sha256"], "steps": manifest.get("steps")}
+    return {"weights": STARTING_MODEL, "sha256": manifest["weights_sha256"], "steps": steps}
 
 
 def _from_earlier_run(path: Path, model: torch.nn.Module, channels: int,
