@@ -416,7 +416,7 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
     command = "grainwright starting-model train --out RUN_DIR"
     earlier = summary.get("started_from")
     stages = []
-    if earlier:  # a refinement: the earlier stage's run is part of the weights' history, and of the command
+    if earlier and earlier.get("path"):  # refined from an earlier run: part of the weights' history and command
         stages = [_earlier_stage(Path(earlier["path"]), earlier)]
         command = ("grainwright starting-model train --out STAGE1_DIR; grainwright starting-model train --recipe "
                    f"{recipe_file.stem} --set start.weights='\"STAGE1_DIR\"' --out RUN_DIR")
