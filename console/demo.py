@@ -377,7 +377,8 @@ def export_starting_alone(out: Path, settings: DemoSettings, echo: Callable[[str
                                    threads=settings.threads or os.cpu_count() or 1, log=lambda line: echo(f"  {line}"))
     manifest = starting_model_manifest()
     return {"model": str(result.path), "parity_max_abs_diff": _worst_parity(result),
-            "starting_model_steps": manifest["steps"], "starting_model_sha256": manifest["weights_sha256"]}
+            "starting_model_steps": manifest.get("total_steps", manifest["steps"]),  # over all its stages
+            "starting_model_sha256": manifest["weights_sha256"]}
 
 
 def denoise_large_frame(out: Path, settings: DemoSettings, echo: Callable[[str], Any], role: str) -> dict:
