@@ -48,8 +48,8 @@ def test_recipe_is_the_trainers_config_plus_a_generated_table(tmp_path):
 
 
 def test_inverse_level_weighting_divides_each_patchs_error_by_its_level():
-    """`level_weighting = "inverse"`: patch i's squared error counts in proportion to 1 / max(level_i, floor),
-    normalised to mean 1, against the plain mean squared error of `none` (computed here by hand)."""
+    """`level_weighting = "inverse"`: patch i's squared error counts in proportion to 1 / max(level_i, floor)
+    ** exponent, normalised to mean 1, against the plain mean squared error of `none` (computed here by hand)."""
     from grainwright.trainer.generated import LevelRangeSupervised
 
     recipe = load_recipe("starting-model")
@@ -64,9 +64,11 @@ def test_inverse_level_weighting_divides_each_patchs_error_by_its_level():
         per_patch = ((model(tensors["noisy"], tensors["level"]) - tensors["clean"]) ** 2).mean(dim=(1, 2, 3))
         weighted = LevelRangeSupervised(recipe, 0.3, "inverse", 0.02).loss(model, tensors, 1.0)
         unweighted = plain.loss(model, tensors, 1.0)
-    weights = 1.0 / np.maximum(levels, 0.02)
-    expected = float(np.mean(per_patch.numpy() * weights / weights.mean()))
-    assert float(weighted) == pytest.approx(expected, rel=1e-5)
+        squared_weighting = LevelRangeSupervised(recipe, 0.3, "inverse", 0.02, 2.0).loss(model, tensors, 1.0)
+    for exponent, loss in ((1.0, weighted), (2.0, squared_weighting)):
+        weights = np.maximum(levels, 0.02) ** -exponent
+        expected = float(np.mean(per_patch.numpy() * weights / weights.mean()))
+        assert float(loss) == pytest.approx(expected, rel=1e-5)
     assert float(unweighted) == pytest.approx(float(per_patch.mean()), rel=1e-5)
     with pytest.raises(ConfigError, match="generated.level_weighting"):
         load_recipe("starting-model", ['generated.level_weighting="square"'])

@@ -54,10 +54,13 @@ GENERATED: dict[str, Key] = {
     "radius_max": Key("float", 128.0, "Largest shape radius, pixels.", 0.2, 1e5),
     "level_weighting": Key("choice", "none", "Loss weight of each patch by its noise level: 'none' (plain mean "
                            "squared error, dominated by the high levels) or 'inverse' (each patch's squared error "
-                           "divided by max(level, level_floor), about equal weight per level in dB).",
+                           "divided by max(level, level_floor) ** level_exponent; exponent 1 gives about equal "
+                           "weight per level in dB).",
                            choices=("none", "inverse")),
     "level_floor": Key("float", 2.0 / 255.0, "Smallest level used by level_weighting = 'inverse', fraction of "
                        "the range (patches drawn near zero noise would otherwise dominate).", 1e-6, 1.0),
+    "level_exponent": Key("float", 1.0, "Exponent of the level in level_weighting = 'inverse': above 1 shifts "
+                          "the weight towards the low levels.", 0.0, 4.0),
     "validation_images": Key("int", 8, "Dead-leaves images of their own seeds in the validation set.", 0, 1024),
     "validation_sigmas": Key("str", "10,25,50", "Noise levels of the validation set, in 1/255 of the range "
                              "(comma-separated)."),
@@ -190,10 +193,11 @@ class LevelRangeSupervised(Supervised):
     name = "supervised"
 
     def __init__(self, config: dict[str, Any], sigma_max: float, level_weighting: str = "none",
-                 level_floor: float = 2.0 / 255.0):
+                 level_floor: float = 2.0 / 255.0, level_exponent: float = 1.0):
         super().__init__(config, None, None, level_maps=True)
         self.sigma_max = float(sigma_max)
         self.level_weighting, self.level_floor = level_weighting, float(level_floor)
+        self.level_exponent = float(level_exponent)
 
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator,
                 levels: np.ndarray | None = None) -> dict[str, np.ndarray]:
@@ -214,9 +218,10 @@ class LevelRangeSupervised(Supervised):
             return super().loss(model, batch, progress)
         # A good denoiser's squared error grows about in proportion to the level over this range (common practice,
         # no source: PSNR at 10, 25 and 50/255 is about 35, 31 and 28 dB), so dividing by the level gives each level
-        # about the same weight in dB; the weights are normalised to mean 1 so the learning rate keeps its meaning.
+        # about the same weight in dB (a larger exponent favours the low levels, where classical filters are
+        # strongest); the weights are normalised to mean 1 so the learning rate keeps its meaning.
         squared = (apply_model(model, batch["noisy"], batch["level"]) - batch["clean"]) ** 2
-        weights = 1.0 / torch.clamp(batch["level"][:, :1, :1, :1], min=self.level_floor)
+        weights = torch.clamp(batch["level"][:, :1, :1, :1], min=self.level_floor) ** -self.level_exponent
         return torch.mean(squared * (weights / weights.mean()))
 
 
@@ -278,7 +283,7 @@ def prepare_generated(recipe: dict[str, Any], start_step: int = 0,
     config["model"] = dict(config["model"], skip=True, hyper=dict(model.hyper), channels_last=channels_last,
                            precision=precision)
     scheme = LevelRangeSupervised(config, generated["sigma_max"], generated["level_weighting"],
-                                  generated["level_floor"])
+                                  generated["level_floor"], generated["level_exponent"])
     source = GeneratedPatches(config["seed"], generated, photo_source(TRAINING), start_step)
     summary = {"layout": "generated", "scheme": "supervised", "training_images": "dead-leaves stream + "
                f"{len(TRAINING)} sample photographs", "validation_images": len(VALIDATION)
