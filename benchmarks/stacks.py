@@ -149,7 +149,9 @@ def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any]
     export_checkpoint(run.best, out / "model.onnx", threads=threads, overwrite=True)
     if trained is not None:
         trained[model] = {"steps": summary.get("steps"), "minutes": summary.get("minutes"),
-                          "stack_axis": summary.get("stack_axis"), "stack_pairing": summary.get("stack_pairing"),
+                          "scheme": summary.get("scheme"), "stack_axis": summary.get("stack_axis"),
+                          "stack_pairing": summary.get("stack_pairing"),
+                          "frame_noise_correlation": summary.get("frame_noise_correlation"),
                           "fixed_pattern_corrected": summary.get("fixed_pattern_corrected")}
     return out / "model.onnx"
 
@@ -192,9 +194,20 @@ def crack_retention(sequence: Any, output: np.ndarray) -> dict[str, float | int]
     return figures
 
 
+SEQUENCE_SCHEMES = {  # the schemes of the K-frame and the single-frame model, by family
+    "recorrupted": ("recorrupted-stack", "recorrupted"),
+    "neighbor2neighbor": ("neighbor2neighbor-stack", "neighbor2neighbor"),
+}
+
+
 def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
                      bm3d_frames_scored: int, log: Callable[[str], None], steps: int = 0,
-                     shape: tuple[int, int] = (192, 256), settings: tuple[str, ...] = ()) -> dict[str, Any]:
+                     shape: tuple[int, int] = (192, 256), settings: tuple[str, ...] = (),
+                     family: str = "recorrupted") -> dict[str, Any]:
+    """The conveyor sequence of ``seed``: the K-frame and the single-frame model of one scheme ``family``
+    (``SEQUENCE_SCHEMES``) trained on its noisy frames, the K-frame average and per-frame BM3D, scored on the
+    clean frames."""
+    stack_scheme, single_scheme = SEQUENCE_SCHEMES[family]
     sequence = conveyor_sequence(height=shape[0], width=shape[1], seed=seed)
     data = folder / f"sequence-{seed}"
     write_stack_pair(data, "conveyor", sequence.noisy, sequence.clean, sequence_info(sequence))
@@ -206,13 +219,12 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     budget = {"minutes": minutes, "steps": steps, "extra": settings}
     log(f"sequence seed {seed}: training the {frames}-frame model ({f'{steps} steps' if steps else f'{minutes} min'})")
     stack_model = train_and_export(data, folder / f"seq-stack-{seed}", model="unet-stack", hyper=stack_hyper,
-                                   scheme="neighbor2neighbor-stack", seed=seed, threads=threads, trained=trained,
-                                   **budget)
+                                   scheme=stack_scheme, seed=seed, threads=threads, trained=trained, **budget)
     rows[f"unet-stack K={frames}"] = _as_written(denoise_stack_array(OnnxDenoiser(stack_model, threads=threads),
                                                                      sequence.noisy[..., None])[..., 0])
     log(f"sequence seed {seed}: training the single-frame model")
     single_model = train_and_export(data, folder / f"seq-single-{seed}", model="unet-small",
-                                    hyper={"levels": 2, "width": width}, scheme="neighbor2neighbor", seed=seed,
+                                    hyper={"levels": 2, "width": width}, scheme=single_scheme, seed=seed,
                                     threads=threads, trained=trained, **budget)
     single = OnnxDenoiser(single_model, threads=threads)
     rows["unet-small (single frame)"] = np.stack([_as_written(single.run(frame[..., None], as_float=True)[..., 0])
@@ -225,7 +237,8 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
         table[f"BM3D per frame (sigma {sigma:g} DN tuned on GT; {len(scored)} frames)"] = {
             "psnr_whole": psnr(clean[scored], bm3d_out), "psnr_moving": psnr(clean[scored], bm3d_out, moving),
             "same_frames_unet_stack": psnr(clean[scored], rows[f"unet-stack K={frames}"][scored])}
-    return {"seed": seed, "motion": sequence.motion, "trained": trained, "rows": table}
+    return {"seed": seed, "motion": sequence.motion, "schemes": [stack_scheme, single_scheme], "trained": trained,
+            "rows": table}
 
 
 def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
@@ -294,7 +307,8 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
             figures["sequence"] = [sequence_quality(folder, frames=args.frames, minutes=args.minutes, seed=seed,
                                                     threads=args.threads, width=args.width,
                                                     bm3d_frames_scored=args.bm3d_frames, log=log, steps=args.steps,
-                                                    shape=tuple(args.sequence_size), settings=tuple(args.set))
+                                                    shape=tuple(args.sequence_size), settings=tuple(args.set),
+                                                    family=args.sequence_schemes)
                                    for seed in args.seeds]
             log(f"sequence: {json.dumps(figures['sequence'], indent=1)}")
         if "volume" in args.parts:

@@ -35,9 +35,9 @@ def _positions(count: int, size: int) -> np.ndarray:
     return np.broadcast_to(plane, (count, 1, size, size)).copy()
 
 
-def test_registry_has_the_eight_schemes():
+def test_registry_has_the_nine_schemes():
     assert set(SCHEMES) == {"supervised", "noise2noise", "masked", "neighbor2neighbor", "recorrupted", "sure",
-                            "neighbor2neighbor-stack", "noise2noise-stack"}
+                            "neighbor2neighbor-stack", "noise2noise-stack", "recorrupted-stack"}
 
 
 @pytest.mark.parametrize("layout, noise_known, estimated, expected", [

@@ -158,6 +158,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                      "learns to denoise noise sqrt(1 + alpha^2) times the real level, so a small alpha fits the "
                      "real noise better but gives noisier targets; 0.3 measured 0.1 dB better than 0.5 in "
                      "`grainwright bench train` (docs/benchmarks.md).", 0.01, 10.0),
+        "max_frame_correlation": Key("float", 0.1, "`recorrupted-stack`: the largest correlation of the noise of "
+                                     "neighbouring frames it trains on (measured on the training stacks); above it "
+                                     "the network would see its target's noise through the neighbours, and the run "
+                                     "stops (use `neighbor2neighbor-stack`).", 0.0, 1.0),
     },
 }
 

@@ -358,6 +358,17 @@ def _resolve_stack_pairing(config: dict[str, Any], scheme: str, findings: NoiseF
     return dict(config, neighbor2neighbor=dict(table, stack_pairing=pairing))
 
 
+def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
+                findings: NoiseFindings | None, corrected: bool, announce: Callable[[str], None]) -> dict[str, Any]:
+    """The scheme's own check of the training data (``Scheme.check_data``); its figures, announced."""
+    banding_left = findings is not None and "banding" in findings.flags and not corrected
+    noisy = [item[role] for item in working for role in item if role != "clean"]
+    figures = scheme_class(scheme).check_data(config, noisy, stack_frames(config), banding_left)
+    for key, value in figures.items():
+        announce(f"{key.replace('_', ' ')}: {value:.3f}")
+    return figures
+
+
 def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
            ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]]]:
     """Stage 5: training and validation images, split by image; a single image is split into two regions."""
@@ -466,6 +477,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     transform, transform_decided_by, sigma = _working_range(config, name, data, announce)
     working, fixed_pattern = _to_working(config, data, announce)
     config = _resolve_stack_pairing(config, name, data.findings, fixed_pattern, announce)
+    data_figures = _check_data(config, name, working, data.findings, fixed_pattern, announce)
     train_images, validation_images = _split(config, working, announce)
     config = fit_start_config(config, data.channels)
     model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)
@@ -502,6 +514,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["stack_axis"] = training_stack_axis(config, layout)
     if name == "neighbor2neighbor-stack":
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
+    summary.update(data_figures)
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
                           validation=validation, ground_truth=layout.has_ground_truth,

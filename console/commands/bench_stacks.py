@@ -19,6 +19,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--steps", type=int, default=0,
                         help="training budget per model in optimiser steps instead of --minutes (fixed-step "
                         "comparisons on a shared machine; default 0 = use --minutes)")
+    parser.add_argument("--sequence-schemes", choices=("recorrupted", "neighbor2neighbor"), default="recorrupted",
+                        help="training schemes of the two sequence models: recorrupted-stack and recorrupted, or "
+                        "neighbor2neighbor-stack and neighbor2neighbor (default recorrupted)")
     parser.add_argument("--sequence-size", type=int, nargs=2, default=[192, 256], metavar=("H", "W"),
                         help="frame size of the generated sequence (pixels, default 192 256)")
     parser.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",

@@ -409,6 +409,29 @@ def residual_sigma(image: np.ndarray) -> np.ndarray:
     return np.array([_robust_std(_high_pass(image[:, :, c])) / HIGH_PASS_KEEPS for c in range(image.shape[2])])
 
 
+def interframe_noise_correlation(first: np.ndarray, second: np.ndarray) -> float:
+    """Correlation of the noise of two frames of a stack at the same pixels, from the wavelet MAD estimator.
+
+    Method: with ``s(x)`` the noise standard deviation of ``estimate_sigma`` (Donoho and Johnstone 1994: MAD of
+    the finest diagonal wavelet details, where the image holds no structure), noise of correlation ``rho``
+    between the frames gives ``s(a - b)**2 = s(a)**2 + s(b)**2 - 2 rho s(a) s(b)``, so
+    ``rho = (s(a)**2 + s(b)**2 - s(a - b)**2) / (2 s(a) s(b))``. Structure that holds still cancels in the
+    difference, and the flat-region selection keeps structure that moves (and texture) out of the estimates. A
+    pixel pattern repeated in every frame counts as correlated noise; row or column offsets do not (they have
+    no diagonal detail: flag them with ``detect_banding``). The noise must not depend on the signal (Gaussian
+    as is, Poisson-Gaussian after the Anscombe transform). Frames ``(H, W)`` or ``(H, W, C)`` of the same
+    shape, in any units; returns the mean over channels (0 where a frame shows no noise).
+    """
+    a, b = _as_hwc(first).astype(np.float64), _as_hwc(second).astype(np.float64)
+    if a.shape != b.shape:
+        raise ValueError(f"frames of different shapes {a.shape} and {b.shape}")
+    spread_a, spread_b = estimate_sigma(a), estimate_sigma(b)
+    spread_difference = estimate_sigma(a - b, exclude_extremes=False)
+    values = [(sa**2 + sb**2 - sd**2) / (2 * sa * sb)
+              for sa, sb, sd in zip(spread_a, spread_b, spread_difference) if sa > 0 and sb > 0]
+    return float(np.mean(values)) if values else 0.0
+
+
 def estimate_fixed_pattern(image: np.ndarray, iterations: int = 3) -> tuple[np.ndarray, np.ndarray]:
     """Per-row and per-column offsets, shaped ``(H, C)`` and ``(W, C)``, in image units (zero mean).
 

@@ -67,6 +67,15 @@ class Scheme:
         """The frame stride of the training windows under ``config`` (default: the class's ``frame_stride``)."""
         return cls.frame_stride
 
+    @classmethod
+    def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool
+                   ) -> dict[str, Any]:
+        """Check that the training data suit the scheme before the model is built; raise ``ConfigError`` saying
+        what was found otherwise. ``noisy``: the noisy training images in working units (multi-frame windows
+        ``(H, W, K * C)``, frame-major), ``frames``: K, ``banding_left``: the noise analysis flagged banding and
+        the row/column correction did not run. Returns figures for the training summary (none by default)."""
+        return {}
+
     def prepare(self, patches: dict[str, np.ndarray], rng: np.random.Generator) -> dict[str, np.ndarray]:
         """Add the scheme's random draws to a batch of patches (numpy, ``(N, C, H, W)``)."""
         raise NotImplementedError

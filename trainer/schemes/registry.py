@@ -14,12 +14,13 @@ from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2Neighbo
 from grainwright.trainer.schemes.noise2noise import Noise2Noise
 from grainwright.trainer.schemes.noise2noise_stack import Noise2NoiseStack
 from grainwright.trainer.schemes.recorrupted import Recorrupted
+from grainwright.trainer.schemes.recorrupted_stack import RecorruptedStack
 from grainwright.trainer.schemes.supervised import Supervised
 from grainwright.trainer.schemes.sure import Sure
 
 SCHEMES: dict[str, type[Scheme]] = {
     cls.name: cls for cls in (Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted, Sure,
-                              Neighbor2NeighborStack, Noise2NoiseStack)
+                              Neighbor2NeighborStack, Noise2NoiseStack, RecorruptedStack)
 }
 
 
