@@ -132,7 +132,7 @@ def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path):
     """Pure noise independent between frames has nothing to learn but its mean. The model starts as the identity
     (its skip hands the centre frame through); reaching the mean shows the recorrupted target gives it no reason
     to copy the input's centre frame or its neighbours."""
-    data = _with_noise_description(_write_stacks(tmp_path / "data", size=48))
+    data = _with_noise_description(_write_stacks(tmp_path / "data", False, size=48))
     summary, run = train_command(None, str(data), scheme="recorrupted-stack", steps=2000, out=str(tmp_path / "run"),
                                  assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0"],
                                  announce=lambda line: None)
