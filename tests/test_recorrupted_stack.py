@@ -3,6 +3,8 @@ target noise are uncorrelated when the frames' noise is independent; noise corre
 banding left in the frames) is measured and refused, and a model trained on pure-noise stacks outputs the mean."""
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 import tifffile
@@ -41,17 +43,16 @@ def test_structure_still_or_moving_is_not_counted_as_correlated_noise():
     assert abs(slices - 0.3) < 0.08, slices
 
 
-def _windows(stack, frames=3):
-    """Consecutive K-frame windows of a stack ``(N, H, W)``, frames side by side (frame-major)."""
-    return [np.moveaxis(stack[i:i + frames], 0, -1) for i in range(len(stack) - frames + 1)]
-
-
-def test_the_largest_correlation_over_the_window_frames_is_taken():
+def test_the_largest_correlation_over_the_window_offsets_is_taken():
+    """Whole stacks ``(N, H, W, C)``; a 5-frame window's frames lie 1 and 2 frames from its centre. Noise drawn
+    with correlation 0.5 between neighbouring frames (first-order autoregression: 0.25 two frames apart) reads
+    about 0.5, the larger of the two offsets."""
     rng = np.random.default_rng(5)
-    independent = _pure_noise_stack(rng, 12, 64, False)[0].astype(np.float64)
-    assert abs(frame_noise_correlation(_windows(independent), 3)) < 0.1
-    correlated = _pure_noise_stack(rng, 12, 64, False, correlation=0.5)[0].astype(np.float64)
-    assert frame_noise_correlation(_windows(correlated), 3) > 0.35
+    independent = _pure_noise_stack(rng, 12, 64, False)[0].astype(np.float64)[..., None]
+    assert abs(frame_noise_correlation([independent, independent[::-1]], 5)) < 0.1
+    correlated = _pure_noise_stack(rng, 12, 64, False, correlation=0.5)[0].astype(np.float64)[..., None]
+    assert 0.35 < frame_noise_correlation([correlated], 5) < 0.65
+    assert frame_noise_correlation([correlated], 3) > 0.35  # offset 1 alone
 
 
 @pytest.mark.parametrize("seed", range(3))
@@ -102,7 +103,7 @@ def test_banding_left_in_the_frames_is_refused():
     """Row offsets are not white: the recorruption does not decorrelate them even in the centre frame."""
     config = load_config(None)
     with pytest.raises(ConfigError, match="banding"):
-        RecorruptedStack.check_data(config, [np.zeros((16, 16, 3), np.float32)], 3, banding_left=True)
+        RecorruptedStack.check_data(config, [np.zeros((6, 16, 16, 1), np.float32)], 3, banding_left=True)
 
 
 def _banded_stacks(root):
@@ -143,3 +144,62 @@ def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path):
     assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
     assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.5, figures
+
+
+# Poisson-Gaussian noise of the pure-noise stacks' level at their mean (12 bits, working units): variance
+# gain * 0.488 + read^2 = (200 / 4095)^2 with the read noise 100 DN.
+PG_NOISE_TOML = f'kind = "poisson-gaussian"\ngain = {((TEMPORAL**2 - 100.0**2) / 4095**2) / (2000 / 4095):.6g}\nread = {100 / 4095:.6g}\n'
+
+
+def _auto_choice(data, assignments=TINY):
+    """The scheme ``auto`` settles on for ``data`` and the line it announced (nothing is trained)."""
+    from grainwright.trainer.run import prepare
+
+    lines = []
+    setup, _, _ = prepare(load_config(None, [*assignments, f'data.folder="{data.as_posix()}"']), lines.append)
+    said = [line for line in lines if line.startswith("scheme auto:")]
+    assert len(said) == 1, lines
+    return setup.config["scheme"], said[0]
+
+
+def test_auto_picks_recorrupted_stack_for_independent_poisson_gaussian_noise(tmp_path):
+    """Independent noise between frames and a Poisson-Gaussian noise description: Recorrupted-to-Recorrupted on
+    the windows, with the measured correlation in the reason."""
+    data = _write_stacks(tmp_path / "data", False, size=48)
+    (data / "noise.toml").write_text(PG_NOISE_TOML)
+    scheme, line = _auto_choice(data)
+    assert scheme == "recorrupted-stack", line
+    assert "poisson-gaussian noise from the noise description noise.toml" in line and "independent" in line
+
+
+def test_auto_picks_recorrupted_stack_on_the_generated_sequence_from_the_analysis(tmp_path):
+    """No noise description: the analysis fits the conveyor sequence's Poisson-Gaussian noise confidently (gain 8,
+    read 14 DN), its banding is corrected, and the noise is independent between frames."""
+    from grainwright.inference.synthetic.stack_scenario import sequence_info, write_stack_pair
+
+    sequence = conveyor_sequence(seed=0)
+    data = tmp_path / "data"
+    write_stack_pair(data, "conveyor", sequence.noisy, sequence.clean, sequence_info(sequence))
+    settings = [a for a in TINY if not a.startswith("data.fixed_pattern")]
+    scheme, line = _auto_choice(data, settings)
+    assert scheme == "recorrupted-stack", line
+    assert "confident fit" in line, line
+
+
+@pytest.mark.parametrize(("noise", "reason"), [
+    ({"repeated": False, "correlation": 0.5}, "neighbouring frames is correlated 0.[3-6]"),
+    ({"repeated": True, "kind": "pixel"}, "neighbouring frames is correlated 0.[1-3]"),
+])
+def test_auto_picks_neighbor2neighbor_stack_for_noise_shared_by_the_frames(tmp_path, noise, reason):
+    data = _write_stacks(tmp_path / "data", size=64, **noise)
+    (data / "noise.toml").write_text(PG_NOISE_TOML)
+    scheme, line = _auto_choice(data)
+    assert scheme == "neighbor2neighbor-stack", line
+    assert re.search(reason, line), line
+
+
+def test_auto_picks_neighbor2neighbor_stack_for_banding_left_uncorrected(tmp_path):
+    data = _banded_stacks(tmp_path / "data")
+    (data / "noise.toml").write_text(PG_NOISE_TOML)
+    scheme, line = _auto_choice(data)  # TINY turns the row/column correction off
+    assert scheme == "neighbor2neighbor-stack" and "banding is flagged and left uncorrected" in line, line

@@ -14,7 +14,7 @@ from grainwright.inference.runtime.modelinfo import read_model_metadata
 from grainwright.models.checkpoint import load_checkpoint, model_from_checkpoint
 from grainwright.trainer.config import load_config
 from grainwright.trainer.data import stack_windows
-from grainwright.trainer.run import frame_stride, stack_pairing, train_command
+from grainwright.trainer.run import stack_pairing, train_command
 from grainwright.trainer.schemes.neighbor2neighbor_stack import (
     Neighbor2NeighborStack,
     adjacent_positions,
@@ -184,9 +184,9 @@ def test_half_size_training_windows_see_the_full_size_motion(tmp_path):
         frames[index, 12, 4 + speed * index] = 1.0
     config = {"scheme": "auto", "model": {"name": "unet-stack", "hyper": {"frames": 5}},
               "neighbor2neighbor": {"frame_stride": load_config(None)["neighbor2neighbor"]["frame_stride"]}}
-    stride = frame_stride(config)
+    stride = Neighbor2NeighborStack.stride_for(config)
     assert stride == Neighbor2NeighborStack.frame_stride == 2  # the default
-    assert frame_stride({**config, "neighbor2neighbor": {"frame_stride": 1}}) == 1  # still stacks and volumes
+    assert Neighbor2NeighborStack.stride_for({**config, "neighbor2neighbor": {"frame_stride": 1}}) == 1  # still
     sample = stack_windows(tmp_path / "s.tif", frames, 5, stride)[5]["noisy"]  # centre frame 5: frames 1, 3 .. 9
     first = (2 * np.arange(size // 2)[:, None]) * size + 2 * np.arange(size // 2)[None, :]  # the input grid, phase 0
     window = torch.from_numpy(np.ascontiguousarray(sample.transpose(2, 0, 1)[None]))
@@ -228,8 +228,8 @@ def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, case):
     published adjacent pairing (which is why `auto` takes the blind one when banding is flagged and left)."""
     noise, chosen, used, steps = PURE_NOISE_CASES[case]
     data = _write_stacks(tmp_path / "data", **noise)
-    summary, run = train_command(None, str(data), steps=steps, out=str(tmp_path / "run"),
-                                 assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0",
+    summary, run = train_command(None, str(data), scheme="neighbor2neighbor-stack", steps=steps,
+                                 out=str(tmp_path / "run"), assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0",
                                                      f'neighbor2neighbor.stack_pairing="{chosen}"'],
                                  announce=lambda message: None)
     assert summary["stack_pairing"] == used

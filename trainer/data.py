@@ -174,9 +174,7 @@ def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int
     (``neighbor2neighbor-stack``) takes s = 2, so that the motion between neighbouring frames of the window, in
     its half-size pixels, is what the model meets between consecutive frames at full size."""
     count = frames.shape[0]
-    if count < stack_frames + 1:
-        raise InputError(path, f"has {count} frame(s); a {stack_frames}-frame model trains on stacks of at least "
-                         f"{stack_frames + 1} frames")
+    check_stack_length(path, count, stack_frames)
     period = 2 * (count - 1)  # mirror reflection about both end frames, repeated as numpy.pad(mode="reflect")
 
     def window(centre: int) -> np.ndarray:
@@ -187,10 +185,18 @@ def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int
     return [{"noisy": window(i), "noisy_b": window(i + stack_frames)} for i in range(count - stack_frames)]
 
 
-def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1,
-                 frame_stride: int = 1) -> list[dict[str, np.ndarray]] | None:
-    """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields, or None (with
-    a warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
+def check_stack_length(path: Path, count: int, stack_frames: int) -> None:
+    """Refuse a stack too short for pairs of ``stack_frames``-frame windows (``InputError`` naming the file)."""
+    if count < stack_frames + 1:
+        raise InputError(path, f"has {count} frame(s); a {stack_frames}-frame model trains on stacks of at least "
+                         f"{stack_frames + 1} frames")
+
+
+def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
+                 ) -> list[dict[str, np.ndarray]] | None:
+    """Read one sample's files; return one ``{role: (H, W, C) native array}`` per image it yields (for a
+    multi-frame model, ``stack_frames`` > 1, the whole stack ``{"noisy": (N, H, W, C)}``), or None (with a
+    warning) when a file cannot be read. Non-finite pixels and mismatched pairs are errors."""
     from grainwright.inference.images.imageio import read_frames
     from grainwright.inference.images.stacks import read_stack
 
@@ -202,7 +208,8 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
         warnings.warn(f"skipped {error}", stacklevel=3)
         return None
     if layout.name == "noisy-stacks" and stack_frames > 1:
-        return stack_windows(sample[0], arrays[0], stack_frames, frame_stride)
+        check_stack_length(sample[0], arrays[0].shape[0], stack_frames)
+        return [{"noisy": arrays[0]}]  # cut into windows once the scheme, and with it the frame stride, is chosen
     if layout.name == "noisy-stacks":
         frames = arrays[0]
         if frames.shape[0] < 2:
@@ -222,11 +229,11 @@ def _read_sample(layout: Layout, sample: tuple[Path, ...], stack_frames: int = 1
     return [dict(zip(layout.roles, images))]
 
 
-def read_layout(layout: Layout, patch_size: int, stack_frames: int = 1,
-                frame_stride: int = 1) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
+def read_layout(layout: Layout, patch_size: int, stack_frames: int = 1
+                ) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
     """Read every sample of ``layout`` in native values; skip files that cannot be read, with a warning.
-    ``stack_frames`` > 1 (a multi-frame model) turns each stack into :func:`stack_windows` of every
-    ``frame_stride``-th frame.
+    ``stack_frames`` > 1 (a multi-frame model) keeps each stack whole, ``{"noisy": (N, H, W, C)}``, for
+    :func:`stack_windows` to cut once the scheme's frame stride is known.
 
     Returns the images (one ``{role: array}`` per image) and the file each came from.
 
@@ -239,21 +246,22 @@ def read_layout(layout: Layout, patch_size: int, stack_frames: int = 1,
     images: list[dict[str, np.ndarray]] = []
     sources: list[Path] = []
     for sample in layout.samples:
-        read = _read_sample(layout, sample, stack_frames, frame_stride)
+        read = _read_sample(layout, sample, stack_frames)
         if read is None:
             continue
         images.extend(read)
         sources.extend([sample[0]] * len(read))
     if not images:
         raise InputError(layout.root, "none of the images could be read")
-    channels = images[0][layout.roles[0]].shape[2]
+    channels = images[0][layout.roles[0]].shape[-1]
     for item, source in zip(images, sources):
         array = item[layout.roles[0]]
-        if array.shape[2] != channels:
-            raise InputError(source, f"has {array.shape[2]} channels, but {sources[0]} has {channels}; all "
+        height, width = array.shape[-3:-1]  # an image (H, W, C) or a whole stack (N, H, W, C)
+        if array.shape[-1] != channels:
+            raise InputError(source, f"has {array.shape[-1]} channels, but {sources[0]} has {channels}; all "
                              "training images need the same channel count")
-        if min(array.shape[:2]) < patch_size:
-            raise InputError(source, f"is {array.shape[1]}x{array.shape[0]} pixels, smaller than the patch size "
+        if min(height, width) < patch_size:
+            raise InputError(source, f"is {width}x{height} pixels, smaller than the patch size "
                              f"{patch_size} (lower data.patch_size)")
     return images, sources
 

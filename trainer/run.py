@@ -35,11 +35,14 @@ from grainwright.trainer.data import (
     read_layout,
     split_by_image,
     split_single_image,
+    stack_windows,
 )
 from grainwright.trainer.loop import TrainingSetup, fastest_step, train
+from grainwright.trainer.schemes.recorrupted_stack import frame_noise_correlation
 from grainwright.trainer.schemes.registry import (
     check_scheme_fits,
     choose_scheme,
+    choose_stack_scheme,
     scheme_class,
 )
 from grainwright.trainer.start import (
@@ -119,22 +122,26 @@ def _analyse_noise(images: list[np.ndarray], normalization: Any) -> NoiseFinding
     return NoiseFindings(np.array([analysis.sigma for analysis in analyses]), found, flags)
 
 
-def _correct_fixed_pattern(images: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> None:
+def _correct_fixed_pattern(images: list[dict[str, np.ndarray]]) -> None:
+    """The row/column correction of every noisy image, frame by frame for whole stacks ``(N, H, W, C)``."""
     from grainwright.inference.noise.estimation import correct_fixed_pattern
 
     for item in images:
-        for role in roles:
+        for role, array in item.items():
             if role != "clean":
-                item[role] = correct_fixed_pattern(item[role])
+                item[role] = (np.stack([correct_fixed_pattern(frame) for frame in array]) if array.ndim == 4
+                              else correct_fixed_pattern(array))
 
 
 @dataclass
 class _TrainingImages:
-    """The training data as read: layout, images (native units, one dict of roles per sample), their range, the
-    noise description given or estimated, and what the analysis of the noisy images found."""
+    """The training data as read: layout, images (native units, one dict of roles per sample; a multi-frame
+    model's whole stacks ``{"noisy": (N, H, W, C)}``), the file each came from, their range, the noise
+    description given or estimated, and what the analysis of the noisy images (frames) found."""
 
     layout: Layout
     images: list[dict[str, np.ndarray]]
+    sources: list[Path]
     normalization: Any
     channels: int
     noise: Any
@@ -156,34 +163,26 @@ def _read_training_images(config: dict[str, Any], announce: Callable[[str], None
     noise, noise_path = _noise_description(config, layout.root)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        images, _ = read_layout(layout, data_cfg["patch_size"], stack_frames=frames, frame_stride=frame_stride(config))
+        images, sources = read_layout(layout, data_cfg["patch_size"], stack_frames=frames)
     for warning in caught:
         announce(f"warning: {warning.message}")
-    native = [item[role] for item in images for role in layout.roles]
-    channels = native[0].shape[2] // frames  # a multi-frame model's windows hold its K frames side by side
+    native = [array for item in images for array in item.values()]
+    channels = native[0].shape[-1]
     stacked = np.concatenate([array.reshape(1, -1, channels) for array in native], axis=1)
     normalization = Normalization.for_array(stacked, data_cfg["bit_depth"] or None)
     del stacked
-    # The noise of the noisy images: level (native units for the summary, working units for the schemes), model,
-    # flags.
-    noisy_native = [item[role] for item in images for role in layout.roles if role != "clean"]
+    # The noise of the noisy images (of a stack's frames): level (native units for the summary, working units for
+    # the schemes), model, flags.
+    noisy_native = [frame for item in images for role, array in item.items() if role != "clean"
+                    for frame in (array if array.ndim == 4 else [array])]
     findings = _analyse_noise(noisy_native, normalization) if noisy_native else None
-    return _TrainingImages(layout, images, normalization, channels, noise, noise_path, findings)
+    return _TrainingImages(layout, images, sources, normalization, channels, noise, noise_path, findings)
 
 
 def stack_frames(config: dict[str, Any]) -> int:
     """K of the configured architecture: the frames a multi-frame model reads per output frame (else 1)."""
     hyper = {**hyper_defaults(config["model"]["name"]), **config["model"]["hyper"]}
     return int(hyper.get("frames", 1))
-
-
-def frame_stride(config: dict[str, Any]) -> int:
-    """Every how many frames the training windows of a multi-frame model take (the scheme's ``frame_stride``;
-    ``auto`` picks ``neighbor2neighbor-stack`` for multi-frame models, see :func:`_choose_scheme_and_noise`)."""
-    if stack_frames(config) == 1:
-        return 1
-    name = "neighbor2neighbor-stack" if config["scheme"] == "auto" else config["scheme"]
-    return scheme_class(name).stride_for(config)
 
 
 def training_stack_axis(config: dict[str, Any], layout: Layout) -> str:
@@ -215,9 +214,8 @@ def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, anno
     estimated = findings is not None and findings.confident and findings.kind in ("gaussian", "poisson-gaussian")
     name = config["scheme"]
     if name == "auto" and stack_frames(config) > 1:
-        name = "neighbor2neighbor-stack"
-        announce(f"scheme auto: found {LAYOUT_TEXT[layout.name]} and a multi-frame model: neighbor2neighbor-stack "
-                 "(every pixel in the loss, valid where the scene moves; noise2noise-stack for still scenes)")
+        # The candidate the noise model allows; _settle_stack_scheme decides, with the frames in working units.
+        name = "recorrupted-stack" if _trusted_noise(config, data) else "neighbor2neighbor-stack"
     if name == "auto":
         name, reason = choose_scheme(layout.name, data.noise is not None, estimated,
                                      None if findings is None else findings.found.describe())
@@ -237,6 +235,25 @@ def _choose_scheme_and_noise(config: dict[str, Any], data: _TrainingImages, anno
         announce(f"noise from the analysis of the training images: {findings.found.describe()}"
                  + ("" if findings.confident else "; the fit is uncertain"))
     return name
+
+
+def _trusted_noise(config: dict[str, Any], data: _TrainingImages) -> str | None:
+    """The noise model ``recorrupted-stack`` may rely on, in words, or None: Gaussian or Poisson-Gaussian noise
+    given in a noise description or fitted confidently by the analysis, with a working-range transform
+    (``data.transform``) that makes it Gaussian (``auto``, or the one its kind needs)."""
+    from grainwright.inference.noise.analysis import TRANSFORM_FOR_KIND
+
+    if data.noise_path is not None:
+        kind, origin = data.noise.kind, f"the noise description {data.noise_path.name}"
+    elif data.findings is not None and data.findings.confident:
+        kind, origin = data.findings.kind, "a confident fit to the training frames"
+    else:
+        return None
+    if kind not in ("gaussian", "poisson-gaussian"):
+        return None
+    if config["data"]["transform"] not in ("auto", TRANSFORM_FOR_KIND.get(kind, "none")):
+        return None
+    return f"{kind} noise from {origin}"
 
 
 def _working_range(config: dict[str, Any], scheme: str, data: _TrainingImages,
@@ -328,8 +345,45 @@ def _to_working(config: dict[str, Any], data: _TrainingImages,
         announce(f"warning: the {' and '.join(findings.flags)} flag is raised on the noisy images; every "
                  "self-supervised scheme assumes zero-mean noise independent from pixel to pixel, so the "
                  "row/column fixed-pattern correction is applied before training (see docs/limits.md)")
-    _correct_fixed_pattern(working, data.layout.roles)
+    _correct_fixed_pattern(working)
     return working, True
+
+
+def _banding_left(findings: NoiseFindings | None, corrected: bool) -> bool:
+    """Whether the noise analysis flagged banding and the row/column correction did not run."""
+    return findings is not None and "banding" in findings.flags and not corrected
+
+
+def _settle_stack_scheme(requested: str, config: dict[str, Any], candidate: str, data: _TrainingImages,
+                         working: list[dict[str, np.ndarray]], corrected: bool,
+                         announce: Callable[[str], None]) -> str:
+    """Stage 4b, ``auto`` with a multi-frame model: ``recorrupted-stack`` when its rule allows it (a trusted
+    noise model, no banding left, noise independent between frames, measured on the whole stacks in working
+    units), else ``neighbor2neighbor-stack`` (:func:`choose_stack_scheme`); announced with the reason. The
+    windows are cut afterwards, at the chosen scheme's frame stride. Any other request keeps ``candidate``."""
+    if requested != "auto" or stack_frames(config) == 1:
+        return candidate
+    trusted, banding_left = _trusted_noise(config, data), _banding_left(data.findings, corrected)
+    correlation = None
+    if trusted and not banding_left:
+        correlation = frame_noise_correlation([item["noisy"] for item in working], stack_frames(config))
+    name, reason = choose_stack_scheme(data.layout.name, trusted,
+                                       None if data.findings is None else data.findings.found.describe(),
+                                       banding_left, correlation, config["recorrupted"]["max_frame_correlation"])
+    announce(f"scheme auto: {reason}")
+    return name
+
+
+def _cut_windows(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
+                 sources: list[Path]) -> list[dict[str, np.ndarray]]:
+    """Stage 4c: a multi-frame model's whole stacks cut into pairs of K-frame windows (``stack_windows``) at the
+    chosen scheme's frame stride; single-frame images as they are."""
+    frames = stack_frames(config)
+    if frames == 1:
+        return working
+    stride = scheme_class(scheme).stride_for(config)
+    return [window for item, source in zip(working, sources)
+            for window in stack_windows(source, item["noisy"], frames, stride)]
 
 
 def stack_pairing(chosen: str, flags: list[str], corrected: bool) -> tuple[str, str]:
@@ -361,7 +415,7 @@ def _resolve_stack_pairing(config: dict[str, Any], scheme: str, findings: NoiseF
 def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
                 findings: NoiseFindings | None, corrected: bool, announce: Callable[[str], None]) -> dict[str, Any]:
     """The scheme's own check of the training data (``Scheme.check_data``); its figures, announced."""
-    banding_left = findings is not None and "banding" in findings.flags and not corrected
+    banding_left = _banding_left(findings, corrected)
     noisy = [item[role] for item in working for role in item if role != "clean"]
     figures = scheme_class(scheme).check_data(config, noisy, stack_frames(config), banding_left)
     for key, value in figures.items():
@@ -473,11 +527,13 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     data = _read_training_images(config, announce)
     layout = data.layout
     name = _choose_scheme_and_noise(config, data, announce)
-    config = dict(config, scheme=name)
+    requested, config = config["scheme"], dict(config, scheme=name)
     transform, transform_decided_by, sigma = _working_range(config, name, data, announce)
     working, fixed_pattern = _to_working(config, data, announce)
-    config = _resolve_stack_pairing(config, name, data.findings, fixed_pattern, announce)
+    name = _settle_stack_scheme(requested, config, name, data, working, fixed_pattern, announce)
+    config = _resolve_stack_pairing(dict(config, scheme=name), name, data.findings, fixed_pattern, announce)
     data_figures = _check_data(config, name, working, data.findings, fixed_pattern, announce)
+    working = _cut_windows(config, name, working, data.sources)
     train_images, validation_images = _split(config, working, announce)
     config = fit_start_config(config, data.channels)
     model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)

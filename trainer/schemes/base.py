@@ -71,8 +71,8 @@ class Scheme:
     def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool
                    ) -> dict[str, Any]:
         """Check that the training data suit the scheme before the model is built; raise ``ConfigError`` saying
-        what was found otherwise. ``noisy``: the noisy training images in working units (multi-frame windows
-        ``(H, W, K * C)``, frame-major), ``frames``: K, ``banding_left``: the noise analysis flagged banding and
+        what was found otherwise. ``noisy``: the noisy training images in working units (for multi-frame
+        schemes the whole stacks ``(N, H, W, C)``, before they are cut into windows), ``frames``: K, ``banding_left``: the noise analysis flagged banding and
         the row/column correction did not run. Returns figures for the training summary (none by default)."""
         return {}
 

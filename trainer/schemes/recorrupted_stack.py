@@ -40,7 +40,7 @@ from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.noise.estimation import interframe_noise_correlation
 from grainwright.trainer.schemes.base import Scheme, apply_model
 
-MEASURED_WINDOWS = 16  # windows whose frames' noise correlation is measured (the median is taken)
+MEASURED_PAIRS = 16  # frame pairs per offset whose noise correlation is measured (the median is taken)
 
 
 class RecorruptedStack(Scheme):
@@ -55,8 +55,8 @@ class RecorruptedStack(Scheme):
                    ) -> dict[str, Any]:
         """Refuse noise that the neighbours would hand to the network: banding left in the frames (not white, so
         the recorruption does not decorrelate it even in the centre frame) or noise correlated between frames
-        above ``recorrupted.max_frame_correlation`` (the largest, over the window's frames, of the median over
-        up to ``MEASURED_WINDOWS`` windows of its correlation with the centre frame)."""
+        above ``recorrupted.max_frame_correlation`` (:func:`frame_noise_correlation` of the stacks ``noisy``,
+        each ``(N, H, W, C)``)."""
         if banding_left:
             raise ConfigError("scheme 'recorrupted-stack': the noise analysis flags banding and the row/column "
                               "correction is off (data.fixed_pattern); banding repeated along rows reaches the "
@@ -88,18 +88,14 @@ class RecorruptedStack(Scheme):
 
 
 
-def frame_noise_correlation(noisy: list[np.ndarray], frames: int) -> float:
-    """The largest correlation of the noise of a window's centre frame with that of another of its frames: per
-    frame offset, the median over up to ``MEASURED_WINDOWS`` windows ``(H, W, K * C)`` spread over the list."""
-    channels = noisy[0].shape[2] // frames
-    centre = frames // 2
-    step = max(1, len(noisy) // MEASURED_WINDOWS)
-    chosen = noisy[::step][:MEASURED_WINDOWS]
-
-    def frame(window: np.ndarray, index: int) -> np.ndarray:
-        return window[:, :, index * channels:(index + 1) * channels]
-
-    per_offset = [np.median([interframe_noise_correlation(frame(window, centre), frame(window, index))
-                             for window in chosen])
-                  for index in range(frames) if index != centre]
+def frame_noise_correlation(stacks: list[np.ndarray], frames: int) -> float:
+    """The largest correlation of the noise of a frame with that of a frame up to ``frames // 2`` further along
+    its stack (the offsets of a ``frames``-frame window's frames from its centre): per offset, the median over up
+    to ``MEASURED_PAIRS`` frame pairs spread over the stacks ``(N, H, W, C)``."""
+    per_offset = []
+    for offset in range(1, frames // 2 + 1):
+        pairs = [(stack, index) for stack in stacks for index in range(stack.shape[0] - offset)]
+        step = max(1, len(pairs) // MEASURED_PAIRS)
+        per_offset.append(np.median([interframe_noise_correlation(stack[index], stack[index + offset])
+                                     for stack, index in pairs[::step][:MEASURED_PAIRS]]))
     return float(max(per_offset))

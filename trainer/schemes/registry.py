@@ -64,3 +64,35 @@ def check_scheme_fits(name: str, layout: str) -> None:
         fits = [scheme for scheme, c in SCHEMES.items() if layout in c.layouts]
         raise ConfigError(f"scheme '{name}' needs {' or '.join(LAYOUT_TEXT[l] for l in cls.layouts)}, but the data "
                           f"folder holds {LAYOUT_TEXT[layout]}; schemes that fit: {', '.join(fits)}")
+
+
+def choose_stack_scheme(layout: str, noise: str | None, found: str | None, banding_left: bool,
+                        correlation: float | None, limit: float) -> tuple[str, str]:
+    """The scheme ``auto`` picks for a multi-frame model, and why (one sentence).
+
+    ``recorrupted-stack`` (every pixel in the loss at full resolution, on consecutive frames) when its rule
+    allows it, else ``neighbor2neighbor-stack`` (needs no noise model; never shows the network a target position
+    in any frame). The rule: a trusted Gaussian or Poisson-Gaussian noise model (``noise``, in words: given in a
+    noise description or fitted confidently; None when there is none), no banding left uncorrected
+    (``banding_left``), and the noise of neighbouring frames correlated at most ``limit``
+    (``recorrupted.max_frame_correlation``; ``correlation`` is measured on the frames in working units, None
+    when the rule failed before it). ``found``: what the noise analysis found, in words, for the reason.
+    """
+    start = f"found {LAYOUT_TEXT[layout]} and a multi-frame model"
+    fallback = "neighbor2neighbor-stack (needs no noise model; valid where the scene moves)"
+    if noise is None:
+        analysis = f" (the analysis found {found})" if found else ""
+        return "neighbor2neighbor-stack", (f"{start}; no Gaussian or Poisson-Gaussian noise model could be "
+                                           f"trusted{analysis}: {fallback}")
+    if banding_left:
+        return "neighbor2neighbor-stack", (f"{start}; banding is flagged and left uncorrected (data.fixed_pattern), "
+                                           f"which recorrupted-stack would pass on through its target's own row: "
+                                           f"{fallback}")
+    if correlation is None or correlation > limit:
+        measured = "was not measured" if correlation is None else f"is correlated {correlation:.2f}"
+        return "neighbor2neighbor-stack", (f"{start}; the noise of neighbouring frames {measured} "
+                                           f"(recorrupted.max_frame_correlation = {limit:g}), so the neighbours "
+                                           f"would show the network its target's noise: {fallback}")
+    return "recorrupted-stack", (f"{start}; {noise}, independent between frames (correlation {correlation:.2f}, "
+                                 f"limit {limit:g}): recorrupted-stack (every pixel in the loss, at full resolution, "
+                                 "valid where the scene moves)")
