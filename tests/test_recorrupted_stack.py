@@ -203,3 +203,24 @@ def test_auto_picks_neighbor2neighbor_stack_for_banding_left_uncorrected(tmp_pat
     (data / "noise.toml").write_text(PG_NOISE_TOML)
     scheme, line = _auto_choice(data)  # TINY turns the row/column correction off
     assert scheme == "neighbor2neighbor-stack" and "banding is flagged and left uncorrected" in line, line
+
+
+def test_the_recorruption_strength_defaults_per_scheme(tmp_path):
+    """``recorrupted.alpha = "auto"`` (the default) stands for each scheme's measured best: 0.3 single-frame, 1.0
+    for K-frame windows; a number applies to both; the run records the strength it used."""
+    from grainwright.trainer.run import prepare
+    from grainwright.trainer.schemes.recorrupted import Recorrupted
+
+    config = load_config(None)
+    assert config["recorrupted"]["alpha"] == "auto"
+    assert Recorrupted.alpha_for(config) == 0.3 and RecorruptedStack.alpha_for(config) == 1.0
+    given = load_config(None, ["recorrupted.alpha=0.5"])
+    assert Recorrupted.alpha_for(given) == RecorruptedStack.alpha_for(given) == 0.5
+    with pytest.raises(ConfigError, match="recorrupted.alpha: expected a number or \"auto\""):
+        load_config(None, ['recorrupted.alpha="high"'])
+    data = _write_stacks(tmp_path / "data", False, size=48)
+    (data / "noise.toml").write_text(PG_NOISE_TOML)
+    lines = []
+    setup, _, _ = prepare(load_config(None, [*TINY, f'data.folder="{data.as_posix()}"']), lines.append)
+    assert setup.config["recorrupted"]["alpha"] == setup.summary["recorrupted_alpha"] == 1.0
+    assert any(line.startswith("recorruption strength: alpha 1") for line in lines), lines

@@ -412,6 +412,17 @@ def _resolve_stack_pairing(config: dict[str, Any], scheme: str, findings: NoiseF
     return dict(config, neighbor2neighbor=dict(table, stack_pairing=pairing))
 
 
+def _resolve_alpha(config: dict[str, Any], scheme: str, announce: Callable[[str], None]) -> dict[str, Any]:
+    """The config with ``recorrupted.alpha`` resolved from ``auto`` to the scheme's default (Recorrupted-to-
+    Recorrupted schemes only), so that the run's config.toml records the strength used."""
+    cls, table = scheme_class(scheme), config["recorrupted"]
+    if cls.default_alpha is None or table["alpha"] != "auto":
+        return config
+    announce(f"recorruption strength: alpha {cls.default_alpha:g} (recorrupted.alpha = \"auto\": the {scheme} "
+             "default)")
+    return dict(config, recorrupted=dict(table, alpha=cls.alpha_for(config)))
+
+
 def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
                 findings: NoiseFindings | None, corrected: bool, announce: Callable[[str], None]) -> dict[str, Any]:
     """The scheme's own check of the training data (``Scheme.check_data``); its figures, announced."""
@@ -532,6 +543,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     working, fixed_pattern = _to_working(config, data, announce)
     name = _settle_stack_scheme(requested, config, name, data, working, fixed_pattern, announce)
     config = _resolve_stack_pairing(dict(config, scheme=name), name, data.findings, fixed_pattern, announce)
+    config = _resolve_alpha(config, name, announce)
     data_figures = _check_data(config, name, working, data.findings, fixed_pattern, announce)
     working = _cut_windows(config, name, working, data.sources)
     train_images, validation_images = _split(config, working, announce)
@@ -570,6 +582,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["stack_axis"] = training_stack_axis(config, layout)
     if name == "neighbor2neighbor-stack":
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
+    if scheme_class(name).default_alpha is not None:
+        summary["recorrupted_alpha"] = config["recorrupted"]["alpha"]
     summary.update(data_figures)
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),

@@ -37,6 +37,9 @@ class Scheme:
     frame_stride : int
         For multi-frame schemes: the training windows take every ``frame_stride``-th frame of a stack (1: K
         consecutive frames, as at run time); a scheme may let a config key override it (``stride_for``).
+    default_alpha : float or None
+        For Recorrupted-to-Recorrupted schemes: the recorruption strength ``recorrupted.alpha = "auto"`` stands
+        for (the scheme's measured best; :meth:`alpha_for`); None for schemes that do not recorrupt.
     clean_targets : bool
         True when the network learns clean targets; False when it learns noisy ones (its output then estimates
         the mean of the noisy data in the working domain, which the log domain's inverse must unbias).
@@ -51,6 +54,7 @@ class Scheme:
     clean_targets: bool = False
     multi_frame: bool = False
     frame_stride: int = 1
+    default_alpha: float | None = None
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
                  level_maps: bool = True):
@@ -66,6 +70,13 @@ class Scheme:
     def stride_for(cls, config: dict[str, Any]) -> int:
         """The frame stride of the training windows under ``config`` (default: the class's ``frame_stride``)."""
         return cls.frame_stride
+
+    @classmethod
+    def alpha_for(cls, config: dict[str, Any]) -> float:
+        """The recorruption strength under ``config``: ``recorrupted.alpha``, or the scheme's ``default_alpha``
+        when it is ``"auto"``."""
+        alpha = config["recorrupted"]["alpha"]
+        return float(cls.default_alpha if alpha == "auto" else alpha)
 
     @classmethod
     def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool

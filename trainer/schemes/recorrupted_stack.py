@@ -24,7 +24,10 @@ target position in any frame (``tests/test_stack_training.py`` trains on pure-no
 
 Noise must be Gaussian in the working domain (Poisson-Gaussian data go through the generalized Anscombe
 transform, as for the single-frame ``recorrupted``), of known or confidently estimated level. The network learns
-noise ``sqrt(1 + alpha^2)`` times the real level (``recorrupted.alpha``, as for ``recorrupted``).
+noise ``sqrt(1 + alpha^2)`` times the real level (``recorrupted.alpha``, as for ``recorrupted``). Its default
+(``auto``) is 1.0, not the single-frame 0.3: the K-frame model can average the input's extra noise down over the
+window, so it pays less for noisier inputs and gains more from cleaner targets (noise ``sigma / alpha``); at fixed
+steps on the generated sequence 1.0 beat 0.5 by 0.5 dB and 0.3 by 1.2 dB (docs/benchmarks.md).
 
 Each training sample holds two windows of the same stack K frames apart (``noisy`` and ``noisy_b``); one of them
 is drawn per patch, so every frame serves as a centre.
@@ -49,6 +52,7 @@ class RecorruptedStack(Scheme):
     multi_frame = True
     needs_noise_level = True
     forward_passes_per_pixel = 3.0
+    default_alpha = 1.0  # measured best of 0.3 / 0.5 / 1.0 for a K = 5 model (docs/benchmarks.md)
 
     @classmethod
     def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool
@@ -74,7 +78,7 @@ class RecorruptedStack(Scheme):
         n, channels = patches["noisy"].shape[:2]
         other = (rng.random(n) < 0.5)[:, None, None, None]
         window = np.where(other, patches["noisy_b"], patches["noisy"])
-        alpha = self.config["recorrupted"]["alpha"]
+        alpha = self.alpha_for(self.config)
         frame_channels = self.sigma.shape[1]
         sigma = np.tile(self.sigma, (1, channels // frame_channels, 1, 1))  # frame-major: the same per frame
         z = rng.standard_normal(window.shape, dtype=np.float32) * sigma
