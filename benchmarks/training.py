@@ -127,6 +127,17 @@ def make_folders(work: Path, case: str, seed: int, labels: list[str] | None = No
     return {"root": root, "clean": held_out, "noisy": noisy}
 
 
+def train_on_scored(made: dict[str, Any]) -> None:
+    """Make the noisy-only folder hold the noisy scored images themselves (the very arrays scored; never their
+    clean versions) instead of the training images: the case where the frames to denoise are the training data."""
+    from grainwright.inference.images.imageio import write_image
+
+    folder = made["root"] / "noisy-only" / "noisy"
+    shutil.rmtree(folder)
+    for name, noisy in made["noisy"].items():
+        write_image(folder / f"scored-{name}.npy", np.asarray(noisy[..., None], dtype=np.float32))
+
+
 def case_baselines(case: str) -> tuple[str, ...]:
     """The classical baselines the case's opponent is the per-image best of (default ``SEARCH_BASELINES``)."""
     return tuple(CASES[case].get("baselines", SEARCH_BASELINES))
@@ -226,8 +237,10 @@ def score_run(run_dir: Path, images: dict[str, tuple[np.ndarray, np.ndarray]], t
 
 
 def common_settings(args: argparse.Namespace) -> list[str]:
-    """The ``--set`` overrides every benchmark run gets, after the user's own."""
-    return list(args.set or []) + [f"threads={args.threads}", f"seed={args.seed}", "logging.progress=false"]
+    """The ``--set`` overrides every benchmark run gets (the user's own may change the validation split)."""
+    regions = ['data.validation_split="regions"'] if getattr(args, "train_on_scored", False) else []
+    return regions + list(args.set or []) + [f"threads={args.threads}", f"seed={args.seed}",
+                                             "logging.progress=false"]
 
 
 def train_scheme(folder: Path, scheme: str | None, out: Path, minutes: float, args: argparse.Namespace) -> dict[str, Any]:
@@ -369,10 +382,16 @@ def run_bench(args: argparse.Namespace) -> int:
 
     cases = [case.strip() for case in args.cases.split(",") if case.strip()]
     gaussian_schemes = tuple(s.strip() for s in args.schemes.split(",") if s.strip())
+    scored = getattr(args, "train_on_scored", False)
     for case in cases:  # a misspelt case or scheme fails here, before minutes of data and opponent tuning
         if case not in CASES:
             raise ConfigError(f"--cases: unknown case {case!r}; known: {', '.join(CASES)}")
-        case_schemes(case, gaussian_schemes, getattr(args, "only_schemes", None))
+        needing_pairs = [scheme for scheme in case_schemes(case, gaussian_schemes, getattr(args, "only_schemes", None))
+                         if scheme in ("supervised", "noise2noise")]
+        if scored and needing_pairs:
+            raise ConfigError(f"--train-on-scored: {', '.join(needing_pairs)} in case {case} need clean images or "
+                              "noisy pairs the scored images do not have; choose noisy-images-only schemes "
+                              "(--schemes / --only-schemes)")
     saved = Path(args.json) if args.json else None
     results: dict[str, Any] = json.loads(saved.read_text()) if saved and saved.is_file() else {"cases": {}}
     resolved = load_config(args.config, common_settings(args))
@@ -382,6 +401,8 @@ def run_bench(args: argparse.Namespace) -> int:
                 "model": resolved["model"]["name"], "hyper": resolved["model"]["hyper"],
                 "patch_size": resolved["data"]["patch_size"], "batch_size": resolved["data"]["batch_size"],
                 "train_images": training_labels(args.half_scale), "test_images": list(TEST_IMAGES)}
+    if scored:  # the key only when given, so that earlier results files stay valid for the usual protocol
+        settings["train_on_scored"] = True
     if results.get("settings", settings) != settings:
         differing = sorted(key for key in settings.keys() | results["settings"].keys()
                            if settings.get(key) != results["settings"].get(key))
@@ -399,6 +420,8 @@ def run_bench(args: argparse.Namespace) -> int:
         for case in cases:
             print(f"== {CASES[case]['label']}", flush=True)
             made = make_folders(work, case, args.seed, settings["train_images"])
+            if scored:
+                train_on_scored(made)
             images = {name: (made["clean"][name][..., None], made["noisy"][name][..., None]) for name in TEST_IMAGES}
             record = results["cases"].setdefault(case, {"label": CASES[case]["label"], "psnr": {}, "training": {}})
             rows = record["psnr"]

@@ -185,3 +185,13 @@ def test_validation_split_is_by_whole_image():
     part, rest = split_single_image(image, 0.2, 16)
     assert part["noisy"].shape == (80, 60, 1) and rest["noisy"].shape == (20, 60, 1)
     assert split_single_image(image, 0.2, 90)[1] is None
+
+
+def test_region_split_of_a_stack_window_cuts_rows_or_columns_never_frames():
+    window = {"noisy": np.arange(5 * 100 * 60, dtype=np.float32).reshape(5, 100, 60, 1)}
+    part, rest = split_single_image(window, 0.2, 16)
+    assert part["noisy"].shape == (5, 80, 60, 1) and rest["noisy"].shape == (5, 20, 60, 1)
+    np.testing.assert_array_equal(np.concatenate([part["noisy"], rest["noisy"]], axis=1), window["noisy"])
+    wide = {"noisy": np.zeros((5, 60, 100, 1), np.float32)}
+    part, rest = split_single_image(wide, 0.2, 16)
+    assert part["noisy"].shape == (5, 60, 80, 1) and rest["noisy"].shape == (5, 60, 20, 1)

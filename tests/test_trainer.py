@@ -117,6 +117,16 @@ def test_a_completed_budget_keeps_its_final_state_as_best_unless_told_otherwise(
 
 
 @pytest.mark.slow
+def test_region_split_holds_out_a_strip_of_every_image(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    summary, _ = train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "run"),
+                               announce=_quiet, assignments=TINY + ["data.validation_split=\"regions\""])
+    assert summary["training_images"] == 4 and summary["validation_images"] == 4
+    summary, _ = train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "whole"),
+                               announce=_quiet, assignments=TINY)
+    assert summary["training_images"] == 3 and summary["validation_images"] == 1
+
+
 def test_resume_continues_exactly(tmp_path):
     folder = _noisy_folder(tmp_path / "data")
     settings = TINY + ["model.channels_last=true"]

@@ -227,3 +227,40 @@ def test_a_misspelt_case_or_scheme_is_refused_before_any_work(tmp_path):
         with pytest.raises(ConfigError, match=message):
             run_bench(args)
         assert not (tmp_path / "work").exists()
+
+
+def test_training_on_the_scored_images_uses_their_noisy_arrays_only_and_a_strip_of_each(tmp_path, monkeypatch):
+    from grainwright.benchmarks import training as bench
+    from grainwright.inference.images.imageio import read_image
+
+    original = bench.sample_image
+    monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
+    monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass"))
+    monkeypatch.setattr(bench, "SEARCH_BASELINES", ("tv",))
+    saved = tmp_path / "bench.json"
+    args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="recorrupted", json=str(saved),
+                              config="noisy-only", set=["data.batch_size=4", "logging.tensorboard=false",
+                                                        'model.precision="float32"'],
+                              seed=0, threads=1, minutes_per_scheme=10.0, steps_per_scheme=4, throughput=False,
+                              half_scale=False, train_on_scored=True)
+    assert run_bench(args) == 0
+    results = json.loads(saved.read_text())
+    assert results["settings"]["train_on_scored"] is True
+    made = bench.make_folders(tmp_path / "again", "gaussian", 0, ["brick", "grass"])  # the same noise, seeded
+    folder = tmp_path / "work" / "gaussian" / "noisy-only" / "noisy"
+    assert sorted(path.name for path in folder.iterdir()) == [f"scored-{name}.npy" for name in sorted(TEST_IMAGES)]
+    for name in TEST_IMAGES:
+        np.testing.assert_array_equal(read_image(folder / f"scored-{name}.npy")[..., 0], made["noisy"][name])
+    training = results["cases"]["gaussian"]["training"]["recorrupted"]
+    assert training["steps"] == 4 and training["selection"]["frames"] == len(TEST_IMAGES)
+    config = (tmp_path / "work" / "runs" / "gaussian-recorrupted" / "config.toml").read_text()
+    assert 'validation_split = "regions"' in config
+
+
+def test_training_on_the_scored_images_refuses_schemes_that_need_clean_images_or_pairs(tmp_path):
+    args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="supervised,recorrupted",
+                              json=str(tmp_path / "bench.json"), config="noisy-only", set=[], seed=0, threads=1,
+                              minutes_per_scheme=0.1, throughput=False, half_scale=False, train_on_scored=True)
+    with pytest.raises(ConfigError, match="--train-on-scored: supervised"):
+        run_bench(args)
+    assert not (tmp_path / "work").exists()

@@ -80,8 +80,14 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
         "skip_flat": Key("bool", False, "Redraw patches whose standard deviation is below `data.flat_level`."),
         "flat_level": Key("float", 0.005, "Standard deviation (working units, fraction of range) below which "
                           "a patch counts as flat background.", 0.0, 1.0),
-        "validation_fraction": Key("float", 0.2, "Share of the images held out for validation (split by image; "
-                                   "a single image is split into two regions).", 0.0, 0.9),
+        "validation_fraction": Key("float", 0.2, "Share held out for validation: of the images, or of each "
+                                   "image's rows with `data.validation_split = \"regions\"`.", 0.0, 0.9),
+        "validation_split": Key("choice", "images", "What is held out for validation and the never-worse "
+                                "check: `images` = whole images (a single image is split into two regions); "
+                                "`regions` = the last rows (columns, if wider than tall) of every image, so that "
+                                "every image trains and the check sees every kind of frame: for a few unlike "
+                                "frames, or when the frames to denoise are the training frames.",
+                                choices=("images", "regions")),
         "bit_depth": Key("int", 0, "Effective bit depth of integer data; 0 = detect from the data.", 0, 16),
         "fixed_pattern": Key("choice", "auto", "Row/column fixed-pattern correction before training: `auto` = "
                              "when the banding or correlation flag is raised.", choices=("auto", "always", "never")),

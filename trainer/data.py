@@ -276,10 +276,12 @@ def split_by_image(count: int, fraction: float, rng: np.random.Generator) -> tup
 
 def split_single_image(image: dict[str, np.ndarray], fraction: float,
                        patch_size: int) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray] | None]:
-    """Split one image into a training region and a held-out region (the last rows, or columns when the image
-    is wider than tall) when both stay at least one patch large; else no validation."""
+    """Split one image (or stack window: the last three axes are H, W, C) into a training region and a
+    held-out region (the last rows, or columns when the image is wider than tall) when both stay at least one
+    patch large; else no validation."""
     array = next(iter(image.values()))
-    axis = 1 if array.shape[1] > array.shape[0] else 0
+    height, width = array.shape[-3:-1]
+    axis = array.ndim - 2 if width > height else array.ndim - 3
     length = array.shape[axis]
     held = max(patch_size, int(round(length * fraction)))
     if fraction <= 0 or length - held < patch_size:

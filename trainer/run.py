@@ -436,15 +436,20 @@ def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.
 
 def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
            ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]]]:
-    """Stage 5: training and validation images, split by image; a single image is split into two regions."""
+    """Stage 5: training and validation images, split by whole image (``data.validation_split = "images"``;
+    a single image is split into two regions) or by region of every image (``"regions"``)."""
     data_cfg = config["data"]
-    rng = np.random.default_rng(config["seed"])
-    if len(working) == 1:
-        train_part, validation_part = split_single_image(working[0], data_cfg["validation_fraction"],
-                                                         data_cfg["patch_size"])
-        train_images, validation_images = [train_part], [] if validation_part is None else [validation_part]
+    fraction, patch_size = data_cfg["validation_fraction"], data_cfg["patch_size"]
+    if len(working) == 1 or data_cfg["validation_split"] == "regions":
+        parts = [split_single_image(item, fraction, patch_size) for item in working]
+        train_images = [train_part for train_part, _ in parts]
+        validation_images = [held for _, held in parts if held is not None]
+        if validation_images and len(validation_images) < len(working):
+            announce(f"validation: {len(working) - len(validation_images)} of {len(working)} images too small "
+                     f"to keep a held-out region of {patch_size} pixels; they train whole")
     else:
-        train_index, validation_index = split_by_image(len(working), data_cfg["validation_fraction"], rng)
+        rng = np.random.default_rng(config["seed"])
+        train_index, validation_index = split_by_image(len(working), fraction, rng)
         train_images = [working[i] for i in train_index]
         validation_images = [working[i] for i in validation_index]
     if not validation_images:

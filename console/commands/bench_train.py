@@ -31,6 +31,11 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="override a config key for every scheme (repeatable), e.g. model.hyper.width=32")
     parser.add_argument("--half-scale", action="store_true",
                         help="also train on half-size copies (2x2 means) of the training images of at least 384 px")
+    parser.add_argument("--train-on-scored", action="store_true",
+                        help="train the noisy-images-only schemes on the noisy scored images themselves (never "
+                        "their clean versions) instead of the training images, a strip of each held out for the "
+                        "never-worse check (data.validation_split = \"regions\"): the case where the frames to "
+                        "denoise are the training data")
     parser.add_argument("--no-throughput", dest="throughput", action="store_false",
                         help="skip the loop-vs-bare throughput measurement")
     parser.add_argument("--threads", type=int, default=0, metavar="N", help="torch threads (0 = physical cores)")
