@@ -201,3 +201,32 @@ def test_colour_data_fine_tune_the_grayscale_starting_model_channel_by_channel(t
                                  assignments=SMALL)
     assert summary["started_from"]["weights"] == "starting-model"
     assert load_checkpoint(run.best)["hyper"]["per_channel"] is True
+
+
+def test_the_poisson_gaussian_selection_scores_the_error_before_the_transform():
+    # Luisier, Blu and Unser (IEEE TIP 2011), first order: a run trained after the generalized Anscombe transform is
+    # judged by the mean squared error of the whole chain (transform, network, inverse) on the untransformed values,
+    # where the images' PSNR is measured. A fixed 5 x 5 box blur stands in for the network; the truth is computed
+    # with the clean frame (scikit-image's camera).
+    from types import SimpleNamespace
+
+    from grainwright.inference.images.normalization import Normalization
+    from grainwright.trainer.start import CRITERIA, criterion_for, heldout_score
+
+    gain, read = 0.01, 0.02
+    normalization = Normalization("float32", None, 0.0, 1.0, 1).with_anscombe(gain, read)
+    clean = 0.1 + 0.8 * data.camera()[128:384, 128:384, None].astype(np.float64) / 255
+    rng = np.random.default_rng(4)
+    noisy = gain * rng.poisson(clean / gain) + read * rng.standard_normal(clean.shape)
+    working = normalization.to_working(noisy)
+    blur = torch.nn.Conv2d(1, 1, 5, padding=2, padding_mode="reflect", bias=False)
+    torch.nn.init.constant_(blur.weight, 1 / 25)
+    scheme = SimpleNamespace(sigma=np.array([1.0]), noise_level=lambda batch: None)
+    frames = [{"noisy": working}]
+    criterion = criterion_for(frames, normalization, SimpleNamespace(kind="poisson-gaussian"), scheme)
+    assert criterion == "sure-poisson-gaussian" and CRITERIA[criterion].startswith("MC-SURE")
+    score = heldout_score(blur, frames, criterion, scheme, seed=0, normalization=normalization)
+    with torch.no_grad():
+        output = blur(torch.from_numpy(working.transpose(2, 0, 1)[None].copy()))[0].numpy().transpose(1, 2, 0)
+    true = float(np.mean((normalization.from_working_float(output).astype(np.float64) - clean) ** 2))
+    assert score == pytest.approx(true, rel=0.03)

@@ -319,7 +319,8 @@ class _Training:
         scores = {}
         for name, state in states.items():
             scorer.load_state_dict(state)
-            scores[name] = heldout_score(scorer, setup.heldout, criterion, setup.scheme, self.config["seed"])
+            scores[name] = heldout_score(scorer, setup.heldout, criterion, setup.scheme, self.config["seed"],
+                                         setup.normalization)
         kept = "fine-tuned" if scores["end"] < scores["start"] else "start"
         self.selection = {"criterion": CRITERIA[criterion], "start": scores["start"], "fine_tuned": scores["end"],
                           "kept": kept, "frames": len(setup.heldout)}

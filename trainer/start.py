@@ -12,7 +12,11 @@ Selection: a run that started from trained weights scores its starting state and
 held-out noisy frames by a criterion that needs no ground truth, and keeps the better one as ``best.pt``:
 
 - Monte-Carlo SURE (Stein 1981; Ramani, Blu and Unser, IEEE TIP 2008) where the noise is Gaussian of known level
-  in the working domain (Gaussian noise, or Poisson-Gaussian noise after the generalized Anscombe transform);
+  in the working domain (Gaussian noise);
+- for Poisson-Gaussian noise (trained after the generalized Anscombe transform), its first-order extension to
+  mixed Poisson-Gaussian noise (Luisier, Blu and Unser, IEEE TIP 2011) on the values before the transform, where
+  the images' PSNR is measured: SURE in the Anscombe domain weighs dark pixels more than the PSNR does, and chose
+  fine-tuned states that were worse on the untransformed values (docs/benchmarks.md);
 - the J-invariant loss (Batson and Royer 2019; the true error plus the noise variance in expectation) otherwise
   (log-domain speckle, whose log is skewed, or noise of unknown level);
 - the mean squared error against the clean frames when the layout has ground truth.
@@ -39,7 +43,8 @@ EARLIER_RUN = "earlier run"
 HELDOUT_EDGE = 512
 HELDOUT_FRAMES = 8
 # Label of each criterion in the summary line and training-summary.json.
-CRITERIA = {"sure": "MC-SURE", "j-invariant": "J-invariant loss", "ground-truth": "MSE against ground truth"}
+CRITERIA = {"sure": "MC-SURE", "sure-poisson-gaussian": "MC-SURE, Poisson-Gaussian, before the transform",
+            "j-invariant": "J-invariant loss", "ground-truth": "MSE against ground truth"}
 
 
 def fit_start_config(config: dict[str, Any], channels: int) -> dict[str, Any]:
@@ -194,13 +199,14 @@ def heldout_frames(images: list[dict[str, np.ndarray]], alignment: int, scheme: 
 
 
 def criterion_for(frames: list[dict[str, np.ndarray]], normalization: Any, noise: Any, scheme: Any) -> str:
-    """``ground-truth`` with clean frames; ``sure`` where the noise is Gaussian of known level in the working
-    domain (Gaussian noise, or Poisson-Gaussian after the Anscombe transform); else ``j-invariant``."""
+    """``ground-truth`` with clean frames; ``sure-poisson-gaussian`` after the Anscombe transform; ``sure`` where
+    the noise is Gaussian of known level in the working range; else ``j-invariant``."""
     if frames and "clean" in frames[0]:
         return "ground-truth"
     transform = (normalization.transform or {}).get("kind")
-    kind = getattr(noise, "kind", None)
-    gaussian = (transform == "anscombe") or (transform is None and kind == "gaussian")
+    if transform == "anscombe":
+        return "sure-poisson-gaussian"
+    gaussian = transform is None and getattr(noise, "kind", None) == "gaussian"
     return "sure" if gaussian and scheme.sigma is not None else "j-invariant"
 
 
@@ -216,12 +222,33 @@ def _denoiser(model: torch.nn.Module, scheme: Any) -> Callable[[np.ndarray], np.
     return denoise
 
 
+def _before_the_transform(denoise: Callable[[np.ndarray], np.ndarray], noisy: np.ndarray, transform: dict[str, Any]
+                          ) -> tuple[Callable[[np.ndarray], np.ndarray], np.ndarray]:
+    """A working-domain denoiser and noisy frame seen before the Anscombe transform (fractions of the native
+    range): the transform, the denoiser and the runtime's inverse chained, and the frame's untransformed values
+    (the algebraic inverse undoes the transform of the noisy values exactly)."""
+    from grainwright.inference.images.transforms import (
+        anscombe_forward,
+        anscombe_inverse_algebraic,
+        anscombe_inverse_exact,
+    )
+
+    gain, read, offset, scale = (transform[key] for key in ("gain", "read", "offset", "scale"))
+
+    def chained(linear: np.ndarray) -> np.ndarray:
+        working = (anscombe_forward(linear, gain, read) - offset) / scale
+        return anscombe_inverse_exact(np.asarray(denoise(working), np.float64) * scale + offset, gain, read)
+
+    return chained, anscombe_inverse_algebraic(np.asarray(noisy, np.float64) * scale + offset, gain, read)
+
+
 def heldout_score(model: torch.nn.Module, frames: list[dict[str, np.ndarray]], criterion: str, scheme: Any,
-                  seed: int) -> float:
-    """Mean over ``frames`` of the criterion (an estimate of the mean squared error in working units, or the
-    J-invariant loss; lower is better) for ``model`` in evaluation mode."""
+                  seed: int, normalization: Any = None) -> float:
+    """Mean over ``frames`` of the criterion (an estimate of the mean squared error in working units, or before
+    the Anscombe transform of ``normalization``, or the J-invariant loss; lower is better) for ``model`` in
+    evaluation mode."""
     from grainwright.inference.evaluation.calibration import j_invariant_loss
-    from grainwright.inference.evaluation.sure import sure_mse
+    from grainwright.inference.evaluation.sure import sure_mse, sure_mse_poisson_gaussian
 
     denoise = _denoiser(model, scheme)
     was_training = model.training
@@ -234,6 +261,11 @@ def heldout_score(model: torch.nn.Module, frames: list[dict[str, np.ndarray]], c
             elif criterion == "sure":
                 sigma = np.asarray(scheme.sigma, dtype=np.float64).reshape(-1)
                 scores.append(sure_mse(denoise, frame["noisy"], sigma, seed=seed + index).mse)
+            elif criterion == "sure-poisson-gaussian":
+                transform = normalization.transform
+                chained, linear = _before_the_transform(denoise, frame["noisy"], transform)
+                scores.append(sure_mse_poisson_gaussian(chained, linear, transform["gain"], transform["read"],
+                                                        seed=seed + index).mse)
             else:
                 scores.append(j_invariant_loss(denoise, frame["noisy"]))
     finally:

@@ -6,7 +6,8 @@ Unser 2008) estimates the one term that needs the denoiser's derivatives, its di
 denoiser with one small random perturbation, so it works for any black box: a classical filter or an ONNX model.
 
 For Poisson-Gaussian data the estimate is taken in the generalized-Anscombe domain, where the noise is close to
-Gaussian with unit variance: the denoiser is wrapped as ``forward(denoise(inverse(z)))``.
+Gaussian with unit variance: the denoiser is wrapped as ``forward(denoise(inverse(z)))``; or, to first order, on
+the untransformed values, with the variance the noise has at each noisy value (:func:`sure_mse_poisson_gaussian`).
 """
 from __future__ import annotations
 
@@ -220,6 +221,53 @@ def sure_mse_stabilized(
         mask=mask,
         seed=seed,
     )
+
+
+def sure_mse_poisson_gaussian(
+    denoise: Denoise,
+    noisy: np.ndarray,
+    gain: float,
+    read: float,
+    *,
+    peak: float = 1.0,
+    probes: int = 1,
+    epsilon: float | None = None,
+    seed: int = 0,
+) -> SureEstimate:
+    """Monte-Carlo estimate of a denoiser's mean squared error on untransformed Poisson-Gaussian data.
+
+    With ``y = gain * P + n``, ``P`` Poisson of mean ``x / gain`` and ``n`` Gaussian of standard deviation
+    ``read``, the unbiased risk estimate for mixed Poisson-Gaussian noise (Luisier, Blu and Unser, "Image
+    denoising in mixed Poisson-Gaussian noise", IEEE TIP 2011) replaces Stein's Gaussian term by a finite
+    difference of the denoiser for the Poisson part (Hudson's identity, ``E[P g(P)] = lambda E[g(P + 1)]``).
+    To first order in ``gain`` that difference is the derivative, and the estimate is SURE with the
+    per-element variance ``gain * y + read**2`` taken at the noisy value (:func:`sure_mse` with that map); the
+    neglected terms carry ``gain**2`` times the denoiser's second derivatives. Unlike
+    :func:`sure_mse_stabilized`, the error is measured on the untransformed values, where the PSNR of the
+    images is measured, so dark and bright pixels weigh as they do there.
+
+    Parameters
+    ----------
+    denoise : callable
+        The denoiser on untransformed values (for a network trained in the Anscombe domain: the transform, the
+        network and the inverse, chained).
+    noisy : ndarray
+        Noisy image, untransformed, in the units of ``gain`` and ``read``.
+    gain : float
+        Poisson gain: the noise variance grows by ``gain`` per unit of signal.
+    read : float
+        Standard deviation of the additive Gaussian part.
+    peak, probes, epsilon, seed
+        As in :func:`sure_mse`.
+
+    Returns
+    -------
+    SureEstimate
+        In the units of ``noisy``.
+    """
+    noisy = np.asarray(noisy, dtype=np.float64)
+    variance = gain * np.maximum(noisy, 0.0) + read * read
+    return sure_mse(denoise, noisy, np.sqrt(variance), peak=peak, probes=probes, epsilon=epsilon, seed=seed)
 
 
 def unclipped_mask(
