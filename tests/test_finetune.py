@@ -225,8 +225,39 @@ def test_the_poisson_gaussian_selection_scores_the_error_before_the_transform():
     frames = [{"noisy": working}]
     criterion = criterion_for(frames, normalization, SimpleNamespace(kind="poisson-gaussian"), scheme)
     assert criterion == "sure-poisson-gaussian" and CRITERIA[criterion].startswith("MC-SURE")
-    score = heldout_score(blur, frames, criterion, scheme, seed=0, normalization=normalization)
+    score = heldout_score(blur, frames, criterion, scheme, seed=0, normalization=normalization).value
     with torch.no_grad():
         output = blur(torch.from_numpy(working.transpose(2, 0, 1)[None].copy()))[0].numpy().transpose(1, 2, 0)
     true = float(np.mean((normalization.from_working_float(output).astype(np.float64) - clean) ** 2))
     assert score == pytest.approx(true, rel=0.03)
+
+
+def test_the_check_holds_across_the_noise_margin_and_its_slope_is_sure_at_a_scaled_variance():
+    # SURE is linear in the noise variance it assumes (Stein 1981; Ramani, Blu and Unser 2008, eq. 6): the score's
+    # slope predicts the estimate recomputed with the variance scaled by 1.05.
+    from types import SimpleNamespace
+
+    from grainwright.inference.evaluation.sure import sure_mse
+    from grainwright.trainer.start import HeldoutScore, fine_tuned_is_better, heldout_score
+
+    sigma = 0.1
+    clean = data.camera()[128:384, 128:384, None].astype(np.float64) / 255
+    noisy = (clean + np.random.default_rng(2).normal(0, sigma, clean.shape)).astype(np.float32)
+    blur = torch.nn.Conv2d(1, 1, 3, padding=1, padding_mode="reflect", bias=False)
+    torch.nn.init.constant_(blur.weight, 1 / 9)
+    scheme = SimpleNamespace(sigma=np.array([sigma]), noise_level=lambda batch: None)
+    score = heldout_score(blur, [{"noisy": noisy}], "sure", scheme, seed=0)
+
+    def denoise(image):
+        with torch.no_grad():
+            tensor = torch.from_numpy(np.ascontiguousarray(image.transpose(2, 0, 1)[None], dtype=np.float32))
+            return blur(tensor)[0].numpy().transpose(1, 2, 0)
+
+    scaled = sure_mse(denoise, noisy, sigma * np.sqrt(1.05), seed=0, epsilon=2.0 * sigma * noisy.size ** -0.3)
+    assert score.at(1.05) == pytest.approx(scaled.mse, rel=1e-3)
+    # A fine-tuned state better at the assumed level by less than what a 5% error of the variance moves the
+    # difference is not kept; one better across the band is.
+    start, smoother = HeldoutScore(1.00, slope=0.5), HeldoutScore(0.99, slope=0.2)
+    assert smoother.at(1.0) < start.at(1.0) and not fine_tuned_is_better(start, smoother, 0.05)
+    assert fine_tuned_is_better(start, HeldoutScore(0.98, slope=0.2), 0.05)
+    assert fine_tuned_is_better(start, smoother, 0.0)

@@ -130,6 +130,13 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
         "keep_final": Key("bool", True, "When the run completes its budget, `best.pt` is the final state (the "
                           "end of the learning-rate schedule), which is still validated and logged; false: it "
                           "competes with the earlier validations like any other."),
+        "noise_margin": Key("float", 0.05, "After a start from trained weights: the relative error of the noise "
+                            "variance the never-worse check allows for. MC-SURE moves with the noise level it is "
+                            "given, in favour of the smoother state when the level is overestimated, so the "
+                            "fine-tuned state is kept only if it is better for every variance within this "
+                            "fraction of the one used. 0.05 covers the noise analysis's errors measured in the "
+                            "benchmarks (+1.4% to +3.4% in variance); lower it for a calibrated `noise.toml`.",
+                            0.0, 0.5),
     },
     "checkpoint": {
         "every_minutes": Key("float", 3.0, "Minutes between saves of `checkpoints/last.pt` (also saved at the end "

@@ -309,7 +309,7 @@ class _Training:
         """Score the starting state and ``best.pt`` on the held-out frames and keep the better as ``best.pt``
         (``grainwright.trainer.start``); the figures and the verdict go into the summary."""
         from grainwright.models.checkpoint import load_checkpoint
-        from grainwright.trainer.start import CRITERIA, criterion_for, heldout_score
+        from grainwright.trainer.start import CRITERIA, criterion_for, fine_tuned_is_better, heldout_score
 
         setup = self.setup
         criterion = criterion_for(setup.heldout, setup.normalization, setup.noise, setup.scheme)
@@ -321,9 +321,11 @@ class _Training:
             scorer.load_state_dict(state)
             scores[name] = heldout_score(scorer, setup.heldout, criterion, setup.scheme, self.config["seed"],
                                          setup.normalization)
-        kept = "fine-tuned" if scores["end"] < scores["start"] else "start"
-        self.selection = {"criterion": CRITERIA[criterion], "start": scores["start"], "fine_tuned": scores["end"],
-                          "kept": kept, "frames": len(setup.heldout)}
+        margin = self.config["validation"]["noise_margin"]
+        kept = "fine-tuned" if fine_tuned_is_better(scores["start"], scores["end"], margin) else "start"
+        self.selection = {"criterion": CRITERIA[criterion], "start": scores["start"].value,
+                          "fine_tuned": scores["end"].value, "kept": kept, "frames": len(setup.heldout),
+                          "noise_margin": margin if scores["start"].slope or scores["end"].slope else 0.0}
         scorer.load_state_dict(states["end" if kept == "fine-tuned" else "start"])
         save_checkpoint(self.run.best, self._payload(with_resume=False, model=scorer))
 

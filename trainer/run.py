@@ -648,7 +648,13 @@ def start_text(summary: dict[str, Any]) -> str:
         text = "started from random weights" + (f" ({started['reason']})" if started.get("reason") else "")
     selection = summary.get("selection")
     if selection:
-        kept = "the fine-tuned state" if selection["kept"] == "fine-tuned" else "the starting state (fine-tuning did not help)"
+        if selection["kept"] == "fine-tuned":
+            kept = "the fine-tuned state"
+        elif selection["fine_tuned"] < selection["start"]:
+            kept = (f"the starting state (the fine-tuned one is better at the noise level assumed, but not for "
+                    f"every variance within {selection.get('noise_margin', 0.0):.0%} of it: validation.noise_margin)")
+        else:
+            kept = "the starting state (fine-tuning did not help)"
         text += (f"; held-out {selection['criterion']} start {selection['start']:.4g}, fine-tuned "
                  f"{selection['fine_tuned']:.4g}: kept {kept}")
     return text

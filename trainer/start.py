@@ -27,6 +27,7 @@ common to both and small differences are resolved.
 from __future__ import annotations
 
 import hashlib
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
@@ -242,11 +243,35 @@ def _before_the_transform(denoise: Callable[[np.ndarray], np.ndarray], noisy: np
     return chained, anscombe_inverse_algebraic(np.asarray(noisy, np.float64) * scale + offset, gain, read)
 
 
+@dataclass(frozen=True)
+class HeldoutScore:
+    """A held-out figure (lower is better) and how it moves with the noise variance it assumes: scaled by ``s``,
+    the figure is ``value + slope * (s - 1)`` (SURE is linear in the variance; ``slope = mean(v) * (2 *
+    divergence - 1)``, Ramani et al. 2008, eq. 6). Zero slope for the criteria that do not assume a level."""
+
+    value: float
+    slope: float = 0.0
+
+    def at(self, scale: float) -> float:
+        return self.value + self.slope * (scale - 1.0)
+
+
+def fine_tuned_is_better(start: HeldoutScore, fine_tuned: HeldoutScore, noise_margin: float) -> bool:
+    """Whether the fine-tuned state scores lower than the start for every noise variance within ``noise_margin``
+    (a fraction) of the one assumed: both figures are linear in the variance, so both ends of the band decide."""
+    return all(fine_tuned.at(scale) < start.at(scale) for scale in (1.0 - noise_margin, 1.0 + noise_margin))
+
+
+def _sure_score(estimate: Any, variance: np.ndarray) -> HeldoutScore:
+    mean_variance = float(np.mean(variance))
+    return HeldoutScore(estimate.mse, mean_variance * (2.0 * estimate.divergence - 1.0))
+
+
 def heldout_score(model: torch.nn.Module, frames: list[dict[str, np.ndarray]], criterion: str, scheme: Any,
-                  seed: int, normalization: Any = None) -> float:
+                  seed: int, normalization: Any = None) -> HeldoutScore:
     """Mean over ``frames`` of the criterion (an estimate of the mean squared error in working units, or before
     the Anscombe transform of ``normalization``, or the J-invariant loss; lower is better) for ``model`` in
-    evaluation mode."""
+    evaluation mode, with its dependence on the assumed noise variance."""
     from grainwright.inference.evaluation.calibration import j_invariant_loss
     from grainwright.inference.evaluation.sure import sure_mse, sure_mse_poisson_gaussian
 
@@ -257,17 +282,20 @@ def heldout_score(model: torch.nn.Module, frames: list[dict[str, np.ndarray]], c
     try:
         for index, frame in enumerate(frames):
             if criterion == "ground-truth":
-                scores.append(float(np.mean((denoise(frame["noisy"]) - frame["clean"]).astype(np.float64) ** 2)))
+                error = (denoise(frame["noisy"]) - frame["clean"]).astype(np.float64)
+                scores.append(HeldoutScore(float(np.mean(error ** 2))))
             elif criterion == "sure":
                 sigma = np.asarray(scheme.sigma, dtype=np.float64).reshape(-1)
-                scores.append(sure_mse(denoise, frame["noisy"], sigma, seed=seed + index).mse)
+                estimate = sure_mse(denoise, frame["noisy"], sigma, seed=seed + index)
+                scores.append(_sure_score(estimate, sigma ** 2))
             elif criterion == "sure-poisson-gaussian":
-                transform = normalization.transform
-                chained, linear = _before_the_transform(denoise, frame["noisy"], transform)
-                scores.append(sure_mse_poisson_gaussian(chained, linear, transform["gain"], transform["read"],
-                                                        seed=seed + index).mse)
+                gain, read = normalization.transform["gain"], normalization.transform["read"]
+                chained, linear = _before_the_transform(denoise, frame["noisy"], normalization.transform)
+                estimate = sure_mse_poisson_gaussian(chained, linear, gain, read, seed=seed + index)
+                scores.append(_sure_score(estimate, gain * np.maximum(linear, 0.0) + read * read))
             else:
-                scores.append(j_invariant_loss(denoise, frame["noisy"]))
+                scores.append(HeldoutScore(j_invariant_loss(denoise, frame["noisy"])))
     finally:
         model.train(was_training)
-    return float(np.mean(scores))
+    return HeldoutScore(float(np.mean([score.value for score in scores])),
+                        float(np.mean([score.slope for score in scores])))
