@@ -117,6 +117,8 @@ def test_a_few_fine_tuning_steps_lower_the_held_out_criterion(tmp_path):
     selection = summary["selection"]
     assert selection["criterion"] == "MC-SURE" and selection["frames"] == 1
     assert selection["fine_tuned"] < selection["start"] and selection["kept"] == "fine-tuned"
+    assert selection["noise_margin"] == 0.05
+    assert all(ft < st for ft, st in zip(selection["fine_tuned_across_margin"], selection["start_across_margin"]))
     assert not _same(load_checkpoint(run.best)["state_dict"], load_checkpoint(run.start)["state_dict"])
 
 

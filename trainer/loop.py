@@ -326,6 +326,9 @@ class _Training:
         self.selection = {"criterion": CRITERIA[criterion], "start": scores["start"].value,
                           "fine_tuned": scores["end"].value, "kept": kept, "frames": len(setup.heldout),
                           "noise_margin": margin if scores["start"].slope or scores["end"].slope else 0.0}
+        if self.selection["noise_margin"]:  # both figures at the ends of the band, lowest variance first
+            for name, key in (("start", "start_across_margin"), ("end", "fine_tuned_across_margin")):
+                self.selection[key] = [scores[name].at(1.0 - margin), scores[name].at(1.0 + margin)]
         scorer.load_state_dict(states["end" if kept == "fine-tuned" else "start"])
         save_checkpoint(self.run.best, self._payload(with_resume=False, model=scorer))
 
