@@ -132,21 +132,28 @@ def test_a_tiny_benchmark_runs_end_to_end_and_resumes(tmp_path, monkeypatch):
     assert rows["supervised"] == first and "recorrupted" + ENSEMBLE_LABEL in rows
 
 
-@pytest.mark.slow
-def test_a_fine_tuned_scheme_gets_a_row_for_its_start_alone_at_a_fixed_step_count(tmp_path, monkeypatch):
+def _tiny_recorrupted_bench(tmp_path, monkeypatch, train_images: tuple[str, ...], steps: int, **options):
+    """Run ``bench train``'s Gaussian case with ``recorrupted`` on 96-pixel crops for ``steps`` steps, TV as the
+    only opponent; returns the benchmark module (patched) and the results file."""
     from grainwright.benchmarks import training as bench
 
     original = bench.sample_image
     monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
-    monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass", "gravel"))
+    monkeypatch.setattr(bench, "TRAIN_IMAGES", train_images)
     monkeypatch.setattr(bench, "SEARCH_BASELINES", ("tv",))
     saved = tmp_path / "bench.json"
     args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="recorrupted", json=str(saved),
                               config="noisy-only", set=["data.batch_size=4", "logging.tensorboard=false",
                                                         'model.precision="float32"'],
-                              seed=0, threads=1, minutes_per_scheme=10.0, steps_per_scheme=6, throughput=False,
-                              half_scale=False)
+                              seed=0, threads=1, minutes_per_scheme=10.0, steps_per_scheme=steps, throughput=False,
+                              half_scale=False, **options)
     assert run_bench(args) == 0
+    return bench, saved
+
+
+@pytest.mark.slow
+def test_a_fine_tuned_scheme_gets_a_row_for_its_start_alone_at_a_fixed_step_count(tmp_path, monkeypatch):
+    bench, saved = _tiny_recorrupted_bench(tmp_path, monkeypatch, ("brick", "grass", "gravel"), steps=6)
     results = json.loads(saved.read_text())
     rows, training = results["cases"]["gaussian"]["psnr"], results["cases"]["gaussian"]["training"]["recorrupted"]
     assert training["steps"] == 6 and training["started_from"]["weights"] == "starting-model"
@@ -230,20 +237,9 @@ def test_a_misspelt_case_or_scheme_is_refused_before_any_work(tmp_path):
 
 
 def test_training_on_the_scored_images_uses_their_noisy_arrays_only_and_a_strip_of_each(tmp_path, monkeypatch):
-    from grainwright.benchmarks import training as bench
     from grainwright.inference.images.imageio import read_image
 
-    original = bench.sample_image
-    monkeypatch.setattr(bench, "sample_image", lambda name, edge=96: original(name)[:96, :96].copy())
-    monkeypatch.setattr(bench, "TRAIN_IMAGES", ("brick", "grass"))
-    monkeypatch.setattr(bench, "SEARCH_BASELINES", ("tv",))
-    saved = tmp_path / "bench.json"
-    args = argparse.Namespace(work=str(tmp_path / "work"), cases="gaussian", schemes="recorrupted", json=str(saved),
-                              config="noisy-only", set=["data.batch_size=4", "logging.tensorboard=false",
-                                                        'model.precision="float32"'],
-                              seed=0, threads=1, minutes_per_scheme=10.0, steps_per_scheme=4, throughput=False,
-                              half_scale=False, train_on_scored=True)
-    assert run_bench(args) == 0
+    bench, saved = _tiny_recorrupted_bench(tmp_path, monkeypatch, ("brick", "grass"), steps=4, train_on_scored=True)
     results = json.loads(saved.read_text())
     assert results["settings"]["train_on_scored"] is True
     made = bench.make_folders(tmp_path / "again", "gaussian", 0, ["brick", "grass"])  # the same noise, seeded
