@@ -18,7 +18,8 @@ Quality part (noisy frames only, the budget per model in minutes, one run per se
   compare's measure, :func:`grainwright.inference.evaluation.detail.contrast_retention`, against the clean
   frame's contrast), median over the cracks and frames on the lane and over those of the still scene;
 - the generated cast volume (:func:`~grainwright.inference.synthetic.stack_scenario.cast_volume`): the K-frame
-  model against per-slice BM3D, 3-D total variation (scikit-image ``denoise_tv_chambolle``) and 3-D non-local
+  model (``recorrupted-stack`` at its default strength, its recorruption drawn with the slices' measured noise
+  correlation) against per-slice BM3D, 3-D total variation (scikit-image ``denoise_tv_chambolle``) and 3-D non-local
   means (scikit-image ``denoise_nl_means``), each tuned on the clean volume over a small grid.
 
 PSNR after Gonzalez and Woods; peak 4095 (12-bit data), outputs rounded to the data's integers as written.
@@ -154,6 +155,7 @@ def train_and_export(data: Path, out: Path, *, model: str, hyper: dict[str, Any]
                           "stack_pairing": summary.get("stack_pairing"),
                           "recorrupted_alpha": summary.get("recorrupted_alpha"),
                           "frame_noise_correlation": summary.get("frame_noise_correlation"),
+                          "frame_noise_correlations": summary.get("frame_noise_correlations"),
                           "fixed_pattern_corrected": summary.get("fixed_pattern_corrected")}
     return out / "model.onnx"
 
@@ -261,9 +263,9 @@ def volume_quality(folder: Path, *, frames: int, minutes: float, seed: int, thre
     log(f"volume seed {seed}: training the {frames}-frame model ({f'{steps} steps' if steps else f'{minutes} min'})")
     trained: dict[str, Any] = {}
     model = train_and_export(data, folder / f"vol-stack-{seed}", model="unet-stack",
-                             hyper={"frames": frames, "levels": 2, "width": width}, scheme="neighbor2neighbor-stack",
+                             hyper={"frames": frames, "levels": 2, "width": width}, scheme="recorrupted-stack",
                              minutes=minutes, steps=steps, seed=seed, threads=threads, trained=trained,
-                             extra=("neighbor2neighbor.frame_stride=1", *settings))  # a still volume: nearest slices
+                             extra=settings)  # recorruption drawn with the slices' measured noise correlation
     table = {"noisy": psnr(clean, noisy), f"unet-stack K={frames}": psnr(clean, _as_written(
         denoise_stack_array(OnnxDenoiser(model, threads=threads), volume.noisy[..., None])[..., 0]))}
     scaled = noisy / FULL_SCALE

@@ -175,10 +175,15 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                      "`recorrupted-stack` (a K-frame model averages the input's extra noise down; +0.5 dB over 0.5 "
                      "and +1.2 dB over 0.3 at fixed steps on the generated sequence; docs/benchmarks.md).",
                      0.01, 10.0),
-        "max_frame_correlation": Key("float", 0.1, "`recorrupted-stack`: the largest correlation of the noise of "
-                                     "neighbouring frames it trains on (measured on the training stacks); above it "
-                                     "the network would see its target's noise through the neighbours, and the run "
-                                     "stops (use `neighbor2neighbor-stack`).", 0.0, 1.0),
+        "max_frame_correlation": Key("float", 0.4, "`recorrupted-stack`: the largest noise correlation between "
+                                     "the frames of a window it trains on (measured per offset on the training "
+                                     "stacks; the recorruption is drawn with the measured correlation, so what can "
+                                     "leak the target's noise through the neighbours is the estimate's error). Above "
+                                     "it the run stops (use `neighbor2neighbor-stack`); `auto` falls back to it. 0.4 "
+                                     "lets the generated cast volume (0.3) train and stops a misfitted noise model, "
+                                     "whose signal-dependent noise read 0.44 to 0.53 on a small generated sequence; "
+                                     "raise it for noise known to be more correlated, its level given in a noise.toml "
+                                     "(docs/stacks-and-volumes.md).", 0.0, 1.0),
     },
 }
 

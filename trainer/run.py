@@ -430,8 +430,15 @@ def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.
     noisy = [item[role] for item in working for role in item if role != "clean"]
     figures = scheme_class(scheme).check_data(config, noisy, stack_frames(config), banding_left)
     for key, value in figures.items():
-        announce(f"{key.replace('_', ' ')}: {value:.3f}")
+        announce(f"{key.replace('_', ' ')}: {_figure_text(value)}")
     return figures
+
+
+def _figure_text(value: Any) -> str:
+    """A figure of ``check_data`` in words: a number to 3 decimals, a list (or a matrix) as its numbers."""
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_figure_text(item) for item in value) + "]"
+    return f"{value:.3f}"
 
 
 def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
@@ -562,7 +569,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         resolved = started_from["weights"] if started_from["weights"] != EARLIER_RUN else config["start"]["weights"]
         config = dict(config, start=dict(config["start"], weights=resolved))
     config = fine_tuning_schedule(config, announce if not resuming else lambda text: None)
-    scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map)
+    scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map, figures=data_figures)
     validation = _validation_batches(config, scheme, validation_images, layout.roles)
     heldout = [] if model.stack_frames > 1 else heldout_frames(validation_images, model.alignment, scheme,
                                                                config["seed"])

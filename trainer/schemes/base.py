@@ -57,11 +57,13 @@ class Scheme:
     default_alpha: float | None = None
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
-                 level_maps: bool = True):
+                 level_maps: bool = True, figures: dict[str, Any] | None = None):
         """``noise``: the noise model in working units (or None); ``sigma``: per-channel Gaussian standard
         deviation of the noise in working units (known or estimated; None when unknown); ``level_maps``: whether
-        the model takes noise-level maps (when not, batches carry none, which saves their cost every step)."""
+        the model takes noise-level maps (when not, batches carry none, which saves their cost every step);
+        ``figures``: what :meth:`check_data` returned for the training data (empty by default)."""
         self.config = config
+        self.figures = dict(figures or {})
         self.noise = noise
         self.sigma = None if sigma is None else np.asarray(sigma, dtype=np.float32).reshape(1, -1, 1, 1)
         self.level_maps = level_maps

@@ -74,9 +74,11 @@ def choose_stack_scheme(layout: str, noise: str | None, found: str | None, bandi
     allows it, else ``neighbor2neighbor-stack`` (needs no noise model; never shows the network a target position
     in any frame). The rule: a trusted Gaussian or Poisson-Gaussian noise model (``noise``, in words: given in a
     noise description or fitted confidently; None when there is none), no banding left uncorrected
-    (``banding_left``), and the noise of neighbouring frames correlated at most ``limit``
-    (``recorrupted.max_frame_correlation``; ``correlation`` is measured on the frames in working units, None
-    when the rule failed before it). ``found``: what the noise analysis found, in words, for the reason.
+    (``banding_left``), and the noise correlation between the window's frames measured at most ``limit`` in size
+    (``recorrupted.max_frame_correlation``; ``correlation`` is the largest of the offsets, measured on the frames
+    in working units, None when the rule failed before it). Correlated noise within the limit is allowed: the
+    scheme draws its recorruption with the measured correlation. ``found``: what the noise analysis found, in
+    words, for the reason.
     """
     start = f"found {LAYOUT_TEXT[layout]} and a multi-frame model"
     fallback = "neighbor2neighbor-stack (needs no noise model; valid where the scene moves)"
@@ -88,11 +90,13 @@ def choose_stack_scheme(layout: str, noise: str | None, found: str | None, bandi
         return "neighbor2neighbor-stack", (f"{start}; banding is flagged and left uncorrected (data.fixed_pattern), "
                                            f"which recorrupted-stack would pass on through its target's own row: "
                                            f"{fallback}")
-    if correlation is None or correlation > limit:
+    if correlation is None or abs(correlation) > limit:
         measured = "was not measured" if correlation is None else f"is correlated {correlation:.2f}"
-        return "neighbor2neighbor-stack", (f"{start}; the noise of neighbouring frames {measured} "
-                                           f"(recorrupted.max_frame_correlation = {limit:g}), so the neighbours "
-                                           f"would show the network its target's noise: {fallback}")
-    return "recorrupted-stack", (f"{start}; {noise}, independent between frames (correlation {correlation:.2f}, "
-                                 f"limit {limit:g}): recorrupted-stack (every pixel in the loss, at full resolution, "
-                                 "valid where the scene moves)")
+        return "neighbor2neighbor-stack", (f"{start}; the noise of the window's frames {measured} "
+                                           f"(recorrupted.max_frame_correlation = {limit:g}), too much to trust the "
+                                           f"measured correlation to keep the target's noise out of the "
+                                           f"neighbours: {fallback}")
+    return "recorrupted-stack", (f"{start}; {noise}, largest noise correlation between the window's "
+                                 f"frames {correlation:.2f} (limit {limit:g}): recorrupted-stack, drawing its "
+                                 "recorruption with the measured correlation (every pixel in the loss, at full "
+                                 "resolution, valid where the scene moves)")
