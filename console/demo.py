@@ -95,6 +95,10 @@ class DemoSettings:
         preset; its scheme is ``auto``.
     train_settings : list of str
         Extra training settings as ``key=value`` (the trainer's ``--set``), e.g. ``model.precision="float32"``.
+    train_on_scored : bool
+        Train on the held-out noisy frames too (their corrected noisy versions, never their clean ones), as a user
+        trains on the frames they mean to denoise; a strip of every frame is held out for the trainer's checks
+        (``data.validation_split = "regions"``). False: the scored frames are frames the model never saw.
     random_weights_row : bool
         Also train the same number of steps from random weights (``start.weights = "random"``) and show it in
         the report beside the fine-tuned model and the starting model alone. Skipped when the main training
@@ -115,6 +119,7 @@ class DemoSettings:
     threads: int = 0
     config: str = "fast-cpu"
     train_settings: list[str] = field(default_factory=list)
+    train_on_scored: bool = True
     random_weights_row: bool = True
     tile: int = 0
     progress: bool = True
@@ -205,7 +210,7 @@ def run_demo(out: str | Path, settings: DemoSettings | None = None, echo: Callab
     summary["scenario"] = {"folder": str(out / SCENARIO_DIR), "sensor": manifest["sensor"]}
 
     step("inspecting the training frames; correcting the row banding of every frame")
-    summary["inspection"] = inspect_and_correct(out, echo)
+    summary["inspection"] = inspect_and_correct(out, echo, settings.train_on_scored)
 
     main_role, learned = train_and_export(out, settings, echo, step, random_row)
     training = learned[main_role]
@@ -265,10 +270,11 @@ def _frames(folder: Path) -> list[Path]:
     return find_images([folder])
 
 
-def inspect_and_correct(out: Path, echo: Callable[[str], Any]) -> dict:
+def inspect_and_correct(out: Path, echo: Callable[[str], Any], train_on_scored: bool) -> dict:
     """Inspect the noisy training frames (what ``grainwright inspect`` reports), correct the row banding of
     every noisy frame into ``corrected/``, inspect the corrected training frames, and save their noise model
-    beside them as ``noise.toml`` (what ``grainwright inspect --save-noise`` writes)."""
+    beside them as ``noise.toml`` (what ``grainwright inspect --save-noise`` writes). ``train_on_scored``: then
+    copy the corrected held-out noisy frames into the training folder as ``scored-NAME``."""
     from grainwright.inference.images.imageio import read_image, write_image
     from grainwright.inference.noise.analysis import inspect_paths
     from grainwright.inference.noise.estimation import correct_fixed_pattern
@@ -303,6 +309,11 @@ def inspect_and_correct(out: Path, echo: Callable[[str], Any]) -> dict:
         echo(f"  after the correction: banding flagged on {after.summary['banding_images']} of {frames}; noise "
              f"model {model.describe()} saved as noise.toml")
     echo(f"  recommendation: {after.recommendation['scheme']} ({after.recommendation['why']})")
+    if train_on_scored:  # after the noise fit: it stays the training frames' own
+        for path in _frames(target / "holdout"):
+            shutil.copyfile(path, target / "train" / f"scored-{path.name}")
+        echo("  the held-out noisy frames join the training frames (never their clean versions), as frames to be "
+             "denoised do; a strip of every frame is held out for the trainer's checks")
     inspection = {
         "frames": frames,
         "banding_flagged_before": before.summary["banding_images"],
@@ -320,7 +331,8 @@ def training_assignments(settings: DemoSettings, extra: list[str] = ()) -> list[
     """The demo's ``--set`` assignments for ``grainwright train``: its own, then the user's, then ``extra`` (later
     ones win, so the record row's ``start.weights = "random"`` holds whatever the user set)."""
     # The frames were corrected in step 2, so the trainer's own fixed-pattern check has nothing left to do.
-    return [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"',
+    regions = ['data.validation_split="regions"'] if settings.train_on_scored else []
+    return [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"', *regions,
             f"logging.progress={'true' if settings.progress else 'false'}", *settings.train_settings, *extra]
 
 
@@ -519,6 +531,9 @@ def headline(summary: dict, out: Path) -> list[str]:
     compare, large = summary["compare"], summary["large_frame"]
     training, main = summary["training"], summary["main_model"]
     starting = summary["learned"][STARTING_ALONE]["export"]
+    seen = ("  the scored frames' noisy versions trained with the rest, as the frames a user denoises do (never their "
+            "clean versions;\n  --scored-frames-unseen keeps them out)" if summary["settings"]["train_on_scored"]
+            else "  the scored frames were never seen in training (--scored-frames-unseen)")
     lines = [
         "",
         f"grainwright demo finished in {summary['seconds'] / 60:.1f} min; everything is in {out}",
@@ -526,6 +541,7 @@ def headline(summary: dict, out: Path) -> list[str]:
         f"  report (without ground truth): {compare['report_without_ground_truth']}",
         f"  model: {training['export']['model']} (trained {training['scheme']} on noisy frames only, "
         f"{training['steps']} steps in {training['minutes']:.1f} min; {training['start']})",
+        seen,
         "",
         "  the learned models beside the best classical method on the held-out frames (PSNR and rank with the clean",
         "  frames, classical parameters tuned on them; rank by SURE without them; cracks kept: contrast retention,",

@@ -6,6 +6,7 @@ import math
 import subprocess
 import sys
 
+import numpy as np
 import pytest
 
 from grainwright.console.demo import (
@@ -19,6 +20,7 @@ from grainwright.console.demo import (
     run_demo,
 )
 from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.images.imageio import read_image
 
 
 def test_refuses_a_non_empty_folder_it_did_not_write(tmp_path):
@@ -91,12 +93,15 @@ def test_command_line_options_reach_the_settings(monkeypatch, tmp_path):
     settings = seen["settings"]
     assert settings.seed == 3 and settings.minutes == 2.5 and not settings.random_weights_row
     assert settings.train_settings == ["model.precision=float32", "optim.lr=5e-4"]
-    assert main(["demo", "--out", str(tmp_path)]) == 0
+    assert settings.train_on_scored
+    assert main(["demo", "--out", str(tmp_path), "--scored-frames-unseen"]) == 0
     assert seen["settings"].random_weights_row and seen["settings"].train_settings == []
+    assert not seen["settings"].train_on_scored
 
 
 TINY = dict(steps=4, train_frames=5, holdout_frames=1, frame_size=64, large_size=(96, 160), threads=1, progress=False)
-TINY_TRAINING = ["data.batch_size=4", "data.patch_size=48", "validation.every_steps=2", "validation.patches=4",
+# Patches of 32 pixels leave each 64-pixel frame a held-out strip of one patch (the region split needs it).
+TINY_TRAINING = ["data.batch_size=4", "data.patch_size=32", "validation.every_steps=2", "validation.patches=4",
                  "logging.tensorboard=false", "model.precision=float32"]
 
 
@@ -113,6 +118,15 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
     assert summary["training"]["scheme"] in ("recorrupted", "neighbor2neighbor")
     assert not (tmp_path / "corrected" / "train" / "clean").exists()
     assert (tmp_path / "corrected" / "train" / "noise.toml").is_file()
+    # The scored frames trained as the frames to be denoised: the training folder holds the very corrected noisy
+    # frames the report scores (never their clean versions), and a strip of every frame is held out.
+    scored = sorted((tmp_path / "corrected" / "holdout").iterdir())
+    assert scored and all(np.array_equal(read_image(path), read_image(tmp_path / "corrected" / "train" /
+                                                                     f"scored-{path.name}")) for path in scored)
+    clean = [read_image(path) for path in sorted((tmp_path / "scenario" / "holdout" / "clean").iterdir())]
+    for path in (tmp_path / "corrected" / "train").glob("*.tif"):
+        assert not any(np.array_equal(read_image(path), image) for image in clean)
+    assert 'validation_split = "regions"' in (tmp_path / "training-run" / "config.toml").read_text()
 
     # Three learned rows: the default training fine-tunes the starting model; the starting model alone; and the
     # same number of steps from random weights. The --set reached both trainings.
@@ -154,7 +168,7 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
 
 @pytest.mark.slow
 def test_a_demo_set_to_start_from_random_weights_has_no_separate_record_row(tmp_path):
-    settings = DemoSettings(**TINY, train_settings=[*TINY_TRAINING, 'start.weights="random"'])
+    settings = DemoSettings(**TINY, train_settings=[*TINY_TRAINING, 'start.weights="random"'], train_on_scored=False)
     lines: list[str] = []
     summary = run_demo(tmp_path, settings, echo=lines.append)
     assert list(summary["learned"]) == [RANDOM_WEIGHTS, STARTING_ALONE] and summary["main_model"] == RANDOM_WEIGHTS
@@ -162,3 +176,6 @@ def test_a_demo_set_to_start_from_random_weights_has_no_separate_record_row(tmp_
     assert (tmp_path / "random-weights.onnx").is_file() and not (tmp_path / "fine-tuned.onnx").exists()
     assert not (tmp_path / "training-run-random-weights").exists()
     assert "[6/6" in "\n".join(lines)
+    # Scored frames kept unseen: the training folder holds the training frames alone, split by whole images.
+    assert not list((tmp_path / "corrected" / "train").glob("scored-*"))
+    assert 'validation_split = "images"' in (tmp_path / "training-run" / "config.toml").read_text()

@@ -29,6 +29,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--set", dest="assignments", metavar="KEY=VALUE", action="append", default=[],
                         help="override one training config key, e.g. --set model.precision=float32 (repeatable; "
                         "the keys of docs/configs.md)")
+    parser.add_argument("--scored-frames-unseen", action="store_true",
+                        help="train on the training frames only, so the held-out frames the report scores are frames "
+                        "the model never saw (by default their noisy versions join the training frames, as the "
+                        "frames a user means to denoise do; their clean versions never do)")
     parser.add_argument("--skip-random-weights", action="store_true",
                         help="leave out the record row trained for the same budget from random weights (halves "
                         "the training time)")
@@ -36,6 +40,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def run(args: argparse.Namespace) -> int:
     settings = DemoSettings(minutes=args.minutes, seed=args.seed, threads=args.threads,
-                            train_settings=list(args.assignments), random_weights_row=not args.skip_random_weights)
+                            train_settings=list(args.assignments), random_weights_row=not args.skip_random_weights,
+                            train_on_scored=not args.scored_frames_unseen)
     run_demo(args.out, settings)
     return 0
