@@ -543,7 +543,7 @@ def headline(summary: dict, out: Path) -> list[str]:
         f"{training['steps']} steps in {training['minutes']:.1f} min; {training['start']})",
         seen,
         "",
-        "  the learned models beside the best classical method on the held-out frames (PSNR and rank with the clean",
+        "  the learned models beside the best classical method on the scored frames (PSNR and rank with the clean",
         "  frames, classical parameters tuned on them; rank by SURE without them; cracks kept: contrast retention,",
         f"  1.00 = kept; steps on these frames, the starting model's own {starting['starting_model_steps']} steps on "
         "generated data apart):",
@@ -551,7 +551,7 @@ def headline(summary: dict, out: Path) -> list[str]:
         "",
         f"  PSNR gain of {main} over the best classical method: {compare['psnr_gain_db']:+.2f} dB "
         f"({compare['psnr_learned_db']:.2f} dB against {compare['best_classical']} at "
-        f"{compare['psnr_best_classical_db']:.2f} dB tuned on ground truth; held-out frames)",
+        f"{compare['psnr_best_classical_db']:.2f} dB tuned on ground truth; the scored frames)",
         f"  rank by SURE without ground truth: {compare['sure_rank_learned_without_ground_truth']} of "
         f"{compare['methods']} (rank by true PSNR: {compare['psnr_rank_learned']})",
         f"  contrast retention on the cracks: {_ratio(compare['crack_contrast_retention_learned'])} "
