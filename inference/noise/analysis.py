@@ -23,6 +23,7 @@ from grainwright.inference.noise.estimation import (
     NoiseAnalysis,
     analyse_noise,
     estimate_sigma,
+    pool_poisson_gaussian,
 )
 from grainwright.inference.noise.models import (
     GammaSpeckle,
@@ -199,17 +200,21 @@ class SetNoise:
     Attributes
     ----------
     kind : str
-        The most common kind over the images, ``"+impulse"`` set aside (``"gaussian"``, ``"poisson-gaussian"``
-        or ``"speckle-gamma"``), so that impulses flagged on some images do not split the vote.
+        ``"gaussian"``, ``"poisson-gaussian"`` or ``"speckle-gamma"``: speckle when most images say so
+        (``"+impulse"`` set aside, so that impulses flagged on some images do not split the vote); otherwise the
+        line fitted to the signal levels of all the Gaussian and Poisson-Gaussian images together decides
+        whether the noise grows with the signal.
     model : NoiseModel
-        One model for the set, working units: medians over the images of that kind.
+        One model for the set, working units: for Poisson-Gaussian noise one line fitted to the signal levels
+        of all the images of that kind together (``pool_poisson_gaussian``), otherwise medians over them.
     confident : bool
         Most images of that kind have a fit trusted enough to train on (no impulses, no correlation, enough
         flat regions over a wide signal range).
     transform : str or None
         ``"anscombe"``, ``"log"`` or None, from the kind.
     images, kind_images, confident_images : int
-        Images analysed, of them of the main kind, and of those with a confident fit.
+        Images analysed, of them of the main kind (Gaussian and Poisson-Gaussian count as one), and of those
+        with a confident fit.
     sigma_working : float
         Median wavelet-MAD noise level over all images, working units.
     flags : dict
@@ -236,19 +241,26 @@ class SetNoise:
         return text + ("; " + ", ".join(raised) if raised else "")
 
 
+LINE_KINDS = ("gaussian", "poisson-gaussian")  # the kinds a variance-versus-signal line tells apart
+
+
 def summarise_noise(analyses: list[NoiseAnalysis]) -> SetNoise:
     """Combine per-image analyses into one verdict for the set (shared by ``inspect`` and ``train``)."""
     if not analyses:
         raise ValueError("no noise analyses to summarise")
     kinds = [a.kind.split("+")[0] for a in analyses]
-    main_kind = max(sorted(set(kinds)), key=kinds.count)
-    chosen = [a for a, k in zip(analyses, kinds) if k == main_kind]
+    # Gaussian and Poisson-Gaussian images vote together: on one image a narrow signal range can hide a real
+    # gain, so the line fitted to the levels of all of them decides between the two.
+    family = ["line" if kind in LINE_KINDS else kind for kind in kinds]
+    main_family = max(sorted(set(family)), key=family.count)
+    chosen = [a for a, f in zip(analyses, family) if f == main_family]
+    main_kind = main_family
     sigma_working = float(np.median([np.mean(a.sigma) / (a.high - a.low) for a in analyses]))
+    if main_family == "line":
+        pooled = pool_poisson_gaussian([a.fit for a in chosen], [(a.low, a.high) for a in chosen])
+        main_kind = "poisson-gaussian" if pooled.signal_dependent else "gaussian"
     if main_kind == "poisson-gaussian":
-        fits = [a.working_fit() for a in chosen]
-        model: NoiseModel = PoissonGaussianNoise(
-            gain=float(np.median([f["gain"] for f in fits])), read=float(np.median([f["read"] for f in fits]))
-        )
+        model: NoiseModel = PoissonGaussianNoise(gain=pooled.gain, read=pooled.read)
     elif main_kind == "speckle-gamma":
         model = GammaSpeckle(looks=float(np.median([a.model.components[0].looks if hasattr(a.model, "components")
                                                     else a.model.looks for a in chosen])))
@@ -277,7 +289,7 @@ def analyse_images(images: list[np.ndarray], low: float, high: float) -> tuple[l
 
 
 def summarise(images: list[ImageReport]) -> tuple[dict[str, Any], NoiseModel]:
-    """Folder figures and one noise model for the whole set (medians over images, working units)."""
+    """Folder figures and one noise model for the whole set (working units; see ``summarise_noise``)."""
     found = summarise_noise([image.analysis for image in images])
     summary = {
         "images": len(images),

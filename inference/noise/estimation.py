@@ -270,6 +270,37 @@ def fit_poisson_gaussian(image: np.ndarray, levels: int = 24, min_blocks: int = 
     return fit
 
 
+def pool_poisson_gaussian(fits: list[PoissonGaussianFit], ranges: list[tuple[float, float]]) -> PoissonGaussianFit:
+    """One noise line for several images of one sensor, fitted to the signal levels of all of them at once.
+
+    Each image's fit (``fit_poisson_gaussian``) contributes its (mean signal, noise variance, blocks) points,
+    brought to working units (``x = (value - low) / (high - low)``, variance over ``(high - low)**2``); one
+    weighted line is fitted to them all, as for one image (Foi et al., IEEE TIP 2008, fit the line to the
+    points of one image; one sensor's images share the line, so their points pool). A textured image whose
+    few flat levels bend its own line then weighs by its points, instead of deciding the gain or the read
+    noise alone as a median of separate fits can.
+
+    Parameters
+    ----------
+    fits : list of PoissonGaussianFit
+        Per-image fits, each in its image's native units.
+    ranges : list of (float, float)
+        The native ``(low, high)`` that map to working 0 and 1, one per fit.
+
+    Returns
+    -------
+    PoissonGaussianFit
+        In working units: ``variance = gain * x + read**2`` for ``x`` in [0, 1].
+    """
+    means, variances, counts = [], [], []
+    for fit, (low, high) in zip(fits, ranges):
+        span = high - low
+        means.extend((np.asarray(fit.levels, dtype=np.float64) - low) / span)
+        variances.extend(np.asarray(fit.variances, dtype=np.float64) / span**2)
+        counts.extend(fit.counts)
+    return _fit_line(np.array(means), np.array(variances), np.array(counts, dtype=np.float64), value_range=(0.0, 1.0))
+
+
 def _value_range(image: np.ndarray) -> tuple[float, float]:
     low, high = float(image.min()), float(image.max())
     return low, (high if high > low else low + 1.0)
