@@ -47,7 +47,7 @@ from grainwright.inference.images.transforms import anscombe_forward
 from grainwright.inference.runtime.modelinfo import (
     METADATA_FORMAT,
     METADATA_KEY,
-    STACK_METADATA_VERSION,
+    metadata_version,
 )
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.checkpoint import (
@@ -249,6 +249,8 @@ def stack_description(model: DenoisingNetwork, payload: dict[str, Any]) -> dict[
         "channel_order": "frame-major",
         "ends": "reflect",
         "stack_receptive_field": model.stack_frames,
+        # How the neighbours are aligned to the centre frame before the model sees them (the runtime does the same).
+        "align_neighbours": (payload.get("training_summary") or {}).get("align_neighbours", "none"),
     }
 
 
@@ -275,8 +277,9 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
                            "channel c); H and W multiples of the alignment")
     return {
         "format": METADATA_FORMAT,
-        # Version 2 adds the "stack" key; single-frame models keep version 1 so that older runtimes still read them.
-        "format_version": STACK_METADATA_VERSION if model.stack_frames > 1 else 1,
+        # Version 2 adds the "stack" key, version 3 neighbours aligned by optical flow; a file is written at the
+        # lowest version that describes it, so that older runtimes read what they can run and refuse the rest.
+        "format_version": metadata_version(stack_description(model, payload)),
         "precision": "float32",
         "architecture": {"name": model.name, "hyper": dict(model.hyper)},
         "parameters": figures["parameters"],

@@ -105,8 +105,26 @@ def test_bench_sequence_quality_computes_every_row(tmp_path, family):
                                log=lambda message: None, steps=2, shape=(64, 96), family=family,
                                settings=(f'noise.file="{noise}"',))
     assert figures["trained"]["unet-stack"]["steps"] == 2 and figures["trained"]["unet-stack"]["stack_axis"] == "T"
+    assert figures["trained"]["unet-stack"]["align_neighbours"] == ("optical-flow" if family == "recorrupted"
+                                                                     else "none")
     assert [figures["trained"][name]["scheme"] for name in ("unet-stack", "unet-small")] == list(
         SEQUENCE_SCHEMES[family])
     assert set(figures["rows"]) == {"noisy", "3-frame average", "unet-stack K=3", "unet-small (single frame)"}
     for row in figures["rows"].values():
         assert np.isfinite(row["psnr_whole"]) and "crack_retention_moving" in row
+
+
+def test_bench_runtime_times_the_aligned_model_beside_the_plain_one(tmp_path):
+    """The runtime part times the K-frame model with aligned neighbours beside the same model without: the flow
+    estimates and warps make it slower (random weights; speed does not depend on them)."""
+    from grainwright.benchmarks.stacks import export_random, runtime_figures
+    from grainwright.inference.runtime.modelinfo import read_model_metadata
+
+    levels = {"levels": 2, "width": 4}
+    stack = export_random("unet-stack", {"frames": 3, **levels}, tmp_path / "stack.onnx")
+    aligned = export_random("unet-stack", {"frames": 3, **levels}, tmp_path / "aligned.onnx", align="optical-flow")
+    single = export_random("unet-small", levels, tmp_path / "single.onnx")
+    assert read_model_metadata(aligned)["stack"]["align_neighbours"] == "optical-flow"
+    figures = runtime_figures(stack, single, size=64, frames=4, threads=1, repeats=1, aligned_model=aligned)
+    assert set(figures["seconds_per_megapixel_per_frame"]) == {"stack", "single", "stack aligned"}
+    assert figures["aligned_ratio"] > 1.0, figures

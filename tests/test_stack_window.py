@@ -39,6 +39,21 @@ def stack_model(tmp_path_factory):
     return folder / "stack.onnx"
 
 
+@pytest.fixture(scope="module")
+def aligned_model(tmp_path_factory):
+    """The same kind of 5-frame model, trained (as its summary says) on neighbours aligned by optical flow."""
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    folder = tmp_path_factory.mktemp("aligned-model")
+    normalization = Normalization("uint16", 12, 0.0, 4095.0, 1)
+    payload = new_checkpoint("unet-stack", 1, normalization, hyper={"frames": 5, "levels": 2, "width": 4}, seed=3,
+                             training_noise={"sigma_native": 40.0},
+                             training_summary={"stack_axis": "T", "align_neighbours": "optical-flow"})
+    export_checkpoint(save_checkpoint(folder / "stack.pt", payload), folder / "stack.onnx", threads=1)
+    return folder / "stack.onnx"
+
+
 @pytest.mark.parametrize("frames", [3, 5, 7])
 @pytest.mark.parametrize("count", [7, 8, 12])
 def test_window_reflects_at_the_ends_like_numpy_pad_reflect(frames, count):
@@ -95,6 +110,56 @@ def test_chunked_equals_whole_equals_one_call_per_window(stack_model):
     for bounds in ([0, 1, 5, 9], [0, 4, 9], [0, 2, 3, 7, 8, 9]):
         chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
         assert np.array_equal(np.concatenate(chunks), whole)
+
+
+def test_an_aligned_model_records_it_and_the_runtime_aligns(aligned_model, stack_model):
+    """The export writes the alignment into the stack entry (format version 3, so that a runtime that cannot align
+    refuses the file instead of feeding it unaligned windows); unaligned models stay at version 2."""
+    metadata = read_model_metadata(aligned_model)
+    assert metadata["stack"]["align_neighbours"] == "optical-flow" and metadata["format_version"] == 3
+    assert read_model_metadata(stack_model)["stack"]["align_neighbours"] == "none"
+    assert "neighbours aligned: optical-flow" in render_metadata(metadata)
+    assert OnnxDenoiser(aligned_model, threads=1).spec.stack_alignment == "optical-flow"
+    assert OnnxDenoiser(stack_model, threads=1).spec.stack_alignment == "none"
+
+
+def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned_model):
+    """With alignment on, any split into chunks gives the whole-stack result, which equals one untiled ONNX call per
+    reflected window whose neighbours are warped onto its centre frame (``align_to_centre``), and differs from the
+    unaligned windows' result (a moving scene: the frames are shifted copies of a smooth random image)."""
+    from scipy import ndimage
+
+    from grainwright.inference.images.alignment import align_to_centre
+
+    denoiser = OnnxDenoiser(aligned_model, threads=1, tile=16, batch=3)
+    base = ndimage.gaussian_filter(np.random.default_rng(4).uniform(0, 4095, (40, 48)), 3) * 3
+    stack = np.stack([np.roll(base, 2 * i, axis=1) for i in range(7)])[..., None].astype(np.float32)
+    whole = denoise_stack_array(denoiser, stack)
+    reference = []
+    for index in range(7):
+        positions = window_indices(index, 7, 5)
+        frames = [stack[p] if p == index else align_to_centre(stack[index], stack[p]) for p in positions]
+        reference.append(denoiser.run_whole(np.concatenate(frames, axis=2)))
+    assert np.max(np.abs(whole - np.stack(reference))) / 4095.0 <= 1e-5
+    unaligned = np.stack([denoiser.run_whole(np.concatenate(list(stack[window_indices(i, 7, 5)]), axis=2))
+                          for i in range(7)])
+    assert np.max(np.abs(whole - unaligned)) / 4095.0 > 1e-3
+    for bounds in ([0, 1, 5, 7], [0, 3, 7]):
+        chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
+        assert np.array_equal(np.concatenate(chunks), whole)
+
+
+def test_an_unknown_alignment_in_the_file_is_refused_naming_it(aligned_model, tmp_path):
+    import onnx
+
+    model = onnx.load(aligned_model)
+    entry = next(e for e in model.metadata_props if e.key == "grainwright")
+    metadata = json.loads(entry.value)
+    metadata["stack"]["align_neighbours"] = "block-matching"
+    entry.value = json.dumps(metadata)
+    onnx.save(model, tmp_path / "odd.onnx")
+    with pytest.raises(InputError, match=r"odd\.onnx.*unknown neighbour alignment 'block-matching'"):
+        OnnxDenoiser(tmp_path / "odd.onnx", threads=1)
 
 
 def test_strength_blends_with_the_centre_frame(stack_model):

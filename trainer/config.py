@@ -16,6 +16,7 @@ from typing import Any
 
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.common.suggest import did_you_mean
+from grainwright.inference.images.alignment import ALIGNMENTS
 from grainwright.trainer.schemes.registry import SCHEMES
 
 # The registry's schemes: a new scheme is one file plus one line in trainer/schemes/registry.py.
@@ -56,6 +57,12 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                          "native bfloat16 (AVX512-BF16, AMX); `auto` = whichever runs faster in the same start-up "
                          "measurement (recorded in the run's config). Validation and export stay float32.",
                          choices=("auto", "float32", "bfloat16")),
+        "align_neighbours": Key("choice", "none", "Multi-frame models: `optical-flow` warps each neighbour onto "
+                                "the centre frame before the model sees it (dense optical flow estimated on the "
+                                "noisy frames, iterative Lucas-Kanade; motion compensation as in Ehret et al., CVPR "
+                                "2019), in training and at run time (recorded in the exported model); for scenes "
+                                "that move. `none` = the frames as they are (volumes, still scenes).",
+                                choices=ALIGNMENTS),
     },
     "start": {
         "weights": Key("str", "starting-model", "Where training starts: `starting-model` = the shipped starting "

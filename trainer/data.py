@@ -26,6 +26,7 @@ from pathlib import Path
 import numpy as np
 
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.alignment import AlignedNeighbours, aligned_frames
 from grainwright.inference.images.layouts import LAYOUT_FOLDERS
 
 LAYOUT_ROLES: dict[str, tuple[str, ...]] = {
@@ -165,14 +166,18 @@ class PatchSource:
         return {role: np.ascontiguousarray(array.transpose(0, 3, 1, 2)) for role, array in patches.items()}
 
 
-def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int = 1) -> list[dict[str, np.ndarray]]:
+def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int = 1,
+                  alignment: str = "none") -> list[dict[str, np.ndarray]]:
     """Training samples of a multi-frame model from one stack ``(N, H, W, C)``: pairs of K-frame windows K frames
     apart, ``noisy`` centred on frame ``i`` and ``noisy_b`` on frame ``i + K`` (frames side by side along the
     channels, frame-major; reflected at the ends of the stack as at run time). With ``stride`` 1 their frames never
     overlap, so the centre of one is a frame outside the other (Noise2Noise across frames), and every frame is a
     centre. ``stride`` s takes every s-th frame (``i - s r .. i + s r``): a scheme that halves the frames in x and y
     (``neighbor2neighbor-stack``) takes s = 2, so that the motion between neighbouring frames of the window, in
-    its half-size pixels, is what the model meets between consecutive frames at full size."""
+    its half-size pixels, is what the model meets between consecutive frames at full size. ``alignment``
+    ``"optical-flow"`` warps each window's neighbours onto its centre frame
+    (:mod:`grainwright.inference.images.alignment`, the function the runtime uses), each frame pair's flow computed
+    once on the whole frames."""
     count = frames.shape[0]
     check_stack_length(path, count, stack_frames)
     period = 2 * (count - 1)  # mirror reflection about both end frames, repeated as numpy.pad(mode="reflect")
@@ -180,7 +185,9 @@ def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int
     def window(centre: int) -> np.ndarray:
         positions = np.abs(centre + stride * (np.arange(stack_frames) - stack_frames // 2)) % period
         positions = np.where(positions > count - 1, period - positions, positions)
-        return np.concatenate(list(frames[positions]), axis=2)
+        return np.concatenate(aligned_frames(frames, positions, alignment, warped), axis=2)
+
+    warped = AlignedNeighbours(frames) if alignment != "none" else None
 
     return [{"noisy": window(i), "noisy_b": window(i + stack_frames)} for i in range(count - stack_frames)]
 

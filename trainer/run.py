@@ -377,13 +377,14 @@ def _settle_stack_scheme(requested: str, config: dict[str, Any], candidate: str,
 def _cut_windows(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
                  sources: list[Path]) -> list[dict[str, np.ndarray]]:
     """Stage 4c: a multi-frame model's whole stacks cut into pairs of K-frame windows (``stack_windows``) at the
-    chosen scheme's frame stride; single-frame images as they are."""
+    chosen scheme's frame stride, the neighbours aligned to the centre frame as ``model.align_neighbours`` says;
+    single-frame images as they are."""
     frames = stack_frames(config)
     if frames == 1:
         return working
-    stride = scheme_class(scheme).stride_for(config)
+    stride, alignment = scheme_class(scheme).stride_for(config), config["model"]["align_neighbours"]
     return [window for item, source in zip(working, sources)
-            for window in stack_windows(source, item["noisy"], frames, stride)]
+            for window in stack_windows(source, item["noisy"], frames, stride, alignment)]
 
 
 def stack_pairing(chosen: str, flags: list[str], corrected: bool) -> tuple[str, str]:
@@ -488,6 +489,9 @@ def _build_model(config: dict[str, Any], scheme: str, channels: int, level_known
                           "frames: use neighbor2neighbor-stack or noise2noise-stack")
     if cls.multi_frame and model.stack_frames == 1:
         raise ConfigError(f"scheme '{scheme}' trains multi-frame models; set model.name = \"unet-stack\"")
+    if model.stack_frames == 1 and model_cfg["align_neighbours"] != "none":
+        raise ConfigError(f"model.align_neighbours = \"{model_cfg['align_neighbours']}\": '{model.name}' reads one "
+                          "frame and has no neighbours to align; set it to \"none\" or use unet-stack")
     if patch_size % multiple:
         raise ConfigError(f"data.patch_size: {patch_size} must be a multiple of {multiple} for scheme "
                           f"'{scheme}' with architecture '{model.name}'")
@@ -592,6 +596,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
                "started_from": started_from}
     if model.stack_frames > 1:
         summary["stack_axis"] = training_stack_axis(config, layout)
+        summary["align_neighbours"] = config["model"]["align_neighbours"]
     if name == "neighbor2neighbor-stack":
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
     if scheme_class(name).default_alpha is not None:

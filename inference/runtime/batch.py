@@ -554,6 +554,8 @@ def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str,
         record["fixed_pattern_corrected"] = f"{fixed_pattern}: decided per frame"
         record["stack"] = {"frames": info.frames, "axis": info.axis, "window": denoiser.spec.stack_frames,
                            "ends": "reflect"}
+        if denoiser.spec.stack_alignment != "none":
+            record["stack"]["align_neighbours"] = denoiser.spec.stack_alignment
         tiles_bar.reset(total=len(denoiser.plan(info.height, info.width).tiles) * info.frames)
         outputs = _guarded(_stack_outputs(denoiser, read, info.frames, tiles_bar), model_fault, source)
         out_info = same_flavour(info, dtype=np.float32 if as_float else info.dtype, suffix=output.suffix)

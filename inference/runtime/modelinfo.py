@@ -16,10 +16,18 @@ from grainwright.inference.common.errors import InputError
 
 METADATA_KEY = "grainwright"
 METADATA_FORMAT = "grainwright-model"
-# Version 2 added the "stack" key of multi-frame models (K frames in, the centre frame out); single-frame models
-# are still written as version 1, so older runtimes keep reading them and refuse only what they cannot run.
-METADATA_VERSION = 2
-STACK_METADATA_VERSION = 2
+# Version 2 added the "stack" key of multi-frame models (K frames in, the centre frame out), version 3 its
+# "align_neighbours" value "optical-flow" (an older runtime would feed such a model unaligned windows). Each file is
+# written at the lowest version that describes it, so older runtimes keep reading what they can run and refuse
+# only the rest.
+METADATA_VERSION = 3
+
+
+def metadata_version(stack: dict[str, Any] | None) -> int:
+    """The format version a model with the ``stack`` entry (None: single-frame) is written at."""
+    if not stack:
+        return 1
+    return 3 if stack.get("align_neighbours", "none") != "none" else 2
 
 
 def _session(path: Path) -> ort.InferenceSession:
@@ -120,7 +128,8 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
     stack = metadata.get("stack")
     if stack:
         lines.append(f"stack window      {stack.get('frames')} frames along {stack.get('axis', '-')} (centre frame out, "
-                     f"{stack.get('channel_order', '-')} channels, ends by {stack.get('ends', '-')})")
+                     f"{stack.get('channel_order', '-')} channels, ends by {stack.get('ends', '-')}, neighbours aligned: "
+                     f"{stack.get('align_neighbours', 'none')})")
     if io:
         for kind in ("inputs", "outputs"):
             for name, type_name, shape in io[kind]:

@@ -24,6 +24,7 @@ import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import ConfigError, InputError
+from grainwright.inference.images.alignment import ALIGNMENTS
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
 from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
@@ -112,6 +113,7 @@ class ModelSpec:
     training_bit_depth: int | None = None
     stack_frames: int = 1
     stack_axis: str | None = None
+    stack_alignment: str = "none"
     metadata: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -152,6 +154,7 @@ class ModelSpec:
             training_bit_depth=number("bit_depth", int, source=normalization),
             stack_frames=int(stack.get("frames", 1)),
             stack_axis=stack.get("axis"),
+            stack_alignment=str(stack.get("align_neighbours", "none")),
             metadata=dict(metadata),
         )
 
@@ -246,6 +249,9 @@ class OnnxDenoiser:
                 raise InputError(self.path, "model has no grainwright metadata (export it with 'grainwright "
                                  "export', or give --receptive-field and --alignment by hand)")
             spec = ModelSpec.from_metadata(self.metadata)
+        if spec.stack_alignment not in ALIGNMENTS:
+            raise InputError(self.path, f"unknown neighbour alignment {spec.stack_alignment!r} in the model's stack "
+                             f"entry (this grainwright knows {', '.join(ALIGNMENTS)}); update grainwright")
         inputs = {node.name for node in self.session.get_inputs()}
         if "image" not in inputs:
             raise InputError(self.path, f"model has no input named 'image' (inputs: {sorted(inputs)})")

@@ -9,6 +9,10 @@ Frames are read once each, in order, and at most K of them are held, so a 2,000-
 than a 200-slice one. Within a frame, the window of K frames is tiled in x and y exactly like a single image
 (:mod:`grainwright.inference.runtime.tiling`); both rules are exact, so any split of a stack into chunks of
 output frames (each chunk reading the ``r`` frames beyond its ends) gives the same result as the whole stack.
+
+A model whose ``stack`` entry says ``align_neighbours = "optical-flow"`` gets each window's neighbours warped onto
+its centre frame first (:mod:`grainwright.inference.images.alignment`, the function the trainer uses); the flow
+of a frame pair depends on those two whole frames only, so chunked still equals whole.
 """
 from __future__ import annotations
 
@@ -19,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.alignment import aligned_frames
 from grainwright.inference.runtime.runner import OnnxDenoiser
 from grainwright.inference.runtime.tiling import pad_to_alignment
 
@@ -41,9 +46,11 @@ def window_indices(index: int, count: int, frames: int) -> np.ndarray:
 
 
 def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, start: int = 0,
-                    stop: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
+                    stop: int | None = None, alignment: str = "none") -> Iterator[tuple[int, np.ndarray]]:
     """Yield ``(i, window)`` for output frames ``start .. stop - 1``; ``window`` is ``(H, W, K * C)``, the K
     frames of :func:`window_indices` side by side along the channels (frame-major, as the models take them).
+    ``alignment`` ``"optical-flow"`` warps the neighbours onto the centre frame
+    (:func:`grainwright.inference.images.alignment.aligned_frames`, as in training; float32 then).
 
     ``read(j)`` returns frame ``j`` as ``(H, W, C)``; each frame is read once and at most K are held.
     """
@@ -56,7 +63,7 @@ def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, 
         for key in sorted(set(wanted.tolist())):
             if key not in held:
                 held[int(key)] = np.asarray(read(int(key)))
-        yield index, np.concatenate([held[int(key)] for key in wanted], axis=2)
+        yield index, np.concatenate(aligned_frames(held, wanted, alignment), axis=2)
 
 
 def check_stack(denoiser: OnnxDenoiser, count: int, channels: int, path: str | Path | None = None) -> None:
@@ -106,7 +113,7 @@ def denoise_stack(denoiser: OnnxDenoiser, read: Callable[[int], np.ndarray], cou
         raise InputError(denoiser.path, "is a single-frame model; denoise the frames one by one")
     if count < frames:
         raise InputError(None, f"the stack has {count} frame(s), fewer than the {frames} the model reads")
-    for _, window in sliding_windows(read, count, frames, start, stop):
+    for _, window in sliding_windows(read, count, frames, start, stop, denoiser.spec.stack_alignment):
         yield denoise_window(denoiser, window, progress)
 
 
