@@ -50,9 +50,20 @@ def test_registry_has_the_nine_schemes():
     ("noisy-only", False, False, "neighbor2neighbor"),
 ])
 def test_auto_choice_follows_the_layout(layout, noise_known, estimated, expected):
-    name, reason = choose_scheme(layout, noise_known, estimated)
+    name, reason = choose_scheme(layout, noise_known, estimated, known_kind="gaussian" if noise_known else None)
     assert name == expected
     assert "found" in reason
+
+
+@pytest.mark.parametrize("kind, expected", [("poisson-gaussian", "recorrupted"), ("poisson", "recorrupted"),
+                                            ("speckle-gamma", "neighbor2neighbor"), ("uniform", "neighbor2neighbor")])
+def test_a_noise_description_leads_to_recorrupted_only_for_noise_gaussian_in_the_working_domain(kind, expected):
+    # Recorrupted-to-Recorrupted (Pang et al. 2021) draws Gaussian recorruption: its input and target noise are
+    # independent only for Gaussian noise (Poisson-Gaussian after the generalized Anscombe transform).
+    name, reason = choose_scheme("noisy-only", True, False, known_kind=kind)
+    assert name == expected
+    if expected == "neighbor2neighbor":
+        assert f"{kind} noise" in reason and "not Gaussian in the working domain" in reason
 
 
 def test_auto_without_noise_description_for_clean_images_is_an_error():

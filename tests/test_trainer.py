@@ -325,6 +325,28 @@ def _scenario_folder(root, noise: str, size: int = 256, count: int = 4):
 
 
 @pytest.mark.slow
+def test_a_speckle_noise_description_leads_auto_to_neighbor2neighbor_and_recorrupted_to_a_caution(tmp_path):
+    # Recorrupted-to-Recorrupted (Pang et al. 2021) assumes Gaussian noise in the working domain; the log of gamma
+    # speckle is skewed (its mean is psi(L) - ln L, its distribution log-gamma), so a given description of speckle
+    # is handled as the same speckle found by the analysis is.
+    from grainwright.inference.noise.models import GammaSpeckle, save_noise
+
+    folder = _scenario_folder(tmp_path / "data", "speckle")
+    save_noise(GammaSpeckle(looks=4.0), folder / "noise.toml")
+    lines: list[str] = []
+    summary, _ = train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "auto"), announce=lines.append,
+                               assignments=TINY_UNET)
+    assert summary["scheme"] == "neighbor2neighbor"
+    assert any(line.startswith("scheme auto:") and "speckle-gamma noise" in line and "not Gaussian" in line
+               for line in lines)
+    lines.clear()
+    summary, _ = train_command("noisy-only", str(folder), scheme="recorrupted", steps=2, out=str(tmp_path / "asked"),
+                               announce=lines.append, assignments=TINY_UNET)
+    assert summary["scheme"] == "recorrupted"  # asked for by name: it trains, with the caution
+    assert any(line.startswith("caution: scheme 'recorrupted'") for line in lines)
+
+
+@pytest.mark.slow
 def test_noisy_only_config_on_speckle_trains_in_the_log_domain_with_the_bias_removed(tmp_path):
     from scipy.special import digamma
 
