@@ -14,6 +14,8 @@ MIN_ANALYSED_SIDE = 8
 MIN_EXPONENT_SPAN = 1.4
 # Median of |N(0, 1)|: converts a median absolute deviation to a standard deviation.
 MAD_TO_SIGMA = 0.6744897501960817
+# One-sided Gaussian tail beyond 4.5 sigma, 1 - Phi(4.5): how rarely noise alone may make an impulse-like spike.
+GAUSSIAN_SPIKE_TAIL = 3.4e-6
 
 
 def _as_hwc(image: np.ndarray) -> np.ndarray:
@@ -747,6 +749,19 @@ def _with_flags(model: Any, kind: str, confident: bool, notes: list[str], impuls
     return model, kind, confident
 
 
+def _speckle_spike_sigma(signal: np.ndarray, looks: float) -> np.ndarray:
+    """The per-pixel "sigma" to give ``detect_impulses`` for gamma speckle of ``looks`` looks: 4.5 times it is
+    how far above the signal speckle itself reaches as rarely as Gaussian noise passes 4.5 sigma (one-sided,
+    3.4e-6). Gamma speckle's upper tail is long (exponential at one look), so 4.5 of its standard deviations
+    would flag its own bright grains as impulses. Quantile from ``scipy.special.gammaincinv`` (the regularised
+    incomplete gamma function's inverse; unit-mean gamma of L looks)."""
+    from scipy.special import gammaincinv
+
+    looks = max(float(looks), 0.1)
+    excess = float(gammaincinv(looks, 1.0 - GAUSSIAN_SPIKE_TAIL)) / looks - 1.0
+    return np.maximum(signal, 0.0) * excess / 4.5
+
+
 def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None) -> NoiseAnalysis:
     """Estimate and characterise the noise of one image and suggest a model, a transform and corrections.
 
@@ -771,13 +786,16 @@ def analyse_noise(image: np.ndarray, low: float = 0.0, high: float | None = None
     sigma = estimate_sigma(image)
     fit = fit_poisson_gaussian(image)
     exponent = _variance_exponent(fit, low)
+    model, kind, transform, confident, notes = _suggested_model(fit, exponent, sigma, low, span)
     local_sigma = None
-    if fit.signal_dependent:
+    if kind == "speckle-gamma":
+        local_sigma = _speckle_spike_sigma(ndimage.median_filter(image, size=(3, 3, 1), mode="mirror") - low,
+                                           model.looks)
+    elif fit.signal_dependent:
         local_sigma = fit.sigma_at(ndimage.median_filter(image, size=(3, 3, 1), mode="mirror"))
     impulse = detect_impulses(image, noise_sigma=local_sigma)
     correlation = detect_correlation(image)
     banding = detect_banding(image)
-    model, kind, transform, confident, notes = _suggested_model(fit, exponent, sigma, low, span)
     model, kind, confident = _with_flags(model, kind, confident, notes, impulse, banding, correlation)
     return NoiseAnalysis(
         low=float(low),
