@@ -102,6 +102,19 @@ def test_config_file_errors_name_the_file(tmp_path):
         load_config(tmp_path / "missing.toml")
 
 
+def test_a_bad_command_line_value_names_the_command_line_not_the_file(tmp_path):
+    path = tmp_path / "good.toml"
+    path.write_text("[optim]\nlr = 0.001\n")
+    with pytest.raises(ConfigError, match=r"^--set: data\.validation_split: 'strips' is not one of") as raised:
+        load_config(path, ['data.validation_split="strips"'])
+    assert "good.toml" not in str(raised.value)
+    with pytest.raises(ConfigError, match=r"^--set: budget\.minutes"):
+        load_config("fast-cpu", ["budget.minutes=-1"])
+    path.write_text("[optim]\nlr = -1\n")  # the file's own mistake still names the file, whatever --set says
+    with pytest.raises(ConfigError, match=r"good\.toml: optim\.lr"):
+        load_config(path, ["budget.minutes=1"])
+
+
 def test_markdown_reference_lists_every_key():
     text = schema_markdown()
     def keys(node, prefix=""):

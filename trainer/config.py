@@ -328,11 +328,18 @@ def load_config(path: str | Path | None, assignments: list[str] = ()) -> dict[st
         if "generated" in raw:  # the starting model's recipe: a config plus the generated-data table
             raise ConfigError(f"{given}: a starting-model recipe (it has a [generated] table), not a training config; "
                               f"train it with 'grainwright starting-model train --recipe {given} --out RUN_DIR'")
-        try:
-            return validate(apply_assignments(raw, list(assignments)))
-        except ConfigError as error:
-            raise ConfigError(f"{path}: {error}") from None
-    return validate(apply_assignments(raw, list(assignments)))
+        _validated(raw, [], str(path))  # the file's own mistakes name the file
+    return _validated(raw, list(assignments), "--set")
+
+
+def _validated(raw: dict[str, Any], assignments: list[str], source: str) -> dict[str, Any]:
+    """``raw`` with ``assignments`` applied, validated; a mistake is reported as coming from ``source`` (the
+    config file, or ``--set`` for the values given on the command line)."""
+    try:
+        return validate(apply_assignments(raw, assignments))
+    except ConfigError as error:
+        text = str(error)
+        raise ConfigError(text if text.startswith("--set") else f"{source}: {text}") from None
 
 
 def schema_markdown() -> str:
