@@ -208,6 +208,18 @@ def test_banding_is_refused_unless_corrected(tmp_path):
     assert summary["fixed_pattern_corrected"] and abs(summary["frame_noise_correlation"]) < 0.1
 
 
+def _assert_about_the_mean(output: np.ndarray, centre: np.ndarray) -> None:
+    """A model trained on pure noise outputs about the mean, with no share of the centre frame copied (the
+    identity would keep all of its spread, correlation 1 and least-squares slope 1)."""
+    slope = np.cov(output.ravel(), centre.ravel())[0, 1] / np.var(centre)
+    figures = (f"output mean {output.mean():.0f}, std {output.std():.0f}; input mean {centre.mean():.0f}, "
+               f"std {centre.std():.0f}; slope {slope:.2f}")
+    assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
+    assert np.std(output) < 0.5 * np.std(centre), figures
+    assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.2, figures
+    assert abs(slope) < 0.05, figures
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("correlation", [0.0, 0.3, 0.5])
 def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, correlation):
@@ -227,13 +239,7 @@ def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, correla
     assert summary["scheme"] == "recorrupted-stack"
     assert abs(summary["frame_noise_correlations"][0] - correlation) < 0.1, summary["frame_noise_correlations"]
     output, centre, _ = _trained_output(run, repeated=False, correlation=correlation)
-    slope = np.cov(output.ravel(), centre.ravel())[0, 1] / np.var(centre)
-    figures = (f"output mean {output.mean():.0f}, std {output.std():.0f}; input mean {centre.mean():.0f}, "
-               f"std {centre.std():.0f}; slope {slope:.2f}")
-    assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
-    assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
-    assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.2, figures
-    assert abs(slope) < 0.05, figures
+    _assert_about_the_mean(output, centre)
 
 
 @pytest.mark.slow
@@ -253,13 +259,7 @@ def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_th
                                  announce=lambda line: None)
     assert summary["align_neighbours"] == "optical-flow"
     output, centre, _ = _trained_output(run, repeated=False, alignment="optical-flow")
-    slope = np.cov(output.ravel(), centre.ravel())[0, 1] / np.var(centre)
-    figures = (f"output mean {output.mean():.0f}, std {output.std():.0f}; input mean {centre.mean():.0f}, "
-               f"std {centre.std():.0f}; slope {slope:.2f}")
-    assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
-    assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
-    assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.2, figures
-    assert abs(slope) < 0.05, figures
+    _assert_about_the_mean(output, centre)
 
 
 def test_a_single_frame_model_with_aligned_neighbours_is_refused(tmp_path):
