@@ -261,6 +261,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
     The training data folder appears by its base name, or as the full path with ``record_data_path``.
     """
     figures = model.describe()
+    stack = stack_description(model, payload)
     inputs = {"image": "float32 N x C x H x W, native pixel values; any H and W of at least the alignment (the graph "
                        "pads to multiples of the alignment by reflection and crops back; aligned sizes avoid it)"}
     if model.takes_noise_map:
@@ -279,7 +280,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "format": METADATA_FORMAT,
         # Version 2 adds the "stack" key, version 3 neighbours aligned by optical flow; a file is written at the
         # lowest version that describes it, so that older runtimes read what they can run and refuse the rest.
-        "format_version": metadata_version(stack_description(model, payload)),
+        "format_version": metadata_version(stack),
         "precision": "float32",
         "architecture": {"name": model.name, "hyper": dict(model.hyper)},
         "parameters": figures["parameters"],
@@ -290,7 +291,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "tiling_rule": tiling_rule(figures["receptive_field"], figures["alignment"], figures["tile_margin"]),
         "channels": model.channels,
         "takes_noise_map": model.takes_noise_map,
-        "stack": stack_description(model, payload),
+        "stack": stack,
         "inputs": inputs,
         "outputs": {"denoised": "float32 N x C x H x W, native values, not clipped or rounded"},
         "normalization": normalization.to_dict(),
