@@ -14,6 +14,7 @@ from grainwright.inference.images.alignment import (
     align_to_centre,
     aligned_frames,
     check_alignment,
+    held_still,
     neighbour_flow,
     warp_onto_centre,
 )
@@ -44,14 +45,16 @@ def test_the_flow_recovers_a_known_subpixel_translation_of_a_sample_image(shift)
 
 def test_the_flow_does_not_depend_on_the_units_of_the_pixel_values():
     """The frames are mapped together to the centre frame's percentiles first, so native values and working units
-    (a linear map of them) give the same flow: the runtime and the trainer align alike."""
+    (a linear map of them) give the same flow: the runtime and the trainer align alike. The zero-motion test is a
+    threshold, so float32 rounding can tip a pixel that sits on it, and the median carries that into its window:
+    measured, 48 of 32,768 flow values (0.15 %) differ here; the bound allows 0.5 %."""
     rng = np.random.default_rng(1)
     camera = sample_images.camera()[:128, :128].astype(np.float32)
     centre = (camera + rng.normal(0, 8, camera.shape))[..., None].astype(np.float32)
     neighbour = (ndimage.shift(camera, (0.0, 2.0), mode="nearest") + rng.normal(0, 8, camera.shape))[..., None]
     native = neighbour_flow(centre * 16 + 100, neighbour.astype(np.float32) * 16 + 100)
     working = neighbour_flow(centre / 255, neighbour.astype(np.float32) / 255)
-    assert np.max(np.abs(native - working)) < 1e-3
+    assert np.mean(np.abs(native - working) > 1e-3) < 0.005
 
 
 def test_aligned_neighbours_are_closer_to_the_centre_frame_on_the_moving_lane():
@@ -74,6 +77,51 @@ def test_aligned_neighbours_are_closer_to_the_centre_frame_on_the_moving_lane():
         assert rms(warped_clean, lane) < 0.25 * rms(clean[centre + offset], lane)
         assert rms(warped_noisy, lane) < 0.75 * rms(noisy[centre + offset], lane)
         assert rms(warped_noisy, ~lane) < 1.1 * rms(noisy[centre + offset], ~lane)
+
+
+def test_a_still_scene_keeps_zero_motion_and_its_neighbour_unresampled():
+    """Two noisy frames of the same still scene (scikit-image's sample image ``camera``, independent Gaussian noise
+    of 8 grey levels): the Lucas-Kanade flow alone follows the noise where the image is flat, so the zero-motion
+    test must hold most pixels at zero motion, and there the aligned neighbour is the neighbour itself, not a
+    resampling of it. Measured: 94 % held at zero (without the test none is; on the conveyor's still scene the
+    flow's median was 0.6 to 0.7 pixel). Bound ours."""
+    rng = np.random.default_rng(4)
+    camera = sample_images.camera()[::2, ::2].astype(np.float32)
+    centre, neighbour = ((camera + rng.normal(0, 8, camera.shape))[..., None].astype(np.float32) for _ in range(2))
+    flow = neighbour_flow(centre, neighbour)
+    held = np.all(flow == 0, axis=0)
+    assert held.mean() > 0.9, held.mean()
+    assert np.array_equal(align_to_centre(centre, neighbour)[held], neighbour[held])
+
+
+def test_the_zero_motion_test_lets_real_motion_through():
+    """A whole-pixel motion of the sample image ``camera`` (3 pixels to the right, the conveyor's speed): the test
+    holds no pixel with structure at zero motion (gradient magnitude above 5 grey levels per pixel after a 2-pixel
+    Gaussian; the noise is 8), only flat ones, where any shift looks the same (measured: 20 % of the interior, the
+    sky), and the flow reads 3 pixels."""
+    rng = np.random.default_rng(5)
+    camera = sample_images.camera()[::2, ::2].astype(np.float32)
+    centre = camera + rng.normal(0, 8, camera.shape)
+    neighbour = np.roll(camera, 3, axis=1) + rng.normal(0, 8, camera.shape)
+    reference, moving = (frame.astype(np.float32) / 255 for frame in (centre, neighbour))
+    flow = neighbour_flow(centre[..., None].astype(np.float32), neighbour[..., None].astype(np.float32))
+    interior = (slice(16, -16), slice(16, -16))
+    held = held_still(reference, moving, np.stack([np.zeros_like(camera), np.full_like(camera, 3.0)]))
+    structure = ndimage.gaussian_gradient_magnitude(camera, 2) > 5
+    assert not held[interior][structure[interior]].any() and held[interior].mean() < 0.3
+    assert abs(np.median(flow[1][interior]) - 3) < 0.1 and abs(np.median(flow[0][interior])) < 0.1
+
+
+def test_the_warp_is_the_cubic_spline_resampling():
+    """Reference: SciPy's ``ndimage.shift`` (cubic spline, ``order=3``, edges repeated) of the sample image
+    ``camera`` by a constant sub-pixel shift; ``warp_onto_centre`` with the opposite constant flow must give the
+    same values (the centre pixel is found ``flow`` further in the neighbour). Tolerance ours."""
+    camera = sample_images.camera()[:96, :128].astype(np.float32)
+    flow = np.stack([np.full(camera.shape, 0.25, np.float32), np.full(camera.shape, -1.5, np.float32)])
+    warped = warp_onto_centre(camera[..., None], flow)[..., 0]
+    reference = ndimage.shift(camera.astype(np.float64), (-0.25, 1.5), order=3, mode="nearest")
+    interior = (slice(8, -8), slice(8, -8))
+    assert np.max(np.abs(warped - reference)[interior]) < 0.5
 
 
 def test_the_centre_frame_is_never_warped_and_none_keeps_the_frames():

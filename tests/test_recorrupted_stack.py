@@ -251,7 +251,8 @@ def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_th
     once (2,000 steps): flow on frames smoothed by 1 pixel (``FLOW_SMOOTHING``) output/input standard deviation
     27 / 200, correlation with the centre frame 0.08, slope 0.01; flow on the unsmoothed noisy frames 50 / 200,
     0.22, 0.05, which these bounds reject (on pure noise the flow has no structure to hold it and follows the
-    noise)."""
+    noise); with the zero-motion test, the flow's median filter and the cubic warp added (the alignment now)
+    24 / 200, 0.04, 0.004."""
     data = _with_noise_description(_write_stacks(tmp_path / "data", False, size=48))
     summary, run = train_command(None, str(data), scheme="recorrupted-stack", steps=2000, out=str(tmp_path / "run"),
                                  assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0",

@@ -7,13 +7,32 @@ Here the dense flow from the centre frame to each neighbour is estimated on the 
 coarse-to-fine iterative Lucas-Kanade solver (``skimage.registration.optical_flow_ilk``; Lucas and Kanade 1981,
 Le Besnerais and Champagnat 2005 as scikit-image cites), window radius ``FLOW_RADIUS`` pixels, on copies of both
 frames smoothed by a Gaussian of ``FLOW_SMOOTHING`` pixels (for the flow only; the warped values are not
-smoothed), and the neighbour is resampled at the centre frame's pixel positions plus the flow by
-``skimage.transform.warp`` (bilinear, order 1; ``mode="edge"``: a position the motion brings in from outside the
-frame takes the nearest edge pixel). The estimator was chosen by measurement on the generated conveyor sequence
-(docs/benchmarks.md, "Stacks and volumes"): iterative Lucas-Kanade at radius 7 found the lane's 3 and 6 pixel
-shifts to within 0.1 pixel in 0.16 s per frame pair of 192 x 256 (one thread), where scikit-image's TV-L1
-(``optical_flow_tvl1`` at its defaults) took 0.30 s and left the warped clean neighbour about 2.7 times further
-from the centre frame on the lane; radius 3 and 11 did worse than 7.
+smoothed). The estimator was chosen by measurement on the generated conveyor sequence (docs/benchmarks.md, "Stacks
+and volumes"): iterative Lucas-Kanade at radius 7 found the lane's 3 and 6 pixel shifts to within 0.1 pixel in
+0.16 s per frame pair of 192 x 256 (one thread), where scikit-image's TV-L1 (``optical_flow_tvl1`` at its
+defaults) took 0.30 s and left the warped clean neighbour about 2.7 times further from the centre frame on the
+lane; radius 3 and 11 did worse than 7.
+
+Where the frames hold little structure the Lucas-Kanade flow follows the noise: on the conveyor's still scene its
+median was 0.6 to 0.7 pixel and its 90th percentile 2 to 3 pixels, so still parts were resampled at noise-driven
+shifts and their fine detail blurred. Two steps take that out before the warp (:func:`neighbour_flow`):
+
+1. The zero-motion test (:func:`held_still`): over each Lucas-Kanade window, the mean squared difference between
+   the centre frame and the neighbour as it is is compared with that between the centre frame and the neighbour
+   shifted by the flow rounded to whole pixels (pixels moved, not mixed, so both residuals carry the same noise).
+   Where zero motion does at most ``STILL_MARGIN`` (10 %) worse, the flow is set to zero. A classical motion
+   detection by frame differences; the margin is ours, measured.
+2. A median filter of each flow component over the Lucas-Kanade window, ``(2 * FLOW_RADIUS + 1)`` pixels square:
+   the motion of a part is one value over many windows, and the median takes it while keeping the step at the
+   part's edge (Tukey's running median; used to clean optical flow fields by Sun, Roth and Black, "Secrets of
+   optical flow estimation and their principles", CVPR 2010), so isolated noise-driven vectors inside a moving
+   part and isolated non-zero ones in a still region give way to their surroundings.
+
+The neighbour is then resampled at the centre frame's pixel positions plus the flow by ``skimage.transform.warp``
+with a cubic spline (order ``WARP_ORDER`` = 3; ``mode="edge"``: a position the motion brings in from outside the
+frame takes the nearest edge pixel). Where the flow is zero the neighbour's pixels are taken as they are.
+Measured at 3,000 fixed steps on the conveyor sequence, seeds 0 / 1 / 2 (docs/benchmarks.md): the steps and the
+cubic spline against the flow as estimated and a bilinear warp (the method before).
 
 The flow is estimated on the mean over the channels, after the same affine map of both frames that takes the
 centre frame's 0.5th and 99.5th percentiles to 0 and 1: the estimate is then the same for any linear unit of the
@@ -31,13 +50,16 @@ hold no structure to pin the flow, which then follows the noise: on two frames o
 warped neighbour correlated 0.08 to 0.10 with the centre frame's noise with the flow estimated on the raw frames,
 0.05 to 0.07 with the 1-pixel smoothing (one draw each at 48 x 48 and 192 x 256). A model trained on pure noise
 stacks with the raw-frame flow copied 5 % of the centre frame's noise (least-squares slope 0.05, correlation
-0.22), with the smoothing 1 % (0.01, 0.08): hence the smoothing. The tests train on pure noise stacks with
-alignment on and check that the output is about the mean (tests/test_recorrupted_stack.py,
-tests/test_stack_training.py).
+0.22), with the smoothing 1 % (0.01, 0.08): hence the smoothing. The zero-motion test reads the centre frame too,
+pooled over the same window, and holds most of such frames at zero motion, where the neighbour is taken unwarped
+and carries none of the centre frame's noise: on pure independent noise it held 72 % of the pixels at zero, and
+the aligned neighbour's correlation with the centre frame's noise went from 0.067 to 0.038 (mean of 8 draws of 192
+x 256; 0.072 to 0.047 at 48 x 48). The tests train on pure noise stacks with alignment on and check that the output
+is about the mean (tests/test_recorrupted_stack.py, tests/test_stack_training.py).
 
-Bilinear resampling at a fractional shift averages neighbouring pixels, so a warped neighbour's noise is weaker
-and spatially correlated; training and run time warp with the same function, so the model learns on the inputs it
-meets.
+Resampling at a fractional shift mixes neighbouring pixels, so a warped neighbour's noise is weaker and spatially
+correlated (less so with the cubic spline than bilinearly, and not at all where the flow is zero); training and run
+time warp with the same function, so the model learns on the inputs it meets.
 """
 from __future__ import annotations
 
@@ -51,6 +73,8 @@ from skimage.transform import warp
 ALIGNMENTS = ("none", "optical-flow")  # the values of model.align_neighbours and of the exported "stack" entry
 FLOW_SMOOTHING = 1.0  # pixels; standard deviation of the Gaussian both frames are smoothed with for the flow only
 FLOW_RADIUS = 7  # pixels; the radius of the Lucas-Kanade window (scikit-image's default), measured best of 3 / 7 / 11
+STILL_MARGIN = 0.1  # the zero-motion test's margin: zero motion kept where its residual is within 10 % of the flow's
+WARP_ORDER = 3  # the spline order of the resampling: cubic (measured against bilinear, order 1, docs/benchmarks.md)
 
 
 def _flow_images(centre: np.ndarray, neighbour: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -74,9 +98,31 @@ def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
         the neighbour.
     """
     reference, moving = _flow_images(centre, neighbour)
-    if FLOW_SMOOTHING:
-        reference, moving = (ndimage.gaussian_filter(image, FLOW_SMOOTHING) for image in (reference, moving))
-    return optical_flow_ilk(reference, moving, radius=FLOW_RADIUS).astype(np.float32)
+    smoothed = (ndimage.gaussian_filter(image, FLOW_SMOOTHING) for image in (reference, moving))
+    flow = optical_flow_ilk(*smoothed, radius=FLOW_RADIUS).astype(np.float32)
+    flow[:, held_still(reference, moving, flow)] = 0.0
+    window = 2 * FLOW_RADIUS + 1
+    return np.stack([ndimage.median_filter(component, size=window, mode="nearest") for component in flow])
+
+
+def held_still(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray) -> np.ndarray:
+    """Where zero motion explains ``moving`` as well as ``flow`` does (a boolean ``(H, W)`` map): the zero-motion
+    test.
+
+    Both residuals against ``reference`` are mean squares over the Lucas-Kanade window, ``(2 * FLOW_RADIUS + 1)^2``
+    pixels: ``moving`` as it is, and ``moving`` shifted by ``flow`` rounded to whole pixels (a shift by whole pixels
+    moves pixels without mixing them, so the noise in both residuals is the same, twice the frames' variance, and
+    only structure that did move makes them differ). Zero motion is kept where its residual is at most
+    ``1 + STILL_MARGIN`` times the other: the flow there is not told apart from noise. A window mean of 225
+    squared differences of independent noise has a relative spread of about 0.1, hence the margin (our choice,
+    measured on the conveyor sequence, docs/benchmarks.md)."""
+    height, width = flow.shape[1:]
+    rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
+    whole = np.rint(flow)
+    shifted = warp(moving, np.stack([rows + whole[0], cols + whole[1]]), order=0, mode="edge", preserve_range=True)
+    window = 2 * FLOW_RADIUS + 1
+    unmoved = ndimage.uniform_filter((moving - reference) ** 2, window)
+    return unmoved <= (1.0 + STILL_MARGIN) * ndimage.uniform_filter((shifted - reference) ** 2, window)
 
 
 def warp_onto_centre(neighbour: np.ndarray, flow: np.ndarray) -> np.ndarray:
@@ -87,7 +133,7 @@ def warp_onto_centre(neighbour: np.ndarray, flow: np.ndarray) -> np.ndarray:
     rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
     coordinates = np.stack([rows + flow[0], cols + flow[1]])
     values = np.asarray(neighbour, np.float32)
-    return np.stack([warp(values[..., channel], coordinates, order=1, mode="edge", preserve_range=True)
+    return np.stack([warp(values[..., channel], coordinates, order=WARP_ORDER, mode="edge", preserve_range=True)
                      for channel in range(values.shape[2])], axis=2).astype(np.float32)
 
 
