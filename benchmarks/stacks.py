@@ -222,7 +222,8 @@ SEQUENCE_SCHEMES = {  # the schemes of the K-frame and the single-frame model, b
 SINGLE_FRAME_SETTINGS = {"recorrupted": ("recorrupted.alpha=0.5",), "neighbor2neighbor": ()}
 # The K-frame model's settings, by family: `recorrupted-stack` with its neighbours aligned to the centre frame by
 # optical flow (the lane moves; at 3,000 steps on seed 0 it kept 0.83 of the lane cracks' contrast against 0.70
-# unaligned and 0.78 for the single-frame model; docs/benchmarks.md). `neighbor2neighbor-stack` was not measured
+# unaligned and 0.78 for the single-frame model; with the flow's zero-motion test and median filter and the cubic
+# warp 0.90 / 0.75 / 0.67 on seeds 0 / 1 / 2; docs/benchmarks.md). `neighbor2neighbor-stack` was not measured
 # with alignment and stays without.
 SEQUENCE_STACK_SETTINGS = {"recorrupted": ('model.align_neighbours="optical-flow"',), "neighbor2neighbor": ()}
 
