@@ -89,7 +89,9 @@ def _flow_images(centre: np.ndarray, neighbour: np.ndarray) -> tuple[np.ndarray,
 
 def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
     """The dense motion from ``centre`` to ``neighbour`` (both ``(H, W, C)``), estimated on the noisy frames by
-    iterative Lucas-Kanade (``skimage.registration.optical_flow_ilk``, radius ``FLOW_RADIUS``).
+    iterative Lucas-Kanade (``skimage.registration.optical_flow_ilk``, radius ``FLOW_RADIUS``, on the frames
+    smoothed by ``FLOW_SMOOTHING`` pixels), set to zero where the zero-motion test (:func:`held_still`) finds no
+    motion told apart from noise, then median-filtered over the Lucas-Kanade window.
 
     Returns
     -------
@@ -107,15 +109,16 @@ def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
 
 def held_still(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray) -> np.ndarray:
     """Where zero motion explains ``moving`` as well as ``flow`` does (a boolean ``(H, W)`` map): the zero-motion
-    test.
+    test. ``reference`` and ``moving`` are the centre frame and the neighbour ``(H, W)`` as mapped for the flow
+    (unsmoothed), ``flow`` ``(2, H, W)`` the Lucas-Kanade flow in pixels.
 
     Both residuals against ``reference`` are mean squares over the Lucas-Kanade window, ``(2 * FLOW_RADIUS + 1)^2``
     pixels: ``moving`` as it is, and ``moving`` shifted by ``flow`` rounded to whole pixels (a shift by whole pixels
     moves pixels without mixing them, so the noise in both residuals is the same, twice the frames' variance, and
     only structure that did move makes them differ). Zero motion is kept where its residual is at most
     ``1 + STILL_MARGIN`` times the other: the flow there is not told apart from noise. A window mean of 225
-    squared differences of independent noise has a relative spread of about 0.1, hence the margin (our choice,
-    measured on the conveyor sequence, docs/benchmarks.md)."""
+    squared differences of independent Gaussian noise has a relative spread of sqrt(2 / 225), about 0.09, hence
+    the margin (our choice; 0 held half as many still pixels on the conveyor sequence, docs/benchmarks.md)."""
     height, width = flow.shape[1:]
     rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
     whole = np.rint(flow)
@@ -126,8 +129,9 @@ def held_still(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray) -> n
 
 
 def warp_onto_centre(neighbour: np.ndarray, flow: np.ndarray) -> np.ndarray:
-    """``neighbour`` ``(H, W, C)`` resampled at the centre frame's positions plus ``flow`` ``(2, H, W)``:
-    bilinear, edge pixels repeated beyond the frame (``skimage.transform.warp``, order 1, ``mode="edge"``).
+    """``neighbour`` ``(H, W, C)`` resampled at the centre frame's positions plus ``flow`` ``(2, H, W)``: cubic
+    spline, edge pixels repeated beyond the frame (``skimage.transform.warp``, order ``WARP_ORDER``,
+    ``mode="edge"``, values clipped to the neighbour's range as scikit-image does by default).
     Returns float32 in the neighbour's units."""
     height, width = flow.shape[1:]
     rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
