@@ -107,6 +107,14 @@ def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
     return np.stack([ndimage.median_filter(component, size=window, mode="nearest") for component in flow])
 
 
+def _displaced_positions(flow: np.ndarray) -> np.ndarray:
+    """The pixel positions ``(2, H, W)`` of the centre frame plus ``flow`` ``(2, H, W)``: where each centre pixel is
+    sampled in the neighbour (the coordinate map of ``skimage.transform.warp``)."""
+    height, width = flow.shape[1:]
+    rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
+    return np.stack([rows + flow[0], cols + flow[1]])
+
+
 def held_still(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray) -> np.ndarray:
     """Where zero motion explains ``moving`` as well as ``flow`` does (a boolean ``(H, W)`` map): the zero-motion
     test. ``reference`` and ``moving`` are the centre frame and the neighbour ``(H, W)`` as mapped for the flow
@@ -119,10 +127,7 @@ def held_still(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray) -> n
     ``1 + STILL_MARGIN`` times the other: the flow there is not told apart from noise. A window mean of 225
     squared differences of independent Gaussian noise has a relative spread of sqrt(2 / 225), about 0.09, hence
     the margin (our choice; 0 held half as many still pixels on the conveyor sequence, docs/benchmarks.md)."""
-    height, width = flow.shape[1:]
-    rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
-    whole = np.rint(flow)
-    shifted = warp(moving, np.stack([rows + whole[0], cols + whole[1]]), order=0, mode="edge", preserve_range=True)
+    shifted = warp(moving, _displaced_positions(np.rint(flow)), order=0, mode="edge", preserve_range=True)
     window = 2 * FLOW_RADIUS + 1
     unmoved = ndimage.uniform_filter((moving - reference) ** 2, window)
     return unmoved <= (1.0 + STILL_MARGIN) * ndimage.uniform_filter((shifted - reference) ** 2, window)
@@ -133,9 +138,7 @@ def warp_onto_centre(neighbour: np.ndarray, flow: np.ndarray) -> np.ndarray:
     spline, edge pixels repeated beyond the frame (``skimage.transform.warp``, order ``WARP_ORDER``,
     ``mode="edge"``, values clipped to the neighbour's range as scikit-image does by default).
     Returns float32 in the neighbour's units."""
-    height, width = flow.shape[1:]
-    rows, cols = np.meshgrid(np.arange(height, dtype=np.float32), np.arange(width, dtype=np.float32), indexing="ij")
-    coordinates = np.stack([rows + flow[0], cols + flow[1]])
+    coordinates = _displaced_positions(flow)
     values = np.asarray(neighbour, np.float32)
     return np.stack([warp(values[..., channel], coordinates, order=WARP_ORDER, mode="edge", preserve_range=True)
                      for channel in range(values.shape[2])], axis=2).astype(np.float32)
