@@ -263,3 +263,32 @@ def test_the_check_holds_across_the_noise_margin_and_its_slope_is_sure_at_a_scal
     assert smoother.at(1.0) < start.at(1.0) and not fine_tuned_is_better(start, smoother, 0.05)
     assert fine_tuned_is_better(start, HeldoutScore(0.98, slope=0.2), 0.05)
     assert fine_tuned_is_better(start, smoother, 0.0)
+
+
+def test_the_consistency_weight_defaults_to_1_when_fine_tuning_and_2_from_random_weights():
+    """``neighbor2neighbor.gamma = "auto"`` (the default): Huang et al. 2021's final weight 2 from random weights,
+    1 for single-frame fine-tuning (measured, docs/benchmarks.md); the stack scheme keeps 2; a number applies."""
+    from grainwright.trainer.config import load_config
+    from grainwright.trainer.schemes.neighbor2neighbor import Neighbor2Neighbor
+    from grainwright.trainer.schemes.neighbor2neighbor_stack import Neighbor2NeighborStack
+
+    fine_tuning = load_config(None)
+    assert fine_tuning["neighbor2neighbor"]["gamma"] == "auto" and fine_tuning["start"]["weights"] == "starting-model"
+    from_random = load_config(None, ['start.weights="random"'])
+    assert Neighbor2Neighbor.gamma_for(fine_tuning) == 1.0 and Neighbor2Neighbor.gamma_for(from_random) == 2.0
+    assert Neighbor2NeighborStack.gamma_for(fine_tuning) == Neighbor2NeighborStack.gamma_for(from_random) == 2.0
+    assert Neighbor2Neighbor.gamma_for(load_config(None, ["neighbor2neighbor.gamma=0.5"])) == 0.5
+    with pytest.raises(ConfigError, match="neighbor2neighbor.gamma: expected a number or \"auto\""):
+        load_config(None, ['neighbor2neighbor.gamma="strong"'])
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("start, gamma", [("starting-model", 1.0), ("random", 2.0)])
+def test_the_run_records_the_consistency_weight_it_used(tmp_path, start, gamma):
+    folder = _noisy_folder(tmp_path / "data")
+    lines: list[str] = []
+    summary, run = train_command("noisy-only", str(folder), steps=2, out=str(tmp_path / "run"), announce=lines.append,
+                                 assignments=SMALL + ['scheme="neighbor2neighbor"', f'start.weights="{start}"'])
+    assert summary["neighbor2neighbor_gamma"] == gamma
+    assert tomllib.loads(run.config.read_text())["neighbor2neighbor"]["gamma"] == gamma
+    assert any(line.startswith(f"consistency regulariser: gamma {gamma:g}") for line in lines), lines

@@ -187,7 +187,9 @@ def test_neighbor2neighbor_validation_ranks_a_denoiser_above_the_identity():
     # denoiser (sigma^2 + gamma sigma^2); the reconstruction term alone ranks them the right way round.
     sigma = 0.1
     noisy = 0.5 + sigma * np.random.default_rng(10).standard_normal((16, 1, 32, 32)).astype(np.float32)
-    scheme = Neighbor2Neighbor(defaults())
+    config = defaults()
+    config["neighbor2neighbor"]["gamma"] = 2.0
+    scheme = Neighbor2Neighbor(config)
     tensors = {k: torch.from_numpy(v) for k, v in scheme.prepare({"noisy": noisy}, np.random.default_rng(11)).items()}
 
     class Perfect(torch.nn.Module):

@@ -162,7 +162,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                        "or zero (`zero`).", choices=("neighbor", "mean", "noise", "zero")),
     },
     "neighbor2neighbor": {
-        "gamma": Key("float", 2.0, "Weight of the consistency regulariser (Huang et al. 2021 use 2).", 0.0, 100.0),
+        "gamma": Key("float-or-auto", "auto", "Final weight of the consistency regulariser. `auto` = 2 from random "
+                     "weights (Huang et al. 2021) and 1 for `neighbor2neighbor` fine-tuning trained weights (+0.04 to "
+                     "+0.11 dB over 2 on gamma speckle at 10 minutes, 3 seeds; docs/benchmarks.md); "
+                     "`neighbor2neighbor-stack` keeps 2 (its figures were measured at 2).", 0.0, 100.0),
         "frame_stride": Key("int", 2, "`neighbor2neighbor-stack`: its training windows take every n-th frame. 2 "
                             "gives the half-size training windows the motion the model meets between consecutive "
                             "full-size frames (sequences, anything that moves or shifts from slice to slice); 1 for "

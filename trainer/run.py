@@ -431,6 +431,19 @@ def _resolve_alpha(config: dict[str, Any], scheme: str, announce: Callable[[str]
     return dict(config, recorrupted=dict(table, alpha=cls.alpha_for(config)))
 
 
+def _resolve_gamma(config: dict[str, Any], scheme: str, announce: Callable[[str], None]) -> dict[str, Any]:
+    """The config with ``neighbor2neighbor.gamma`` resolved from ``auto`` (Neighbor2Neighbor schemes only, once
+    the start is known), so that the run's config.toml records the regulariser weight used."""
+    cls, table = scheme_class(scheme), config["neighbor2neighbor"]
+    if cls.default_gamma is None or table["gamma"] != "auto":
+        return config
+    gamma = cls.gamma_for(config)
+    start = "random weights" if config["start"]["weights"] == RANDOM else "trained weights"
+    announce(f"consistency regulariser: gamma {gamma:g} (neighbor2neighbor.gamma = \"auto\": the {scheme} default "
+             f"from {start})")
+    return dict(config, neighbor2neighbor=dict(table, gamma=gamma))
+
+
 def _check_data(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
                 findings: NoiseFindings | None, corrected: bool, announce: Callable[[str], None]) -> dict[str, Any]:
     """The scheme's own check of the training data (``Scheme.check_data``); its figures, announced."""
@@ -580,6 +593,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         resolved = started_from["weights"] if started_from["weights"] != EARLIER_RUN else config["start"]["weights"]
         config = dict(config, start=dict(config["start"], weights=resolved))
     config = fine_tuning_schedule(config, announce if not resuming else lambda text: None)
+    config = _resolve_gamma(config, name, announce)
     scheme = scheme_class(name)(config, data.noise, sigma, level_maps=model.takes_noise_map, figures=data_figures)
     validation = _validation_batches(config, scheme, validation_images, layout.roles)
     heldout = [] if model.stack_frames > 1 else heldout_frames(validation_images, model.alignment, scheme,
@@ -608,6 +622,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
     if scheme_class(name).default_alpha is not None:
         summary["recorrupted_alpha"] = config["recorrupted"]["alpha"]
+    if scheme_class(name).default_gamma is not None:
+        summary["neighbor2neighbor_gamma"] = config["neighbor2neighbor"]["gamma"]
     summary.update(data_figures)
     files = sorted({path for sample in layout.samples for path in sample})
     setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),

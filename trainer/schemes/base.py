@@ -11,6 +11,8 @@ from typing import Any
 import numpy as np
 import torch
 
+from grainwright.trainer.start import RANDOM
+
 
 class Scheme:
     """Base class of the registered training schemes.
@@ -40,6 +42,10 @@ class Scheme:
     default_alpha : float or None
         For Recorrupted-to-Recorrupted schemes: the recorruption strength ``recorrupted.alpha = "auto"`` stands
         for (the scheme's measured best; :meth:`alpha_for`); None for schemes that do not recorrupt.
+    default_gamma, fine_tuning_gamma : float or None
+        For Neighbor2Neighbor schemes: the consistency regulariser's final weight ``neighbor2neighbor.gamma =
+        "auto"`` stands for, from random weights and from trained weights (:meth:`gamma_for`); None for schemes
+        without that regulariser.
     clean_targets : bool
         True when the network learns clean targets; False when it learns noisy ones (its output then estimates
         the mean of the noisy data in the working domain, which the log domain's inverse must unbias).
@@ -55,6 +61,8 @@ class Scheme:
     multi_frame: bool = False
     frame_stride: int = 1
     default_alpha: float | None = None
+    default_gamma: float | None = None
+    fine_tuning_gamma: float | None = None
 
     def __init__(self, config: dict[str, Any], noise: Any = None, sigma: np.ndarray | None = None,
                  level_maps: bool = True, figures: dict[str, Any] | None = None):
@@ -79,6 +87,16 @@ class Scheme:
         when it is ``"auto"``."""
         alpha = config["recorrupted"]["alpha"]
         return float(cls.default_alpha if alpha == "auto" else alpha)
+
+    @classmethod
+    def gamma_for(cls, config: dict[str, Any]) -> float:
+        """The consistency regulariser's final weight under ``config``: ``neighbor2neighbor.gamma``, or when it is
+        ``"auto"`` the scheme's ``fine_tuning_gamma`` for a run from trained weights (``start.weights`` not
+        ``random``) and its ``default_gamma`` otherwise."""
+        gamma = config["neighbor2neighbor"]["gamma"]
+        if gamma != "auto":
+            return float(gamma)
+        return float(cls.default_gamma if config["start"]["weights"] == RANDOM else cls.fine_tuning_gamma)
 
     @classmethod
     def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool
