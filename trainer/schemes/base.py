@@ -11,8 +11,6 @@ from typing import Any
 import numpy as np
 import torch
 
-from grainwright.trainer.start import RANDOM
-
 
 class Scheme:
     """Base class of the registered training schemes.
@@ -96,7 +94,8 @@ class Scheme:
         gamma = config["neighbor2neighbor"]["gamma"]
         if gamma != "auto":
             return float(gamma)
-        return float(cls.default_gamma if config["start"]["weights"] == RANDOM else cls.fine_tuning_gamma)
+        from_random = config["start"]["weights"] == "random"  # trainer.start.RANDOM (start imports this module)
+        return float(cls.default_gamma if from_random else cls.fine_tuning_gamma)
 
     @classmethod
     def check_data(cls, config: dict[str, Any], noisy: list[np.ndarray], frames: int, banding_left: bool
