@@ -44,6 +44,7 @@ import numpy as np
 from grainwright.benchmarks.runtime import _LAUNCHER
 from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError
+from grainwright.inference.images.alignment import ALIGN_REVISION
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.images.stacks import StackInfo, write_stack
 from grainwright.inference.runtime.runner import OnnxDenoiser
@@ -82,7 +83,7 @@ def export_random(name: str, hyper: dict[str, Any], path: Path, seed: int = 0, a
     from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
     from grainwright.models.export import export_checkpoint
 
-    summary = {"align_neighbours": align} if align != "none" else None
+    summary = {"align_neighbours": align, "align_revision": ALIGN_REVISION} if align != "none" else None
     payload = new_checkpoint(name, 1, TWELVE_BIT, hyper=hyper, seed=seed, training_summary=summary)
     export_checkpoint(save_checkpoint(path.with_suffix(".pt"), payload), path, threads=1, overwrite=True)
     return path

@@ -241,17 +241,23 @@ def stack_description(model: DenoisingNetwork, payload: dict[str, Any]) -> dict[
     """What the runtime needs to slide a multi-frame model along a stack (None for single-frame models)."""
     if model.stack_frames == 1:
         return None
-    return {
+    summary = payload.get("training_summary") or {}
+    entry = {
         "frames": model.stack_frames,
         # The axis the training stacks ran along (Z slices of a volume, T time points of a sequence, or I when
         # the files did not say); the runtime slides along the one frame axis of each file.
-        "axis": (payload.get("training_summary") or {}).get("stack_axis", "I"),
+        "axis": summary.get("stack_axis", "I"),
         "channel_order": "frame-major",
         "ends": "reflect",
         "stack_receptive_field": model.stack_frames,
         # How the neighbours are aligned to the centre frame before the model sees them (the runtime does the same).
-        "align_neighbours": (payload.get("training_summary") or {}).get("align_neighbours", "none"),
+        "align_neighbours": summary.get("align_neighbours", "none"),
     }
+    if entry["align_neighbours"] != "none":
+        # Which computation of the alignment the model was trained on; a checkpoint from before the revision was
+        # recorded was trained on revision 1, and its file says so (the runtime then refuses it).
+        entry["align_revision"] = int(summary.get("align_revision", 1))
+    return entry
 
 
 def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalization: Normalization,

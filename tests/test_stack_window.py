@@ -9,6 +9,7 @@ import pytest
 import tifffile
 
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.alignment import ALIGN_REVISION
 from grainwright.inference.images.imageio import read_text
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.batch import denoise_files
@@ -49,7 +50,8 @@ def aligned_model(tmp_path_factory):
     normalization = Normalization("uint16", 12, 0.0, 4095.0, 1)
     payload = new_checkpoint("unet-stack", 1, normalization, hyper={"frames": 5, "levels": 2, "width": 4}, seed=3,
                              training_noise={"sigma_native": 40.0},
-                             training_summary={"stack_axis": "T", "align_neighbours": "optical-flow"})
+                             training_summary={"stack_axis": "T", "align_neighbours": "optical-flow",
+                                               "align_revision": ALIGN_REVISION})
     export_checkpoint(save_checkpoint(folder / "stack.pt", payload), folder / "stack.onnx", threads=1)
     return folder / "stack.onnx"
 
@@ -113,12 +115,15 @@ def test_chunked_equals_whole_equals_one_call_per_window(stack_model):
 
 
 def test_an_aligned_model_records_it_and_the_runtime_aligns(aligned_model, stack_model):
-    """The export writes the alignment into the stack entry (format version 3, so that a runtime that cannot align
-    refuses the file instead of feeding it unaligned windows); unaligned models stay at version 2."""
+    """The export writes the alignment and its revision into the stack entry (format version 4, so that a runtime
+    that cannot align, or aligns by the earlier revision, refuses the file instead of feeding it other windows than
+    the model was trained on); unaligned models stay at version 2."""
     metadata = read_model_metadata(aligned_model)
-    assert metadata["stack"]["align_neighbours"] == "optical-flow" and metadata["format_version"] == 3
+    assert metadata["stack"]["align_neighbours"] == "optical-flow" and metadata["format_version"] == 4
+    assert metadata["stack"]["align_revision"] == ALIGN_REVISION == 2
     assert read_model_metadata(stack_model)["stack"]["align_neighbours"] == "none"
-    assert "neighbours aligned: optical-flow" in render_metadata(metadata)
+    assert "align_revision" not in read_model_metadata(stack_model)["stack"]
+    assert "neighbours aligned: optical-flow (revision 2)" in render_metadata(metadata)
     assert OnnxDenoiser(aligned_model, threads=1).spec.stack_alignment == "optical-flow"
     assert OnnxDenoiser(stack_model, threads=1).spec.stack_alignment == "none"
 
@@ -147,6 +152,27 @@ def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned
     for bounds in ([0, 1, 5, 7], [0, 3, 7]):
         chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
         assert np.array_equal(np.concatenate(chunks), whole)
+
+
+def test_a_model_trained_on_the_earlier_alignment_is_refused_naming_the_file(tmp_path):
+    """A checkpoint whose training summary predates the recorded revision was aligned by revision 1 (scikit-image's
+    solver, 10 iterations at full resolution, the dense median): its file says so at format version 3, and the
+    runtime refuses it in one line naming the file rather than feeding it windows aligned another way."""
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    payload = new_checkpoint("unet-stack", 1, Normalization("uint16", 12, 0.0, 4095.0, 1),
+                             hyper={"frames": 3, "levels": 2, "width": 4}, seed=5,
+                             training_summary={"stack_axis": "T", "align_neighbours": "optical-flow"})
+    export_checkpoint(save_checkpoint(tmp_path / "earlier.pt", payload), tmp_path / "earlier.onnx", threads=1)
+    model = tmp_path / "earlier.onnx"
+    metadata = read_model_metadata(model)
+    assert metadata["format_version"] == 3 and metadata["stack"]["align_revision"] == 1
+    assert "neighbours aligned: optical-flow (revision 1)" in render_metadata(metadata)
+    with pytest.raises(InputError, match=r"earlier\.onnx.*revision 1 of the optical-flow alignment; this grainwright "
+                                         r"computes revision 2.*train it again") as refused:
+        OnnxDenoiser(model, threads=1)
+    assert "\n" not in str(refused.value)
 
 
 def test_an_unknown_alignment_in_the_file_is_refused_naming_it(aligned_model, tmp_path):

@@ -24,6 +24,7 @@ from grainwright.inference.common.errors import (
     GrainwrightError,
     InputError,
 )
+from grainwright.inference.images.alignment import ALIGN_REVISION
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
@@ -618,6 +619,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     if model.stack_frames > 1:
         summary["stack_axis"] = training_stack_axis(config, layout)
         summary["align_neighbours"] = config["model"]["align_neighbours"]
+        if summary["align_neighbours"] != "none":
+            summary["align_revision"] = ALIGN_REVISION
     if name == "neighbor2neighbor-stack":
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
     if scheme_class(name).default_alpha is not None:

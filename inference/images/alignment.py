@@ -3,15 +3,18 @@ model sees it, so that a detail moving through the window sits at the same place
 
 Method. Motion compensation of the neighbours of a frame to be denoised follows Ehret, Davy, Morel, Facciolo and
 Arias, "Model-blind video denoising via frame-to-frame training", CVPR 2019 (they warp with TV-L1 optical flow).
-Here the dense flow from the centre frame to each neighbour is estimated on the two noisy frames by scikit-image's
-coarse-to-fine iterative Lucas-Kanade solver (``skimage.registration.optical_flow_ilk``; Lucas and Kanade 1981,
-Le Besnerais and Champagnat 2005 as scikit-image cites), window radius ``FLOW_RADIUS`` pixels, on copies of both
-frames smoothed by a Gaussian of ``FLOW_SMOOTHING`` pixels (for the flow only; the warped values are not
-smoothed). The estimator was chosen by measurement on the generated conveyor sequence (docs/benchmarks.md, "Stacks
-and volumes"): iterative Lucas-Kanade at radius 7 found the lane's 3 and 6 pixel shifts to within 0.1 pixel in
-0.16 s per frame pair of 192 x 256 (one thread), where scikit-image's TV-L1 (``optical_flow_tvl1`` at its
-defaults) took 0.30 s and left the warped clean neighbour about 2.7 times further from the centre frame on the
-lane; radius 3 and 11 did worse than 7.
+Here the dense flow from the centre frame to each neighbour is estimated on the two noisy frames by coarse-to-fine
+iterative Lucas-Kanade (Lucas and Kanade 1981; the iterated window registration of Le Besnerais and Champagnat,
+ICIP 2005, as scikit-image's ``skimage.registration.optical_flow_ilk`` implements it), window radius
+``FLOW_RADIUS`` pixels, on copies of both frames smoothed by a Gaussian of ``FLOW_SMOOTHING`` pixels (for the flow
+only; the warped values are not smoothed). The estimator was chosen by measurement on the generated conveyor
+sequence (docs/benchmarks.md, "Stacks and volumes"): iterative Lucas-Kanade at radius 7 found the lane's 3 and 6
+pixel shifts to within 0.1 pixel in 0.16 s per frame pair of 192 x 256 (one thread), where scikit-image's TV-L1
+(``optical_flow_tvl1`` at its defaults) took 0.30 s and left the warped clean neighbour about 2.7 times further
+from the centre frame on the lane; radius 3 and 11 did worse than 7. The solver is this module's
+(:func:`lucas_kanade_flow`): scikit-image's algorithm with each pixel's 2 x 2 system solved in closed form, which
+gives scikit-image's flow to float32 rounding at a third of its time, and ``FINEST_WARPS`` = 5 iterations at full
+resolution instead of 10 (``COARSE_WARPS`` on the coarser levels).
 
 Where the frames hold little structure the Lucas-Kanade flow follows the noise: on the conveyor's still scene its
 median was 0.6 to 0.7 pixel and its 90th percentile 2 to 3 pixels, so still parts were resampled at noise-driven
@@ -26,7 +29,18 @@ shifts and their fine detail blurred. Two steps take that out before the warp (:
    the motion of a part is one value over many windows, and the median takes it while keeping the step at the
    part's edge (Tukey's running median; used to clean optical flow fields by Sun, Roth and Black, "Secrets of
    optical flow estimation and their principles", CVPR 2010), so isolated noise-driven vectors inside a moving
-   part and isolated non-zero ones in a still region give way to their surroundings.
+   part and isolated non-zero ones in a still region give way to their surroundings. The window is sampled on a
+   5 x 5 grid (``MEDIAN_OFFSETS``, every third or fourth pixel): the flow varies little from one pixel to the next,
+   and 25 values instead of 225 make the filter 3 to 4 times cheaper.
+
+Cost and revision. With scikit-image's solver, 10 iterations at full resolution and the dense 15 x 15 median
+(revision 1 of this alignment), one output frame of 512 x 512 (four neighbours, one thread) spent 4.0 s in the
+flow estimates (two thirds of it in ``numpy.linalg.solve`` and ``det`` on the 2 x 2 systems), 2.8 s in the median
+filters and 0.2 s in the rest. The closed-form solver, 5 iterations at full resolution and the sampled median
+(revision 2, ``ALIGN_REVISION``) take that to about a quarter, for the same or better quality at 3,000 fixed steps
+on the conveyor sequence (seeds 0, 1, 2; docs/benchmarks.md, where the variants tried are recorded). A model
+records the revision it was trained on (the exported ``stack`` entry's ``align_revision``), and the runtime
+refuses another: the model would meet windows aligned otherwise than in training.
 
 The neighbour is then resampled at the centre frame's pixel positions plus the flow by ``skimage.transform.warp``
 with a cubic spline (order ``WARP_ORDER`` = 3; ``mode="edge"``: a position the motion brings in from outside the
@@ -67,12 +81,21 @@ from collections.abc import Callable
 
 import numpy as np
 from scipy import ndimage
-from skimage.registration import optical_flow_ilk
-from skimage.transform import warp
+from skimage.transform import pyramid_reduce, warp
 
 ALIGNMENTS = ("none", "optical-flow")  # the values of model.align_neighbours and of the exported "stack" entry
 FLOW_SMOOTHING = 1.0  # pixels; standard deviation of the Gaussian both frames are smoothed with for the flow only
 FLOW_RADIUS = 7  # pixels; the radius of the Lucas-Kanade window (scikit-image's default), measured best of 3 / 7 / 11
+COARSE_WARPS = 10  # Lucas-Kanade iterations on each coarser pyramid level (scikit-image's default)
+FINEST_WARPS = 5  # Lucas-Kanade iterations at full resolution (10 before; measured, docs/benchmarks.md)
+PYRAMID_MIN_SIZE = 16  # pixels; the coarsest pyramid level is the last whose shorter side exceeds twice this
+# The flow's median filter samples its (2 * FLOW_RADIUS + 1)-pixel window on a 5 x 5 grid of these offsets (25 values
+# instead of 225: 3 to 4 times cheaper, measured as good; docs/benchmarks.md).
+MEDIAN_OFFSETS = (-7, -4, 0, 4, 7)
+# The revision of the optical-flow alignment, recorded with a model trained on it (the exported "stack" entry's
+# "align_revision"): 1 was scikit-image's optical_flow_ilk with 10 iterations at every level and a dense 15 x 15
+# median, 2 is this module's solver with FINEST_WARPS and the sampled median. A runtime refuses another revision.
+ALIGN_REVISION = 2
 STILL_MARGIN = 0.1  # the zero-motion test's margin: zero motion kept where its residual is within 10 % of the flow's
 WARP_ORDER = 3  # the spline order of the resampling: cubic (measured against bilinear, order 1, docs/benchmarks.md)
 
@@ -89,9 +112,9 @@ def _flow_images(centre: np.ndarray, neighbour: np.ndarray) -> tuple[np.ndarray,
 
 def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
     """The dense motion from ``centre`` to ``neighbour`` (both ``(H, W, C)``), estimated on the noisy frames by
-    iterative Lucas-Kanade (``skimage.registration.optical_flow_ilk``, radius ``FLOW_RADIUS``, on the frames
-    smoothed by ``FLOW_SMOOTHING`` pixels), set to zero where the zero-motion test (:func:`held_still`) finds no
-    motion told apart from noise, then median-filtered over the Lucas-Kanade window.
+    iterative Lucas-Kanade (:func:`lucas_kanade_flow`, radius ``FLOW_RADIUS``, on the frames smoothed by
+    ``FLOW_SMOOTHING`` pixels), set to zero where the zero-motion test (:func:`held_still`) finds no motion told
+    apart from noise, then median-filtered over the Lucas-Kanade window (:func:`sampled_median`).
 
     Returns
     -------
@@ -101,10 +124,72 @@ def neighbour_flow(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
     """
     reference, moving = _flow_images(centre, neighbour)
     smoothed = (ndimage.gaussian_filter(image, FLOW_SMOOTHING) for image in (reference, moving))
-    flow = optical_flow_ilk(*smoothed, radius=FLOW_RADIUS).astype(np.float32)
+    flow = lucas_kanade_flow(*smoothed)
     flow[:, held_still(reference, moving, flow)] = 0.0
-    window = 2 * FLOW_RADIUS + 1
-    return np.stack([ndimage.median_filter(component, size=window, mode="nearest") for component in flow])
+    return sampled_median(flow)
+
+
+def sampled_median(flow: np.ndarray) -> np.ndarray:
+    """Each component of ``flow`` ``(2, H, W)`` median-filtered over the Lucas-Kanade window,
+    ``(2 * FLOW_RADIUS + 1)`` pixels square, sampled at the 5 x 5 offsets ``MEDIAN_OFFSETS`` (edges repeated)."""
+    footprint = np.zeros((2 * FLOW_RADIUS + 1,) * 2, bool)
+    taken = np.asarray(MEDIAN_OFFSETS) + FLOW_RADIUS
+    footprint[np.ix_(taken, taken)] = True
+    return np.stack([ndimage.median_filter(component, footprint=footprint, mode="nearest") for component in flow])
+
+
+def _pyramid(image: np.ndarray) -> list[np.ndarray]:
+    """``image`` and its reductions by 2 (``skimage.transform.pyramid_reduce``: Gaussian smoothing, then
+    resampling), coarsest first, down to the last level whose shorter side exceeds ``2 * PYRAMID_MIN_SIZE``."""
+    levels = [image]
+    while min(levels[-1].shape) > 2 * PYRAMID_MIN_SIZE and len(levels) < 10:
+        levels.append(pyramid_reduce(levels[-1], 2, channel_axis=None).astype(np.float32))
+    return levels[::-1]
+
+
+def _refine(reference: np.ndarray, moving: np.ndarray, flow: np.ndarray, warps: int) -> np.ndarray:
+    """``warps`` iterations of Lucas-Kanade on one pyramid level: ``moving`` warped by the current ``flow``
+    (bilinear), the brightness-constancy equation linearised about it, and its least-squares solution over each
+    ``(2 * FLOW_RADIUS + 1)``-pixel window solved in closed form (a 2 x 2 system per pixel; left at zero where the
+    system is singular)."""
+    rows, cols = np.meshgrid(np.arange(reference.shape[0], dtype=np.float32),
+                             np.arange(reference.shape[1], dtype=np.float32), indexing="ij", sparse=True)
+
+    def window_mean(values: np.ndarray) -> np.ndarray:  # scikit-image's windows: uniform, mirrored at the edges
+        return ndimage.uniform_filter(values, 2 * FLOW_RADIUS + 1, mode="mirror")
+
+    for _ in range(warps):
+        moved = warp(moving, np.stack([flow[0] + rows, flow[1] + cols]), order=1, mode="edge")
+        grad_rows, grad_cols = np.gradient(moved)
+        error = grad_rows * flow[0] + grad_cols * flow[1] + reference - moved
+        a, b, c = window_mean(grad_rows**2), window_mean(grad_rows * grad_cols), window_mean(grad_cols**2)
+        e, f = window_mean(grad_rows * error), window_mean(grad_cols * error)
+        determinant = a * c - b * b
+        singular = np.abs(determinant) < 1e-14
+        determinant[singular] = 1.0
+        flow = np.stack([(c * e - b * f) / determinant, (a * f - b * e) / determinant]).astype(np.float32)
+        flow[:, singular] = 0.0
+    return flow
+
+
+def lucas_kanade_flow(reference: np.ndarray, moving: np.ndarray) -> np.ndarray:
+    """The dense flow ``(2, H, W)`` float32 from ``reference`` to ``moving`` (both ``(H, W)`` float32) by
+    coarse-to-fine iterative Lucas-Kanade (Lucas and Kanade 1981; the iterated local window registration of Le
+    Besnerais and Champagnat, ICIP 2005, Table 2, as scikit-image's ``optical_flow_ilk`` implements it): on a
+    pyramid of reductions by 2, ``COARSE_WARPS`` iterations per coarser level and ``FINEST_WARPS`` at full
+    resolution, each level starting from the coarser one's flow (nearest-neighbour upsampled, values scaled).
+    Window radius ``FLOW_RADIUS``. The 2 x 2 systems are solved in closed form, about three times faster than
+    scikit-image's general solver for the same result (tests/test_alignment.py compares them)."""
+    levels = list(zip(_pyramid(reference), _pyramid(moving)))
+    flow = np.zeros((2, *levels[0][0].shape), np.float32)
+    for index, (level_reference, level_moving) in enumerate(levels):
+        if index:
+            scale = [new / old for new, old in zip(level_reference.shape, flow.shape[1:])]
+            flow = ndimage.zoom(flow, [1, *scale], order=0, mode="nearest", prefilter=False)
+            flow *= np.asarray(scale, np.float32)[:, None, None]
+        warps = FINEST_WARPS if index == len(levels) - 1 else COARSE_WARPS
+        flow = _refine(level_reference, level_moving, flow, warps)
+    return flow
 
 
 def _displaced_positions(flow: np.ndarray) -> np.ndarray:

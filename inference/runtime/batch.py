@@ -556,6 +556,7 @@ def _stack(denoiser: OnnxDenoiser, source: Path, output: Path, record: dict[str,
                            "ends": "reflect"}
         if denoiser.spec.stack_alignment != "none":
             record["stack"]["align_neighbours"] = denoiser.spec.stack_alignment
+            record["stack"]["align_revision"] = denoiser.spec.stack_align_revision
         tiles_bar.reset(total=len(denoiser.plan(info.height, info.width).tiles) * info.frames)
         outputs = _guarded(_stack_outputs(denoiser, read, info.frames, tiles_bar), model_fault, source)
         out_info = same_flavour(info, dtype=np.float32 if as_float else info.dtype, suffix=output.suffix)

@@ -17,17 +17,28 @@ from grainwright.inference.common.errors import InputError
 METADATA_KEY = "grainwright"
 METADATA_FORMAT = "grainwright-model"
 # Version 2 added the "stack" key of multi-frame models (K frames in, the centre frame out), version 3 its
-# "align_neighbours" value "optical-flow" (an older runtime would feed such a model unaligned windows). Each file is
+# "align_neighbours" value "optical-flow" (an older runtime would feed such a model unaligned windows), version 4
+# its "align_revision" (2: the cheaper flow of grainwright.inference.images.alignment; a version-3 file was aligned
+# by revision 1, and a runtime of version 3 would align a version-4 model's windows the old way). Each file is
 # written at the lowest version that describes it, so older runtimes keep reading what they can run and refuse
 # only the rest.
-METADATA_VERSION = 3
+METADATA_VERSION = 4
+
+
+def _revision(stack: dict[str, Any]) -> str:
+    """`` (revision R)`` for a model with aligned neighbours (files of format 3 carry none: revision 1)."""
+    if stack.get("align_neighbours", "none") == "none":
+        return ""
+    return f" (revision {stack.get('align_revision', 1)})"
 
 
 def metadata_version(stack: dict[str, Any] | None) -> int:
     """The format version a model with the ``stack`` entry (None: single-frame) is written at."""
     if not stack:
         return 1
-    return 3 if stack.get("align_neighbours", "none") != "none" else 2
+    if stack.get("align_neighbours", "none") == "none":
+        return 2
+    return 4 if int(stack.get("align_revision", 1)) >= 2 else 3
 
 
 def _session(path: Path) -> ort.InferenceSession:
@@ -129,7 +140,7 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
     if stack:
         lines.append(f"stack window      {stack.get('frames')} frames along {stack.get('axis', '-')} (centre frame out, "
                      f"{stack.get('channel_order', '-')} channels, ends by {stack.get('ends', '-')}, neighbours aligned: "
-                     f"{stack.get('align_neighbours', 'none')})")
+                     f"{stack.get('align_neighbours', 'none')}{_revision(stack)})")
     if io:
         for kind in ("inputs", "outputs"):
             for name, type_name, shape in io[kind]:

@@ -24,7 +24,7 @@ import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import ConfigError, InputError
-from grainwright.inference.images.alignment import ALIGNMENTS
+from grainwright.inference.images.alignment import ALIGN_REVISION, ALIGNMENTS
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
 from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
@@ -114,6 +114,7 @@ class ModelSpec:
     stack_frames: int = 1
     stack_axis: str | None = None
     stack_alignment: str = "none"
+    stack_align_revision: int | None = None
     metadata: dict[str, Any] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
@@ -155,6 +156,9 @@ class ModelSpec:
             stack_frames=int(stack.get("frames", 1)),
             stack_axis=stack.get("axis"),
             stack_alignment=str(stack.get("align_neighbours", "none")),
+            # Files of format 3 carry no revision: their alignment was revision 1.
+            stack_align_revision=(int(stack.get("align_revision", 1))
+                                  if stack.get("align_neighbours", "none") != "none" else None),
             metadata=dict(metadata),
         )
 
@@ -252,6 +256,10 @@ class OnnxDenoiser:
         if spec.stack_alignment not in ALIGNMENTS:
             raise InputError(self.path, f"unknown neighbour alignment {spec.stack_alignment!r} in the model's stack "
                              f"entry (this grainwright knows {', '.join(ALIGNMENTS)}); update grainwright")
+        if spec.stack_alignment != "none" and spec.stack_align_revision != ALIGN_REVISION:
+            raise InputError(self.path, f"was trained on neighbours aligned by revision {spec.stack_align_revision} of "
+                             f"the optical-flow alignment; this grainwright computes revision {ALIGN_REVISION}, which "
+                             "the model has not seen: train it again (docs/stacks-and-volumes.md)")
         inputs = {node.name for node in self.session.get_inputs()}
         if "image" not in inputs:
             raise InputError(self.path, f"model has no input named 'image' (inputs: {sorted(inputs)})")
