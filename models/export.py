@@ -284,8 +284,9 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
                            "channel c); H and W multiples of the alignment")
     return {
         "format": METADATA_FORMAT,
-        # Version 2 adds the "stack" key, version 3 neighbours aligned by optical flow; a file is written at the
-        # lowest version that describes it, so that older runtimes read what they can run and refuse the rest.
+        # Version 2 adds the "stack" key, version 3 neighbours aligned by optical flow, version 4 the alignment's
+        # revision 2; a file is written at the lowest version that describes it, so that older runtimes read what
+        # they can run and refuse the rest.
         "format_version": metadata_version(stack),
         "precision": "float32",
         "architecture": {"name": model.name, "hyper": dict(model.hyper)},
