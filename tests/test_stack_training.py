@@ -242,6 +242,28 @@ def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_th
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
 
 
+def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path):
+    """Resuming a run whose checkpoint was trained on another revision of the neighbour alignment would train on
+    windows aligned two ways: refused in one line naming the checkpoint, the run folder left as it was."""
+    from grainwright.inference.common.errors import InputError
+    from grainwright.models.checkpoint import load_checkpoint, save_checkpoint
+
+    data = _write_stacks(tmp_path / "data", repeated=False, count=1, frames=6, size=32)
+    summary, run = train_command(None, str(data), scheme="neighbor2neighbor-stack", steps=4,
+                                 out=str(tmp_path / "run"), announce=lambda message: None, interrupt_at_step=2,
+                                 assignments=TINY + ['model.align_neighbours="optical-flow"'])
+    assert summary["stopped"] == "interrupted"
+    state = load_checkpoint(run.last)
+    assert state["training_summary"]["align_revision"] == 2
+    del state["training_summary"]["align_revision"]  # as a checkpoint written before revisions were recorded
+    save_checkpoint(run.last, state)
+    before = run.last.read_bytes()
+    with pytest.raises(InputError, match="revision 1 of the optical-flow alignment.*start a new run") as error:
+        train_command(None, None, resume=str(run.root), announce=lambda message: None)
+    assert "last.pt" in str(error.value)
+    assert run.last.read_bytes() == before
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("case", list(PURE_NOISE_CASES))
 def test_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, case):

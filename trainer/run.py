@@ -729,6 +729,12 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         state = load_checkpoint(run.last)
         if "step" not in state:
             raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
+        earlier = state.get("training_summary") or {}
+        if earlier.get("align_neighbours", "none") != "none" and earlier.get("align_revision", 1) != ALIGN_REVISION:
+            revision = earlier.get("align_revision", 1)
+            raise InputError(run.last, f"was trained on neighbours aligned by revision {revision} of the optical-flow "
+                             f"alignment; this grainwright computes revision {ALIGN_REVISION}, and training on "
+                             "would mix the two: start a new run")
     else:
         if data is not None:
             assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')
