@@ -41,6 +41,7 @@ from grainwright.inference.common.errors import (
     GrainwrightError,
     InputError,
 )
+from grainwright.inference.images.alignment import recorded_revision
 from grainwright.inference.images.crops import centre_crop
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.images.transforms import anscombe_forward
@@ -256,7 +257,7 @@ def stack_description(model: DenoisingNetwork, payload: dict[str, Any]) -> dict[
     if entry["align_neighbours"] != "none":
         # Which computation of the alignment the model was trained on; a checkpoint from before the revision was
         # recorded was trained on revision 1, and its file says so (the runtime then refuses it).
-        entry["align_revision"] = int(summary.get("align_revision", 1))
+        entry["align_revision"] = recorded_revision(summary)
     return entry
 
 

@@ -24,7 +24,7 @@ from grainwright.inference.common.errors import (
     GrainwrightError,
     InputError,
 )
-from grainwright.inference.images.alignment import ALIGN_REVISION
+from grainwright.inference.images.alignment import ALIGN_REVISION, recorded_revision
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
@@ -729,9 +729,8 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         state = load_checkpoint(run.last)
         if "step" not in state:
             raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
-        earlier = state.get("training_summary") or {}
-        if earlier.get("align_neighbours", "none") != "none" and earlier.get("align_revision", 1) != ALIGN_REVISION:
-            revision = earlier.get("align_revision", 1)
+        revision = recorded_revision(state.get("training_summary") or {})
+        if revision not in (None, ALIGN_REVISION):
             raise InputError(run.last, f"was trained on neighbours aligned by revision {revision} of the optical-flow "
                              f"alignment; this grainwright computes revision {ALIGN_REVISION}, and training on "
                              "would mix the two: start a new run")

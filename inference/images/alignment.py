@@ -236,6 +236,15 @@ def align_to_centre(centre: np.ndarray, neighbour: np.ndarray) -> np.ndarray:
     return warp_onto_centre(neighbour, neighbour_flow(centre, neighbour))
 
 
+def recorded_revision(record: dict) -> int | None:
+    """The alignment revision a training summary or exported ``stack`` entry records: None when its neighbours are
+    not aligned (``align_neighbours`` absent or ``"none"``), 1 when aligned but written before revisions were
+    recorded."""
+    if record.get("align_neighbours", "none") == "none":
+        return None
+    return int(record.get("align_revision", 1))
+
+
 def check_alignment(value: str, where: str) -> str:
     """``value`` if it is one of ``ALIGNMENTS``; else ``ValueError`` naming ``where`` and the known values."""
     if value not in ALIGNMENTS:

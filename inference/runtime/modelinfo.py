@@ -13,6 +13,7 @@ from typing import Any
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import InputError
+from grainwright.inference.images.alignment import recorded_revision
 
 METADATA_KEY = "grainwright"
 METADATA_FORMAT = "grainwright-model"
@@ -27,18 +28,18 @@ METADATA_VERSION = 4
 
 def _revision(stack: dict[str, Any]) -> str:
     """`` (revision R)`` for a model with aligned neighbours (files of format 3 carry none: revision 1)."""
-    if stack.get("align_neighbours", "none") == "none":
-        return ""
-    return f" (revision {stack.get('align_revision', 1)})"
+    revision = recorded_revision(stack)
+    return "" if revision is None else f" (revision {revision})"
 
 
 def metadata_version(stack: dict[str, Any] | None) -> int:
     """The format version a model with the ``stack`` entry (None: single-frame) is written at."""
     if not stack:
         return 1
-    if stack.get("align_neighbours", "none") == "none":
+    revision = recorded_revision(stack)
+    if revision is None:
         return 2
-    return 4 if int(stack.get("align_revision", 1)) >= 2 else 3
+    return 4 if revision >= 2 else 3
 
 
 def _session(path: Path) -> ort.InferenceSession:

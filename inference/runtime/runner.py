@@ -24,7 +24,7 @@ import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import ConfigError, InputError
-from grainwright.inference.images.alignment import ALIGN_REVISION, ALIGNMENTS
+from grainwright.inference.images.alignment import ALIGN_REVISION, ALIGNMENTS, recorded_revision
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
 from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
@@ -156,9 +156,7 @@ class ModelSpec:
             stack_frames=int(stack.get("frames", 1)),
             stack_axis=stack.get("axis"),
             stack_alignment=str(stack.get("align_neighbours", "none")),
-            # Files of format 3 carry no revision: their alignment was revision 1.
-            stack_align_revision=(int(stack.get("align_revision", 1))
-                                  if stack.get("align_neighbours", "none") != "none" else None),
+            stack_align_revision=recorded_revision(stack),  # format 3 files carry none: revision 1
             metadata=dict(metadata),
         )
 
