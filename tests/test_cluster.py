@@ -135,6 +135,29 @@ def test_a_file_that_kills_every_worker_is_reported_by_name(batch, monkeypatch, 
         assert read_frames(batch["out"] / name).shape == read_frames(batch["in"] / name).shape
 
 
+class _ClusterThatFailsToClose:
+    """Stands in for a LocalCluster whose first ``failures`` closes meet a worker process its nanny is still
+    restarting (distributed 2026.8 then asserts "can only join a started process"; seen at the end of the test
+    above in about one run in ten)."""
+
+    def __init__(self, failures: int) -> None:
+        self.failures, self.closes = failures, 0
+
+    def close(self) -> None:
+        self.closes += 1
+        if self.closes <= self.failures:
+            raise AssertionError("can only join a started process")
+
+
+def test_a_close_that_meets_a_restarting_worker_does_not_fail_a_finished_batch():
+    once = _ClusterThatFailsToClose(failures=1)
+    cluster._close_local(once)
+    assert once.closes == 2  # tried again, and closed
+    always = _ClusterThatFailsToClose(failures=10)
+    cluster._close_local(always)  # let go after the second try: every output is written by then
+    assert always.closes == 2
+
+
 def test_in_flight_tasks_stay_bounded(batch):
     # The client never has more than in_flight tasks submitted and unfinished, however long the batch.
     denoiser = OnnxDenoiser(batch["model"], threads=1)
