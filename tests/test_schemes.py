@@ -217,6 +217,23 @@ class LevelRecorder(torch.nn.Module):
         return image
 
 
+def test_supervised_feeds_the_level_of_its_noisy_input_never_of_the_clean_target():
+    """For signal-dependent noise the level map is a function of the signal: computed on the clean patch it would
+    hand the network its target. The map is the noise model's level at the noisy input clipped to the range, the
+    runtime's map (``noise_sigma="model"``); for Poisson-Gaussian noise, standard deviation sqrt(gain * x +
+    read^2) (Foi et al., IEEE TIP 2008)."""
+    gain, read = 0.004, 0.01
+    noise = noise_from_dict({"kind": "poisson-gaussian", "gain": gain, "read": read})
+    scheme = Supervised(defaults(), noise, None, level_maps=True)
+    rng = np.random.default_rng(0)
+    clean = rng.random((2, 1, 16, 16), dtype=np.float32)
+    batch = scheme.prepare({"clean": clean}, rng)
+    expected = np.sqrt(gain * np.clip(batch["noisy"], 0.0, 1.0) + read ** 2)
+    np.testing.assert_allclose(batch["level"], expected, rtol=1e-6)
+    other_target = dict(batch, clean=np.zeros_like(clean))
+    np.testing.assert_array_equal(scheme.noise_level(other_target), batch["level"])
+
+
 @pytest.mark.parametrize("scheme_class", [Supervised, Noise2Noise, Masked, Neighbor2Neighbor, Recorrupted,
                                           SCHEMES["sure"]])
 def test_each_scheme_feeds_the_noise_level_of_the_image_the_network_sees(scheme_class):

@@ -48,9 +48,10 @@ def add_engine_arguments(parser: argparse.ArgumentParser) -> None:
                         "S * (model output - input). Default 1.0")
     parser.add_argument("--noise-sigma", type=_noise_sigma, default="auto", metavar="LEVEL",
                         help="noise-map models: 'auto' (default: 'model' for a model working in the Anscombe or log "
-                        "domain with a per-pixel noise model, else 'estimate'), a noise standard deviation in native "
-                        "units, 'estimate' (per image), 'training' (the level in the model's metadata) or 'model' (per pixel, from the "
-                        "training noise model, e.g. Poisson-Gaussian)")
+                        "domain with a per-pixel noise model and for a supervised model of signal-dependent noise, "
+                        "else 'estimate'), a noise standard deviation in native units, 'estimate' (per image), "
+                        "'training' (the level in the model's metadata) or 'model' (per pixel, from the training "
+                        "noise model, e.g. Poisson-Gaussian)")
     parser.add_argument("--ensemble", type=int, choices=ENSEMBLE_SIZES, default=1,
                         help="average over 1, 2, 4 or 8 flips and 90-degree rotations (costs that many runs)")
     parser.add_argument("--threads", type=int, metavar="N", help="ONNX Runtime threads (default: all cores)")

@@ -202,7 +202,8 @@ class OnnxDenoiser:
         Noise-map models only: "auto" (the default: "model" for a model working in a variance-stabilised domain
         whose metadata carries a noise model with a per-pixel level, such as Poisson-Gaussian noise through the
         Anscombe transform or gamma speckle through the log, where the transform and not the image sets the
-        level the network sees; "estimate" otherwise), the noise standard deviation in native units, "estimate"
+        level the network sees, and for a supervised model of signal-dependent noise, which trained on that map;
+        "estimate" otherwise), the noise standard deviation in native units, "estimate"
         (per image, MAD
         estimator of Donoho & Johnstone 1994), or "training" (the level in the model's metadata), or "model"
         (a per-pixel map from the training noise model, e.g. ``sqrt(gain * x + read**2)`` for Poisson-Gaussian
@@ -294,15 +295,22 @@ class OnnxDenoiser:
             raise InputError(self.path, "grainwright metadata is not valid JSON") from None
 
     def _automatic_noise_sigma(self) -> str:
-        """"model" for a transformed-domain model with a per-pixel noise model, else "estimate".
+        """"model" for a transformed-domain model with a per-pixel noise model, and for a supervised model of
+        signal-dependent noise (trained on the noise model's level at its noisy input, pixel by pixel); else
+        "estimate".
 
         One level estimated on the whole image misstates signal-dependent noise: dark regions pull it down, and
         the graph then converts that one native level at every pixel's own slope, under-telling bright regions."""
-        transform = ((self.metadata or {}).get("normalization") or {}).get("transform")
-        if not self.spec.takes_noise_map or not transform or self.spec.high is None:
+        metadata = self.metadata or {}
+        transform = (metadata.get("normalization") or {}).get("transform")
+        if not self.spec.takes_noise_map or self.spec.high is None:
             return "estimate"
         model = self._described_noise()
-        return "model" if model is not None and self._has_level_map(model) else "estimate"
+        if model is None or not self._has_level_map(model):
+            return "estimate"
+        if transform or (metadata.get("scheme") == "supervised" and self._signal_dependent(model)):
+            return "model"
+        return "estimate"
 
     def _described_noise(self) -> NoiseModel | None:
         """The training noise model of the metadata, when it and the native range are there."""
@@ -314,6 +322,11 @@ class OnnxDenoiser:
     @staticmethod
     def _has_level_map(model: NoiseModel) -> bool:
         return model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None
+
+    @staticmethod
+    def _signal_dependent(model: NoiseModel) -> bool:
+        dark, bright = (model.sigma_map(np.full((1, 1, 1), value, np.float32)) for value in (0.1, 0.9))
+        return not np.allclose(dark, bright)
 
     def _noise_model(self, noise_sigma: float | str) -> NoiseModel | None:
         if noise_sigma != "model":
