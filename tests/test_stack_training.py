@@ -242,10 +242,13 @@ def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_th
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
 
 
-def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path):
-    """Resuming a run whose checkpoint was trained on another revision of the neighbour alignment would train on
-    windows aligned two ways: refused in one line naming the checkpoint, the run folder left as it was."""
+@pytest.mark.parametrize("earlier", [None, 2])
+def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path, earlier):
+    """Resuming a run whose checkpoint was trained on another revision of the neighbour alignment (1: written before
+    revisions were recorded; 2: every neighbour's flow estimated directly) would train on windows aligned two ways:
+    refused in one line naming the checkpoint, the run folder left as it was."""
     from grainwright.inference.common.errors import InputError
+    from grainwright.inference.images.alignment import ALIGN_REVISION
     from grainwright.models.checkpoint import load_checkpoint, save_checkpoint
 
     data = _write_stacks(tmp_path / "data", repeated=False, count=1, frames=6, size=32)
@@ -254,13 +257,17 @@ def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path):
                                  assignments=TINY + ['model.align_neighbours="optical-flow"'])
     assert summary["stopped"] == "interrupted"
     state = load_checkpoint(run.last)
-    assert state["training_summary"]["align_revision"] == 2
-    del state["training_summary"]["align_revision"]  # as a checkpoint written before revisions were recorded
+    assert state["training_summary"]["align_revision"] == ALIGN_REVISION == 3
+    if earlier is None:
+        del state["training_summary"]["align_revision"]  # as a checkpoint written before revisions were recorded
+    else:
+        state["training_summary"]["align_revision"] = earlier
     save_checkpoint(run.last, state)
     before = run.last.read_bytes()
-    with pytest.raises(InputError, match="revision 1 of the optical-flow alignment.*start a new run") as error:
+    with pytest.raises(InputError, match=f"revision {earlier or 1} of the optical-flow alignment.*start a new run"
+                       ) as error:
         train_command(None, None, resume=str(run.root), announce=lambda message: None)
-    assert "last.pt" in str(error.value)
+    assert "last.pt" in str(error.value) and "\n" not in str(error.value)
     assert run.last.read_bytes() == before
 
 

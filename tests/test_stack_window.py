@@ -116,61 +116,81 @@ def test_chunked_equals_whole_equals_one_call_per_window(stack_model):
 
 def test_an_aligned_model_records_it_and_the_runtime_aligns(aligned_model, stack_model):
     """The export writes the alignment and its revision into the stack entry (format version 4, so that a runtime
-    that cannot align, or aligns by the earlier revision, refuses the file instead of feeding it other windows than
-    the model was trained on); unaligned models stay at version 2."""
+    that cannot align, or aligns by revision 1, refuses the file, and one of revision 2 refuses it by the revision,
+    instead of feeding it other windows than the model was trained on); unaligned models stay at version 2."""
     metadata = read_model_metadata(aligned_model)
     assert metadata["stack"]["align_neighbours"] == "optical-flow" and metadata["format_version"] == 4
-    assert metadata["stack"]["align_revision"] == ALIGN_REVISION == 2
+    assert metadata["stack"]["align_revision"] == ALIGN_REVISION == 3
     assert read_model_metadata(stack_model)["stack"]["align_neighbours"] == "none"
     assert "align_revision" not in read_model_metadata(stack_model)["stack"]
-    assert "neighbours aligned: optical-flow (revision 2)" in render_metadata(metadata)
+    assert "neighbours aligned: optical-flow (revision 3)" in render_metadata(metadata)
     assert OnnxDenoiser(aligned_model, threads=1).spec.stack_alignment == "optical-flow"
     assert OnnxDenoiser(stack_model, threads=1).spec.stack_alignment == "none"
 
 
 def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned_model):
     """With alignment on, any split into chunks gives the whole-stack result, which equals one untiled ONNX call per
-    reflected window whose neighbours are warped onto its centre frame (``align_to_centre``), and differs from the
-    unaligned windows' result (a moving scene: the frames are shifted copies of a smooth random image)."""
+    reflected window whose neighbours are warped onto its centre frame: the next frames by the flow estimated between
+    them and the centre frame (``neighbour_flow``), the frames two away by that flow composed with the flow of the
+    next frame's step onward (``compose_flows``). The steps are kept while the window slides, so this also shows
+    that what a chunk computes does not depend on where it starts. The result differs from the unaligned windows'
+    (a moving scene: the frames are shifted copies of a smooth random image)."""
     from scipy import ndimage
 
-    from grainwright.inference.images.alignment import align_to_centre
+    from grainwright.inference.images.alignment import compose_flows, neighbour_flow, warp_onto_centre
 
     denoiser = OnnxDenoiser(aligned_model, threads=1, tile=16, batch=3)
     base = ndimage.gaussian_filter(np.random.default_rng(4).uniform(0, 4095, (40, 48)), 3) * 3
     stack = np.stack([np.roll(base, 2 * i, axis=1) for i in range(7)])[..., None].astype(np.float32)
     whole = denoise_stack_array(denoiser, stack)
-    reference = []
-    for index in range(7):
-        positions = window_indices(index, 7, 5)
-        frames = [stack[p] if p == index else align_to_centre(stack[index], stack[p]) for p in positions]
-        reference.append(denoiser.run_whole(np.concatenate(frames, axis=2)))
+
+    def aligned(centre, neighbour):
+        if neighbour == centre:
+            return stack[centre]
+        middle = centre + np.sign(neighbour - centre)
+        flow = neighbour_flow(stack[centre], stack[middle])
+        if middle != neighbour:
+            flow = compose_flows(flow, neighbour_flow(stack[middle], stack[neighbour]))
+        return warp_onto_centre(stack[neighbour], flow)
+
+    reference = [denoiser.run_whole(np.concatenate([aligned(index, p) for p in window_indices(index, 7, 5)], axis=2))
+                 for index in range(7)]
     assert np.max(np.abs(whole - np.stack(reference))) / 4095.0 <= 1e-5
     unaligned = np.stack([denoiser.run_whole(np.concatenate(list(stack[window_indices(i, 7, 5)]), axis=2))
                           for i in range(7)])
     assert np.max(np.abs(whole - unaligned)) / 4095.0 > 1e-3
-    for bounds in ([0, 1, 5, 7], [0, 3, 7]):
+    for bounds in ([0, 1, 5, 7], [0, 3, 7], [0, 2, 4, 6, 7]):
         chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
         assert np.array_equal(np.concatenate(chunks), whole)
 
 
-def test_a_model_trained_on_the_earlier_alignment_is_refused_naming_the_file(tmp_path):
-    """A checkpoint whose training summary predates the recorded revision was aligned by revision 1 (scikit-image's
-    solver, 10 iterations at full resolution, the dense median): its file says so at format version 3, and the
-    runtime refuses it in one line naming the file rather than feeding it windows aligned another way."""
+@pytest.mark.parametrize(("revision", "version", "remedy"), [
+    (None, 3, "train it again"),  # a summary from before revisions were recorded: revision 1
+    (2, 4, "train it again"),
+    (4, 4, "update grainwright"),  # a model from a later grainwright
+])
+def test_a_model_trained_on_another_alignment_revision_is_refused_naming_the_file(tmp_path, revision, version,
+                                                                                   remedy):
+    """A model records the revision of the alignment it was trained on: revision 1 (no revision in the summary:
+    scikit-image's solver, 10 iterations at full resolution, the dense median; format version 3), revision 2 (the
+    closed-form solver and the sampled median, every neighbour's flow estimated directly; version 4), or a later one.
+    The runtime, revision 3 (the steps between consecutive frames estimated and composed), refuses any other in one
+    line naming the file rather than feeding it windows aligned another way."""
     from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
     from grainwright.models.export import export_checkpoint
 
+    summary = {"stack_axis": "T", "align_neighbours": "optical-flow"}
+    if revision is not None:
+        summary["align_revision"] = revision
     payload = new_checkpoint("unet-stack", 1, Normalization("uint16", 12, 0.0, 4095.0, 1),
-                             hyper={"frames": 3, "levels": 2, "width": 4}, seed=5,
-                             training_summary={"stack_axis": "T", "align_neighbours": "optical-flow"})
-    export_checkpoint(save_checkpoint(tmp_path / "earlier.pt", payload), tmp_path / "earlier.onnx", threads=1)
-    model = tmp_path / "earlier.onnx"
+                             hyper={"frames": 3, "levels": 2, "width": 4}, seed=5, training_summary=summary)
+    export_checkpoint(save_checkpoint(tmp_path / "other.pt", payload), tmp_path / "other.onnx", threads=1)
+    model = tmp_path / "other.onnx"
     metadata = read_model_metadata(model)
-    assert metadata["format_version"] == 3 and metadata["stack"]["align_revision"] == 1
-    assert "neighbours aligned: optical-flow (revision 1)" in render_metadata(metadata)
-    with pytest.raises(InputError, match=r"earlier\.onnx.*revision 1 of the optical-flow alignment; this grainwright "
-                                         r"computes revision 2.*train it again") as refused:
+    assert metadata["format_version"] == version and metadata["stack"]["align_revision"] == (revision or 1)
+    assert f"neighbours aligned: optical-flow (revision {revision or 1})" in render_metadata(metadata)
+    with pytest.raises(InputError, match=rf"other\.onnx.*revision {revision or 1} of the optical-flow alignment; this "
+                                         rf"grainwright computes revision 3.*{remedy}") as refused:
         OnnxDenoiser(model, threads=1)
     assert "\n" not in str(refused.value)
 

@@ -256,9 +256,11 @@ class OnnxDenoiser:
             raise InputError(self.path, f"unknown neighbour alignment {spec.stack_alignment!r} in the model's stack "
                              f"entry (this grainwright knows {', '.join(ALIGNMENTS)}); update grainwright")
         if spec.stack_alignment != "none" and spec.stack_align_revision != ALIGN_REVISION:
+            remedy = ("update grainwright" if (spec.stack_align_revision or 1) > ALIGN_REVISION
+                      else "train it again (docs/stacks-and-volumes.md)")
             raise InputError(self.path, f"was trained on neighbours aligned by revision {spec.stack_align_revision} of "
                              f"the optical-flow alignment; this grainwright computes revision {ALIGN_REVISION}, which "
-                             "the model has not seen: train it again (docs/stacks-and-volumes.md)")
+                             f"the model has not seen: {remedy}")
         inputs = {node.name for node in self.session.get_inputs()}
         if "image" not in inputs:
             raise InputError(self.path, f"model has no input named 'image' (inputs: {sorted(inputs)})")

@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from grainwright.inference.common.errors import InputError
-from grainwright.inference.images.alignment import aligned_frames
+from grainwright.inference.images.alignment import AlignedNeighbours, aligned_frames
 from grainwright.inference.runtime.runner import OnnxDenoiser
 from grainwright.inference.runtime.tiling import pad_to_alignment
 
@@ -56,6 +56,7 @@ def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, 
     """
     stop = count if stop is None else stop
     held: dict[int, np.ndarray] = {}
+    aligned = AlignedNeighbours(held) if alignment != "none" else None  # steps between frames reused while held
     for index in range(start, stop):
         wanted = window_indices(index, count, frames)
         for key in [key for key in held if key not in wanted]:
@@ -63,7 +64,9 @@ def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, 
         for key in sorted(set(wanted.tolist())):
             if key not in held:
                 held[int(key)] = np.asarray(read(int(key)))
-        yield index, np.concatenate(aligned_frames(held, wanted, alignment), axis=2)
+        if aligned is not None:
+            aligned.forget(set(held), index)
+        yield index, np.concatenate(aligned_frames(held, wanted, alignment, aligned), axis=2)
 
 
 def check_stack(denoiser: OnnxDenoiser, count: int, channels: int, path: str | Path | None = None) -> None:
