@@ -38,10 +38,23 @@ Cost and revision. With scikit-image's solver, 10 iterations at full resolution 
 (revision 1 of this alignment), one output frame of 512 x 512 (four neighbours, one thread) spent 4.0 s in the
 flow estimates (two thirds of it in ``numpy.linalg.solve`` and ``det`` on the 2 x 2 systems), 2.8 s in the median
 filters and 0.2 s in the rest. The closed-form solver, 5 iterations at full resolution and the sampled median
-(revision 2, ``ALIGN_REVISION``) take that to about a quarter, for the same or better quality at 3,000 fixed steps
-on the conveyor sequence (seeds 0, 1, 2; docs/benchmarks.md, where the variants tried are recorded). A model
-records the revision it was trained on (the exported ``stack`` entry's ``align_revision``), and the runtime
-refuses another: the model would meet windows aligned otherwise than in training.
+(revision 2) take that to about a quarter, for the same or better quality at 3,000 fixed steps
+on the conveyor sequence (seeds 0, 1, 2; docs/benchmarks.md, where the variants tried are recorded).
+
+Flow reuse (revision 3, ``ALIGN_REVISION``). A K = 5 window needs the flow from its centre frame t to t - 2, t - 1,
+t + 1 and t + 2, and the next window needs the flow from t + 1 to t + 2 again. :class:`AlignedNeighbours` therefore
+estimates the flow (:func:`neighbour_flow`) only between consecutive frames (frames one window spacing apart:
+consecutive at run time, ``stride`` apart in training windows that skip frames), each ordered pair once, keeps it
+while the window slides, and composes those steps for the frames further away (:func:`compose_flows`:
+``f(t -> t + 2)(x) = f(t -> t + 1)(x) + f(t + 1 -> t + 2)(x + f(t -> t + 1)(x))``, the second step sampled
+bilinearly): two flow estimates per output frame instead of four, and the alignment of one output frame of
+512 x 512 took 0.57 times revision 2's time (one thread). At 3,000 fixed steps on the conveyor sequence, seeds 0, 1,
+2, it lost 0.11 dB on the whole frame and 0.007 of the lane cracks' contrast in the mean against revision 2, inside
+the seed-to-seed spread (below on two seeds, above on one); deriving the backward steps by inverting the forward
+ones (one estimate per output frame) lost 0.20 dB on the moving pixels on every seed and was not taken
+(docs/benchmarks.md). A model records the revision it was trained on (the exported ``stack`` entry's
+``align_revision``), and the runtime refuses another: the model would meet windows aligned otherwise than in
+training.
 
 The neighbour is then resampled at the centre frame's pixel positions plus the flow by ``skimage.transform.warp``
 with a cubic spline (order ``WARP_ORDER`` = 3; ``mode="edge"``: a position the motion brings in from outside the
@@ -69,8 +82,11 @@ stacks with the raw-frame flow copied 5 % of the centre frame's noise (least-squ
 pooled over the same window, and holds most of such frames at zero motion, where the neighbour is taken unwarped
 and carries none of the centre frame's noise: on pure independent noise it held 72 % of the pixels at zero, and
 the aligned neighbour's correlation with the centre frame's noise went from 0.067 to 0.038 (mean of 8 draws of 192
-x 256; 0.072 to 0.047 at 48 x 48). The tests train on pure noise stacks with alignment on and check that the output
-is about the mean (tests/test_recorrupted_stack.py, tests/test_stack_training.py).
+x 256; 0.072 to 0.047 at 48 x 48). With flow reuse, the flow to a frame two away reads the centre frame only through
+its first step (the second runs between two neighbours): on three frames of pure independent noise that neighbour
+correlated 0.001 with the centre frame's noise, against 0.031 with its flow estimated directly (mean of 4 draws of
+192 x 256). The tests train on pure noise stacks with alignment on and check that the output is about the mean
+(tests/test_recorrupted_stack.py, tests/test_stack_training.py).
 
 Resampling at a fractional shift mixes neighbouring pixels, so a warped neighbour's noise is weaker and spatially
 correlated (less so with the cubic spline than bilinearly, and not at all where the flow is zero); training and run

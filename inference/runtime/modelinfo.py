@@ -20,7 +20,9 @@ METADATA_FORMAT = "grainwright-model"
 # Version 2 added the "stack" key of multi-frame models (K frames in, the centre frame out), version 3 its
 # "align_neighbours" value "optical-flow" (an older runtime would feed such a model unaligned windows), version 4
 # its "align_revision" (2: the cheaper flow of grainwright.inference.images.alignment; a version-3 file was aligned
-# by revision 1, and a runtime of version 3 would align a version-4 model's windows the old way). Each file is
+# by revision 1, and a runtime of version 3 would align a version-4 model's windows the old way). Revision 3 (the
+# flow reused between output frames) stays at version 4: every version-4 runtime checks the revision and refuses
+# another one by itself. Each file is
 # written at the lowest version that describes it, so older runtimes keep reading what they can run and refuse
 # only the rest.
 METADATA_VERSION = 4

@@ -11,8 +11,10 @@ than a 200-slice one. Within a frame, the window of K frames is tiled in x and y
 output frames (each chunk reading the ``r`` frames beyond its ends) gives the same result as the whole stack.
 
 A model whose ``stack`` entry says ``align_neighbours = "optical-flow"`` gets each window's neighbours warped onto
-its centre frame first (:mod:`grainwright.inference.images.alignment`, the function the trainer uses); the flow
-of a frame pair depends on those two whole frames only, so chunked still equals whole.
+its centre frame first (:mod:`grainwright.inference.images.alignment`, the class the trainer uses): the flow is
+estimated between consecutive frames only, each such step kept while both its frames are in the window, and
+composed for the frames two away. A step depends on its two whole frames only, and a composed flow on its steps,
+so chunked still equals whole; the kept steps are bounded by the window, as the frames are.
 """
 from __future__ import annotations
 
