@@ -31,9 +31,11 @@ QUICK = CompareOptions(quick=True, threads=1)
 FAST_METHODS = "box.onnx,gaussian,median"
 
 
-def box_mean_model(path: Path, channels: int = 1) -> Path:
-    """A 3x3 box mean per channel as an ONNX graph with grainwright metadata (zero padding at the border)."""
-    weight = numpy_helper.from_array(np.full((channels, 1, 3, 3), 1 / 9, np.float32), "weight")
+def box_mean_model(path: Path, channels: int = 1, kernel: np.ndarray | None = None) -> Path:
+    """A 3x3 box mean per channel (or another 3x3 ``kernel``, correlated as ONNX Conv does) as an ONNX graph with
+    grainwright metadata (zero padding at the border)."""
+    kernel = np.full((3, 3), 1 / 9) if kernel is None else kernel
+    weight = numpy_helper.from_array(np.tile(np.asarray(kernel, np.float32), (channels, 1, 1, 1)), "weight")
     node = helper.make_node("Conv", ["image", "weight"], ["denoised"], pads=[1, 1, 1, 1], group=channels)
     graph = helper.make_graph(
         [node], "box-mean",
@@ -151,6 +153,42 @@ def test_without_ground_truth_ranks_by_sure_and_reports_no_reference_figures(dat
     assert coins_regions == {"coin-edge"}
     assert any(d["region"].startswith("auto-") for d in result.regions if d["image"] == "camera.png")
     _assert_offline(result.report_dir)
+
+
+def test_ensemble_rows_score_the_flip_rotation_average_beside_the_plain_model(dataset, tmp_path):
+    # A model that copies each pixel's right-hand neighbour. Its 8-fold flip/rotation ensemble averages the 8
+    # transformed copies: each of the 4 direct neighbours twice, i.e. SciPy's correlation with the 4-neighbour
+    # mean kernel (zero padding as the graph's). Both rows' PSNR against skimage's, on those SciPy outputs.
+    from grainwright.inference.images.imageio import read_image
+
+    right = np.zeros((3, 3))
+    right[1, 2] = 1.0
+    model = box_mean_model(tmp_path / "shift.onnx", kernel=right)
+    cross = np.array([[0, 0.25, 0], [0.25, 0, 0.25], [0, 0.25, 0]])
+    options = CompareOptions(quick=True, threads=1, ensemble_rows=8)
+    result = run_comparison(dataset / "noisy", [str(model)], tmp_path / "report", clean_dir=dataset / "clean",
+                            options=options)
+    assert {entry["method"] for entry in result.ranking} == {"shift", "shift x8"}
+    ensemble_row = next(entry for entry in result.ranking if entry["method"] == "shift x8")
+    assert ensemble_row["kind"] == "learned" and "8-fold" in ensemble_row["parameter_choice"]
+    for name in ("camera.png", "coins.png"):
+        noisy = read_image(dataset / "noisy" / name)[:, :, 0].astype(np.float64)
+        clean = read_image(dataset / "clean" / name)[:, :, 0].astype(np.float64)
+        for method, kernel in (("shift", right), ("shift x8", cross)):
+            expected_output = np.clip(ndimage.correlate(noisy, kernel, mode="constant"), 0, 255)
+            expected = peak_signal_noise_ratio(clean, expected_output, data_range=255)
+            row = next(r for r in result.per_image if r["image"] == name and r["method"] == method)
+            assert row["psnr"] == pytest.approx(expected, abs=1e-3)
+
+
+def test_ensemble_rows_of_a_size_the_runtime_lacks_are_refused(dataset, tmp_path, capsys):
+    with pytest.raises(ConfigError, match="--ensemble-rows must be one of"):
+        run_comparison(dataset / "noisy", [str(dataset / "box.onnx")], tmp_path / "r",
+                       options=CompareOptions(quick=True, threads=1, ensemble_rows=3))
+    code, err = _cli(["--noisy", str(dataset / "noisy"), "--methods", str(dataset / "box.onnx"), "--stacks",
+                      "--ensemble-rows", "2", "-o", str(tmp_path / "r2")], capsys)
+    assert code == 2 and "--ensemble-rows" in err and len(err.splitlines()) == 1
+    assert not (tmp_path / "r").exists() and not (tmp_path / "r2").exists()
 
 
 def test_parse_methods_expands_and_suggests(dataset):

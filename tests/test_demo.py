@@ -143,8 +143,8 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
     for role, row in learned.items():
         assert (tmp_path / f"{role}.onnx").is_file()
         assert row["export"]["parity_max_abs_diff"] <= 1e-4
-        assert math.isfinite(row["psnr_db"]) and 1 <= row["psnr_rank"] <= 11
-        assert 1 <= row["sure_rank_without_ground_truth"] <= 11
+        assert math.isfinite(row["psnr_db"]) and 1 <= row["psnr_rank"] <= 14
+        assert 1 <= row["sure_rank_without_ground_truth"] <= 14
         assert row["crack_contrast_retention"] is None or math.isfinite(row["crack_contrast_retention"])
     results = json.loads((tmp_path / "report" / "with-ground-truth" / "results.json").read_text())
     assert {FINE_TUNED, STARTING_ALONE, RANDOM_WEIGHTS} <= {entry["method"] for entry in results["ranking"]}
@@ -154,12 +154,16 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
         assert (tmp_path / "report" / name / "index.html").is_file()
     compare = summary["compare"]
     assert math.isfinite(compare["psnr_gain_db"])
-    assert compare["methods"] == 11  # three learned models and the eight classical baselines
+    # Three learned models, each also with the 8-fold flip/rotation ensemble, and the eight classical baselines.
+    assert compare["methods"] == 14
+    assert compare["ensemble"]["method"] == f"{FINE_TUNED} x8" and compare["ensemble"]["size"] == 8
+    assert 1 <= compare["ensemble"]["psnr_rank"] <= 14 and math.isfinite(compare["ensemble"]["psnr_db"])
     assert set(compare["crack_contrast_retention_by_method"]["with-ground-truth"]) >= {"bm3d", FINE_TUNED}
     assert summary["large_frame"]["seconds_per_megapixel"] > 0
     text = "\n".join(lines)
     assert "PSNR gain of fine-tuned over the best classical method" in text and "index.html" in text
-    assert "[7/7" in text and all(f"  {role} " in text for role in learned)
+    assert "[7/7" in text and all(f"  {role} " in text for role in [*learned, f"{FINE_TUNED} x8"])
+    assert "with the 8-fold flip/rotation ensemble" in text
 
     # A second run into the same folder is allowed: it is a previous demo folder.
     prepare_out_dir(tmp_path)
@@ -172,7 +176,7 @@ def test_a_demo_set_to_start_from_random_weights_has_no_separate_record_row(tmp_
     lines: list[str] = []
     summary = run_demo(tmp_path, settings, echo=lines.append)
     assert list(summary["learned"]) == [RANDOM_WEIGHTS, STARTING_ALONE] and summary["main_model"] == RANDOM_WEIGHTS
-    assert summary["compare"]["methods"] == 10
+    assert summary["compare"]["methods"] == 12
     assert (tmp_path / "random-weights.onnx").is_file() and not (tmp_path / "fine-tuned.onnx").exists()
     assert not (tmp_path / "training-run-random-weights").exists()
     assert "[6/6" in "\n".join(lines)

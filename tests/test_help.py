@@ -20,6 +20,7 @@ OPTIONS_AT_LAYOUT_CHANGE = {
                "--batch --strength --noise-sigma --ensemble --threads --receptive-field --alignment --fixed-pattern "
                "--quiet -q",
     "compare": "--noisy --clean --methods --out -o --rois --quick --noise --threads --sure-probes --overwrite "
+               "--ensemble-rows "
                "--size-search --profile --frame --ms-per-frame",
     "demo": "--minutes --out --seed --threads",
     "bench models": "--architectures --size --channels --threads --repeats",

@@ -39,6 +39,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sure-probes", type=int, default=1, metavar="N",
                         help="Monte-Carlo SURE probes per method and image (default 1)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    parser.add_argument("--ensemble-rows", type=int, choices=(1, 2, 4, 8), default=1, metavar="N",
+                        help="also score every .onnx model with N flips/rotations averaged (denoise --ensemble N), "
+                        "as a row of its own labelled 'NAME xN' (default 1: no such rows)")
     parser.add_argument("--stacks", action="store_true",
                         help="the folders hold stacks (sequences, volumes; matched by name): per-slice PSNR/SSIM, a "
                         "slice view, and the K-frame average ('frame-average') and per-frame BM3D ('bm3d') as "
@@ -74,6 +77,8 @@ def run(args: argparse.Namespace) -> int:
     for folder in (Path(args.out).parent, Path(args.out)):
         remove_stale_temporaries(folder)  # report folders or files half-written by a killed comparison
     if args.stacks:
+        if args.ensemble_rows != 1:
+            raise ConfigError("--ensemble-rows scores single images; it does not apply with --stacks")
         return _run_stacks(args)
     size_plot = None
     if args.size_search:
@@ -87,6 +92,7 @@ def run(args: argparse.Namespace) -> int:
         sure_probes=max(1, args.sure_probes),
         overwrite=args.overwrite,
         size_plot=size_plot,
+        ensemble_rows=args.ensemble_rows,
     )
     result = run_comparison(
         args.noisy,

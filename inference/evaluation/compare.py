@@ -53,6 +53,7 @@ from grainwright.inference.evaluation.compare_inputs import (
     estimate_noise,
     match_images,
     parse_methods,
+    with_ensemble_rows,
 )
 from grainwright.inference.evaluation.compare_summary import findings_of, rank_methods, report_content
 from grainwright.inference.evaluation.detail import (
@@ -182,7 +183,7 @@ class _LearnedMethod:
     """An ONNX model seen as a working-range denoiser for one image's normalisation and noise level."""
 
     def __init__(self, spec: MethodSpec, threads: int | None):
-        self.denoiser = OnnxDenoiser(spec.path, threads=threads)
+        self.denoiser = OnnxDenoiser(spec.path, threads=threads, ensemble=spec.ensemble)
         self.path = spec.path
 
     def check_channels(self, channels: int, where: Path) -> None:
@@ -233,7 +234,7 @@ def run_comparison(
     """
     say = log or (lambda text: None)
     started = time.perf_counter()
-    specs = parse_methods(methods)
+    specs = with_ensemble_rows(parse_methods(methods), options.ensemble_rows)
     images = match_images(noisy_dir, clean_dir)
     regions_file = load_regions(rois) if rois is not None else {}
     out_dir = Path(out_dir)
@@ -359,7 +360,8 @@ def _run_and_score(spec: MethodSpec, learned: dict[str, _LearnedMethod], noisy: 
         row["parameters"] = json.dumps(params, default=str)
         denoise = _clipped(lambda image, name=spec.name, p=params: denoise_in_domain(name, image, noise.spec, **p))
     else:
-        row["parameter_choice"] = LEARNED_LABEL
+        row["parameter_choice"] = LEARNED_LABEL if spec.ensemble == 1 else f"{LEARNED_LABEL}, {spec.ensemble}-fold " \
+            "flip/rotation ensemble"
         row["parameters"] = ""
         denoise = _clipped(learned[spec.label].function(normalization, native_sigma))
 

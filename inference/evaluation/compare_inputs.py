@@ -7,7 +7,7 @@ tables are made in :mod:`grainwright.inference.evaluation.compare_summary`.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -19,6 +19,7 @@ from grainwright.inference.common.suggest import did_you_mean
 from grainwright.inference.images.imageio import effective_bit_depth, find_images, read_image
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.noise.estimation import estimate_sigma, fit_poisson_gaussian
+from grainwright.inference.runtime.runner import ENSEMBLE_SIZES
 
 # Smallest image side: SSIM's 11-pixel window with room to slide, and the 4-pixel J-invariant grid.
 MIN_SIDE = 16
@@ -47,6 +48,9 @@ class CompareOptions:
         Replace an existing, non-empty report folder.
     size_plot : str or None
         An SVG of the model sizes tried (``size_plot.size_search_svg``) to show in the report.
+    ensemble_rows : int
+        1, or 2, 4 or 8: also score every ONNX model with that many flips / 90-degree rotations averaged (the
+        runtime's ``--ensemble``), as a row of its own labelled ``NAME xN`` beside the model's plain row.
     """
 
     quick: bool = False
@@ -56,6 +60,7 @@ class CompareOptions:
     seed: int = 0
     overwrite: bool = False
     size_plot: str | None = None
+    ensemble_rows: int = 1
 
     @property
     def tuning_crop(self) -> int:
@@ -86,6 +91,7 @@ class MethodSpec:
     kind: str  # "classical" or "learned"
     name: str | None = None  # baseline name
     path: Path | None = None  # ONNX file
+    ensemble: int = 1  # learned: flips / 90-degree rotations averaged (OnnxDenoiser's self-ensemble)
 
 
 # ---------------------------------------------------------------------------------------------- methods list
@@ -128,6 +134,23 @@ def parse_methods(items: str | list[str]) -> list[MethodSpec]:
                 f"--methods: unknown method {name!r}{hint} (known: {', '.join(known)}, or a path to an .onnx file)"
             )
     return specs
+
+
+def with_ensemble_rows(specs: list[MethodSpec], ensemble: int) -> list[MethodSpec]:
+    """``specs`` with, after each ONNX model, the same model run with an ``ensemble``-fold self-ensemble
+    (labelled ``NAME xN``); unchanged for ``ensemble`` 1.
+
+    Raises ``ConfigError`` for a size the runtime does not offer."""
+    if ensemble not in ENSEMBLE_SIZES:
+        raise ConfigError(f"--ensemble-rows must be one of {ENSEMBLE_SIZES}, got {ensemble}")
+    if ensemble == 1:
+        return list(specs)
+    expanded: list[MethodSpec] = []
+    for spec in specs:
+        expanded.append(spec)
+        if spec.kind == "learned":
+            expanded.append(replace(spec, label=f"{spec.label} x{ensemble}", ensemble=ensemble))
+    return expanded
 
 
 # ---------------------------------------------------------------------------------------------- image sets
