@@ -98,6 +98,36 @@ def test_settings_are_checked():
         DeadLeavesSettings(radius_min=5.0, radius_max=2.0)
     with pytest.raises(ValueError, match="shapes"):
         DeadLeavesSettings(shapes=("triangle",))
+    with pytest.raises(ValueError, match="grating_period_min"):
+        DeadLeavesSettings(grating_period_min=2.0)
+    with pytest.raises(ValueError, match="texture_grains"):
+        DeadLeavesSettings(texture_grains=())
+
+
+def test_gratings_are_periodic_at_the_drawn_periods_and_off_by_default():
+    # The gratings are drawn after everything else, so an image with them minus the same seed's image without
+    # them (grating_fraction = 0) is the grating field alone; its spectrum (numpy.fft) must peak at a spatial
+    # frequency inside the drawn period range. Large shapes, no blur: a few gratings, each over a wide region.
+    flat = dict(size=64, radius_min=60.0, radius_max=61.0, blur_probability=0.0)
+    for seed in range(6):
+        image = dead_leaves_image(np.random.default_rng(seed), DeadLeavesSettings(
+            **flat, grating_fraction=1.0, grating_max=0.1, grating_period_min=4.0, grating_period_max=8.0))
+        grating = image - dead_leaves_image(np.random.default_rng(seed), DeadLeavesSettings(**flat))
+        assert np.ptp(grating) > 0.01
+        spectrum = np.abs(np.fft.fft2(grating - grating.mean()))
+        fy, fx = np.unravel_index(np.argmax(spectrum), spectrum.shape)
+        period = 1.0 / np.hypot(np.fft.fftfreq(64)[fy], np.fft.fftfreq(64)[fx])
+        # The FFT grid quantises the frequency to 1/64 cycle per pixel: one bin either side of [4, 8].
+        assert 1 / (1 / 4 + 1 / 64) <= period <= 1 / (1 / 8 - 1 / 64), (seed, period)
+
+
+def test_settings_without_gratings_draw_the_stream_the_shipped_stages_trained_on():
+    # Adding the grating settings must not change the images of the two stages trained before they existed:
+    # with the defaults (no gratings, the three original grains) an image depends only on its seed, as it did.
+    # Summary statistics of seed [16, 3] at the default settings, taken before the gratings were added.
+    image = dead_leaves_image(np.random.default_rng([16, 3]), DeadLeavesSettings())
+    assert float(image.mean()) == pytest.approx(0.48325568, abs=1e-7)
+    assert float(image.std()) == pytest.approx(0.20306848, abs=1e-7)
 
 
 def test_held_out_images_never_train():

@@ -116,6 +116,30 @@ def test_the_refinement_recipe_continues_an_earlier_run_and_packages_both_stages
         train_generated("starting-model-refine", tmp_path / "third", assignments=tiny, **quiet)
 
 
+def test_a_refinement_of_the_shipped_weights_packages_every_stage_behind_them(tmp_path):
+    """A recipe started from the shipped weights (start.weights = "starting-model", as the textures stage was)
+    carries the shipped manifest's stages in its own, and a command that reproduces all of them."""
+    from grainwright.models.starting import starting_model_manifest
+    from grainwright.trainer.generated import package_run
+
+    shipped = starting_model_manifest()
+    short = ["model.precision=\"float32\"", "data.patch_size=32", "data.batch_size=2", "generated.pool=2",
+             "generated.image_size=64", "generated.validation_images=1", "validation.patches=4",
+             "validation.every_steps=2", "budget.steps=2", "start.weights=\"starting-model\""]
+    summary, run = train_generated("starting-model-textures", tmp_path / "run", assignments=short,
+                                   announce=lambda message: None)
+    assert summary["started_from"]["sha256"] == shipped["weights_sha256"]
+    manifest = package_run(run.root, tmp_path / "into", recipe_path="starting-model-textures")
+    stages = manifest["earlier_stages"]
+    assert len(stages) == len(shipped.get("earlier_stages", [])) + 1
+    assert stages[-1]["checkpoint_sha256"] == shipped["weights_sha256"]
+    assert manifest["total_steps"] == shipped["total_steps"] + 2
+    command = manifest["recipe"]["command"]
+    assert command.startswith(shipped["recipe"]["command"].replace("RUN_DIR", f"STAGE{len(stages)}_DIR"))
+    assert command.endswith(f"--recipe starting-model-textures --set start.weights='\"STAGE{len(stages)}_DIR\"' "
+                            "--out RUN_DIR")
+
+
 @pytest.mark.slow
 def test_twenty_steps_of_the_shipped_recipe_reproduce_exactly(tmp_path):
     # Determinism of the recipe: a run of its first 20 steps from its seed, and another stopped at step 10 and

@@ -38,7 +38,7 @@ from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import Key, _check_value, shipped_config, validate
 from grainwright.trainer.data import PatchSource
 from grainwright.trainer.loop import TrainingSetup, fastest_step, train
-from grainwright.trainer.start import check_start_weights, fine_tuning_schedule, resolve_start
+from grainwright.trainer.start import STARTING_MODEL, check_start_weights, fine_tuning_schedule, resolve_start
 from grainwright.trainer.schemes.base import apply_model
 from grainwright.trainer.schemes.supervised import Supervised
 
@@ -52,6 +52,14 @@ GENERATED: dict[str, Key] = {
     "image_size": Key("int", 256, "Edge of the dead-leaves images, pixels.", 16, 4096),
     "radius_min": Key("float", 1.0, "Smallest shape radius, pixels.", 0.1, 1e4),
     "radius_max": Key("float", 128.0, "Largest shape radius, pixels.", 0.2, 1e5),
+    "texture_grains": Key("str", "0.7,1.5,3.0", "Grains of the shapes' random textures, pixels (comma-separated)."),
+    "grating_fraction": Key("float", 0.0, "Share of shapes carrying an oriented periodic grating (tool marks, "
+                            "weaves, line patterns).", 0.0, 1.0),
+    "grating_min": Key("float", 0.005, "Smallest grating amplitude, fraction of the range (amplitudes are drawn "
+                       "log-uniformly between grating_min and grating_max).", 1e-6, 1.0),
+    "grating_max": Key("float", 0.15, "Largest grating amplitude, fraction of the range.", 1e-6, 1.0),
+    "grating_period_min": Key("float", 2.5, "Shortest grating period, pixels.", 2.5, 1e4),
+    "grating_period_max": Key("float", 16.0, "Longest grating period, pixels.", 2.5, 1e4),
     "level_weighting": Key("choice", "none", "Loss weight of each patch by its noise level: 'none' (plain mean "
                            "squared error, dominated by the high levels) or 'inverse' (each patch's squared error "
                            "divided by max(level, level_floor) ** level_exponent; exponent 1 gives about equal "
@@ -101,6 +109,11 @@ def load_recipe(path: str | Path, assignments: list[str] = ()) -> dict[str, Any]
         generated[name] = _check_value(f"generated.{name}", GENERATED[name], value)
     if generated["radius_min"] >= generated["radius_max"]:
         raise ConfigError("generated.radius_min must be below generated.radius_max")
+    if generated["grating_min"] > generated["grating_max"]:
+        raise ConfigError("generated.grating_min must not exceed generated.grating_max")
+    if generated["grating_period_min"] > generated["grating_period_max"]:
+        raise ConfigError("generated.grating_period_min must not exceed generated.grating_period_max")
+    texture_grains(generated)
     sigmas(generated)
     # The starting model is what other runs start from; its own recipe starts from random weights unless it says.
     raw.setdefault("start", {}).setdefault("weights", "random")
@@ -119,9 +132,25 @@ def sigmas(generated: dict[str, Any]) -> list[float]:
                           f"{generated['validation_sigmas']!r}") from None
 
 
+def texture_grains(generated: dict[str, Any]) -> tuple[float, ...]:
+    """The texture grains, pixels."""
+    try:
+        grains = tuple(float(part) for part in str(generated["texture_grains"]).split(",") if part.strip())
+    except ValueError:
+        grains = ()
+    if not grains or min(grains) <= 0:
+        raise ConfigError(f"generated.texture_grains: expected positive numbers separated by commas, got "
+                          f"{generated['texture_grains']!r}")
+    return grains
+
+
 def dead_leaves_settings(generated: dict[str, Any]) -> DeadLeavesSettings:
     return DeadLeavesSettings(size=generated["image_size"], radius_min=generated["radius_min"],
-                              radius_max=generated["radius_max"])
+                              radius_max=generated["radius_max"], texture_grains=texture_grains(generated),
+                              grating_fraction=generated["grating_fraction"], grating_min=generated["grating_min"],
+                              grating_max=generated["grating_max"],
+                              grating_period_min=generated["grating_period_min"],
+                              grating_period_max=generated["grating_period_max"])
 
 
 def stream_image(seed: int, index: int, settings: DeadLeavesSettings) -> np.ndarray:
@@ -389,6 +418,26 @@ def _earlier_stage(checkpoint: Path, started_from: dict[str, Any]) -> dict[str, 
     return stage
 
 
+def _shipped_stages(started_from: dict[str, Any], recipe_stem: str) -> tuple[list[dict[str, Any]], str]:
+    """The stages behind the shipped weights a refinement started from (read from their manifest, which must
+    still be the one of those weights), and the command that reproduces all of them plus this one."""
+    from grainwright.models.starting import starting_model_manifest
+
+    shipped = starting_model_manifest()
+    if shipped["weights_sha256"] != started_from.get("sha256"):
+        raise ConfigError("the shipped starting model's manifest describes other weights than the run started "
+                          "from; package the run before the shipped weights change")
+    last = {"checkpoint_sha256": shipped["weights_sha256"], "steps": shipped["steps"],
+            "wall_time_minutes": shipped["wall_time_minutes"], "validation_history": shipped["validation"]["history"],
+            "precision": shipped["precision"], "resolved": shipped["recipe"]["resolved"],
+            "machine": shipped["machine"]}
+    stages = [*shipped.get("earlier_stages", []), last]
+    previous = f"STAGE{len(stages)}_DIR"
+    command = (shipped["recipe"]["command"].replace("RUN_DIR", previous) + "; grainwright starting-model train "
+               f"--recipe {recipe_stem} --set start.weights='\"{previous}\"' --out RUN_DIR")
+    return stages, command
+
+
 def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path = "starting-model",
                 extra: dict[str, Any] | None = None) -> dict[str, Any]:
     """Write a finished recipe run as the shipped starting model: ``into/starting-model.pt`` (the run's
@@ -425,6 +474,8 @@ def package_run(run_dir: str | Path, into: str | Path, recipe_path: str | Path =
         stages = [_earlier_stage(Path(earlier["path"]), earlier)]
         command = ("grainwright starting-model train --out STAGE1_DIR; grainwright starting-model train --recipe "
                    f"{recipe_file.stem} --set start.weights='\"STAGE1_DIR\"' --out RUN_DIR")
+    elif earlier and earlier.get("weights") == STARTING_MODEL:  # refined from the shipped weights: their stages
+        stages, command = _shipped_stages(earlier, recipe_file.stem)
     manifest = {
         "name": "grainwright starting model",
         "weights_file": WEIGHTS,

@@ -9,7 +9,11 @@ International Journal of Computer Vision 41, 2001); images of this kind share th
 roughly ``1/f**2`` power spectrum of photographs, and denoisers trained on them come close to those trained on
 natural images (Achddou, Gousseau and Ladjal, "Synthetic images as a regularity prior for image restoration
 neural networks", SSVM 2021). Each shape is a disk, an ellipse or a rotated rectangle; its grey level is uniform,
-optionally with a linear gradient and a small-scale texture; the whole image is optionally blurred (focus).
+optionally with a linear gradient, a random texture (smoothed noise) and an oriented periodic grating; the whole
+image is optionally blurred (focus). The gratings stand for the periodic textures of man-made surfaces (tool marks
+on a machined face, weaves, printed or etched line patterns), which plain dead leaves lack: textured dead leaves
+are the direction Achddou, Gousseau and Ladjal took after the SSVM paper (from memory; the grating model here is
+our own).
 
 Rendering is vectorised: shapes are handled in chunks, each chunk rasterised at once into ``(shape, pixel)``
 pairs inside the shapes' bounding windows, and every still-uncovered pixel takes the first shape of the chunk
@@ -46,6 +50,17 @@ class DeadLeavesSettings:
         Share of shapes carrying a small-scale texture (smoothed noise of a random grain).
     texture_max : float
         Largest texture amplitude (standard deviation, fractions of the range).
+    texture_grains : tuple of float
+        Grains of the textures, pixels (standard deviation of the smoothing Gaussian); each textured shape takes one.
+    grating_fraction : float
+        Share of shapes carrying an oriented periodic grating (0 draws none, and leaves the random stream of the
+        other settings unchanged).
+    grating_min, grating_max : float
+        Range of the grating amplitudes (half the peak-to-peak swing, fractions of the range), drawn
+        log-uniformly: faint gratings, near or under the noise, are as common as strong ones.
+    grating_period_min, grating_period_max : float
+        Range of the grating periods, pixels (drawn log-uniformly); 2.5 pixels at least, so a grating is sampled
+        without aliasing.
     blur_probability : float
         Share of images blurred with a Gaussian of standard deviation up to ``blur_max`` pixels.
     blur_max : float
@@ -60,6 +75,12 @@ class DeadLeavesSettings:
     gradient_max: float = 0.3
     texture_fraction: float = 0.3
     texture_max: float = 0.08
+    texture_grains: tuple[float, ...] = (0.7, 1.5, 3.0)
+    grating_fraction: float = 0.0
+    grating_min: float = 0.005
+    grating_max: float = 0.15
+    grating_period_min: float = 2.5
+    grating_period_max: float = 16.0
     blur_probability: float = 0.3
     blur_max: float = 1.5
 
@@ -71,6 +92,13 @@ class DeadLeavesSettings:
             raise ValueError(f"shapes must be some of {SHAPES}, got {self.shapes}")
         if self.size < 8:
             raise ValueError(f"size must be at least 8 pixels, got {self.size}")
+        if not self.texture_grains or min(self.texture_grains) <= 0:
+            raise ValueError(f"texture_grains must be positive pixel sizes, got {self.texture_grains}")
+        if not 0 < self.grating_min <= self.grating_max:
+            raise ValueError(f"need 0 < grating_min <= grating_max, got {self.grating_min}, {self.grating_max}")
+        if not 2.5 <= self.grating_period_min <= self.grating_period_max:
+            raise ValueError(f"need 2.5 <= grating_period_min <= grating_period_max, got "
+                             f"{self.grating_period_min}, {self.grating_period_max}")
 
 
 def radius_cdf(radius: np.ndarray | float, radius_min: float, radius_max: float) -> np.ndarray:
@@ -86,10 +114,10 @@ def draw_radii(rng: np.random.Generator, count: int, radius_min: float, radius_m
     return (radius_min ** -2 - u * (radius_min ** -2 - radius_max ** -2)) ** -0.5
 
 
-def _textures(rng: np.random.Generator, size: int) -> np.ndarray:
-    """Three unit-variance texture fields of increasing grain (Gaussian-smoothed white noise)."""
+def _textures(rng: np.random.Generator, size: int, grains: tuple[float, ...]) -> np.ndarray:
+    """Unit-variance texture fields, one per grain (Gaussian-smoothed white noise)."""
     fields = []
-    for grain in (0.7, 1.5, 3.0):
+    for grain in grains:
         field = ndimage.gaussian_filter(rng.standard_normal((size, size)), grain, mode="wrap")
         fields.append(field / max(field.std(), 1e-6))
     return np.stack(fields).astype(np.float32)
@@ -144,6 +172,22 @@ def _cover(rng: np.random.Generator, settings: DeadLeavesSettings, labels: np.nd
     return {"radius": radius, "centre": centre}
 
 
+def _gratings(rng: np.random.Generator, settings: DeadLeavesSettings, drawn: int, index: np.ndarray,
+              yy: np.ndarray, xx: np.ndarray) -> np.ndarray:
+    """Each pixel's grating value: for a share of the shapes an oriented periodic profile of random period,
+    phase and sharpness (from a sinusoid, sharpness 0, to nearly a square wave, like tool marks), else 0."""
+    carries = rng.random(drawn) < settings.grating_fraction
+    amplitude = np.where(carries, np.exp(rng.uniform(np.log(settings.grating_min), np.log(settings.grating_max),
+                                                     drawn)), 0.0)
+    period = np.exp(rng.uniform(np.log(settings.grating_period_min), np.log(settings.grating_period_max), drawn))
+    angle = rng.uniform(0.0, np.pi, drawn)
+    phase = rng.uniform(0.0, 2 * np.pi, drawn)
+    sharpness = rng.uniform(0.0, 3.0, drawn)
+    wave = np.sin(2 * np.pi * (xx * np.cos(angle[index]) + yy * np.sin(angle[index])) / period[index] + phase[index])
+    gain = np.maximum(sharpness[index], 1e-3)
+    return amplitude[index] * np.tanh(gain * wave) / np.tanh(gain)
+
+
 def dead_leaves_image(rng: np.random.Generator, settings: DeadLeavesSettings = DeadLeavesSettings(),
                       chunk: int = 1000, uncovered_share: float = 3e-3) -> np.ndarray:
     """One dead-leaves image, float32 in ``[0, 1]``, shaped ``(size, size)``.
@@ -153,7 +197,7 @@ def dead_leaves_image(rng: np.random.Generator, settings: DeadLeavesSettings = D
     rng : numpy.random.Generator
         The only source of randomness.
     settings : DeadLeavesSettings
-        Radii, shapes, gradients, texture and blur.
+        Radii, shapes, gradients, textures, gratings and blur.
     chunk : int
         Shapes drawn in the first rendering pass; each further pass draws twice as many, until fewer than
         ``uncovered_share`` of the pixels are left uncovered. Those last few pixels (holes smaller than the
@@ -179,8 +223,8 @@ def dead_leaves_image(rng: np.random.Generator, settings: DeadLeavesSettings = D
     direction = rng.uniform(0.0, 2 * np.pi, drawn)
     textured = rng.random(drawn) < settings.texture_fraction
     amplitude = np.where(textured, rng.uniform(0.0, settings.texture_max, drawn), 0.0)
-    grain = rng.integers(0, 3, drawn)
-    textures = _textures(rng, size)
+    grain = rng.integers(0, len(settings.texture_grains), drawn)
+    textures = _textures(rng, size, settings.texture_grains)
     blur = settings.blur_max * rng.random() if rng.random() < settings.blur_probability else 0.0
 
     image = level[labels]
@@ -190,6 +234,8 @@ def dead_leaves_image(rng: np.random.Generator, settings: DeadLeavesSettings = D
     along = ((yy + 0.5 - centre[index, 0]) * np.sin(direction[index])
              + (xx + 0.5 - centre[index, 1]) * np.cos(direction[index])) / radius[index]
     image += (gradient[index] * along + amplitude[index] * textures[grain[index], yy, xx]).reshape(size, size)
+    if settings.grating_fraction > 0:
+        image += _gratings(rng, settings, drawn, index, yy, xx).reshape(size, size)
     if blur > 0:
         image = ndimage.gaussian_filter(image, blur, mode="reflect")
     return np.clip(image, 0.0, 1.0).astype(np.float32)
