@@ -123,21 +123,22 @@ def load_recipe(path: str | Path, assignments: list[str] = ()) -> dict[str, Any]
     return {**config, "generated": generated}
 
 
+def _numbers(generated: dict[str, Any], key: str) -> list[float]:
+    """A ``[generated]`` value of numbers separated by commas."""
+    try:
+        return [float(part) for part in str(generated[key]).split(",") if part.strip()]
+    except ValueError:
+        raise ConfigError(f"generated.{key}: expected numbers separated by commas, got {generated[key]!r}") from None
+
+
 def sigmas(generated: dict[str, Any]) -> list[float]:
     """The validation noise levels, fractions of the range."""
-    try:
-        return [float(part) / 255.0 for part in str(generated["validation_sigmas"]).split(",") if part.strip()]
-    except ValueError:
-        raise ConfigError(f"generated.validation_sigmas: expected numbers separated by commas, got "
-                          f"{generated['validation_sigmas']!r}") from None
+    return [level / 255.0 for level in _numbers(generated, "validation_sigmas")]
 
 
 def texture_grains(generated: dict[str, Any]) -> tuple[float, ...]:
     """The texture grains, pixels."""
-    try:
-        grains = tuple(float(part) for part in str(generated["texture_grains"]).split(",") if part.strip())
-    except ValueError:
-        grains = ()
+    grains = tuple(_numbers(generated, "texture_grains"))
     if not grains or min(grains) <= 0:
         raise ConfigError(f"generated.texture_grains: expected positive numbers separated by commas, got "
                           f"{generated['texture_grains']!r}")
