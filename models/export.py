@@ -49,6 +49,7 @@ from grainwright.inference.runtime.modelinfo import (
     METADATA_FORMAT,
     METADATA_KEY,
     metadata_version,
+    noise_map_entry,
 )
 from grainwright.models.base import DenoisingNetwork
 from grainwright.models.checkpoint import (
@@ -283,6 +284,9 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         inputs["image"] = (f"float32 N x ({model.stack_frames} * C) x H x W, native pixel values of "
                            f"{model.stack_frames} consecutive frames, frame-major (channel k * C + c is frame k, "
                            "channel c); H and W multiples of the alignment")
+    # How the runtime makes the noise_sigma input, stated in the file so that no reader has to rederive it.
+    noise_map = noise_map_entry({"takes_noise_map": model.takes_noise_map, "normalization": normalization.to_dict(),
+                                 "noise": payload.get("noise"), "scheme": payload.get("scheme")})
     return {
         "format": METADATA_FORMAT,
         # Version 2 adds the "stack" key, version 3 neighbours aligned by optical flow, version 4 the alignment's
@@ -301,6 +305,7 @@ def build_metadata(payload: dict[str, Any], model: DenoisingNetwork, normalizati
         "takes_noise_map": model.takes_noise_map,
         "stack": stack,
         "inputs": inputs,
+        "noise_map": noise_map,
         "outputs": {"denoised": "float32 N x C x H x W, native values, not clipped or rounded"},
         "normalization": normalization.to_dict(),
         "noise": payload.get("noise"),

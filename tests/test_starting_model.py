@@ -11,7 +11,7 @@ import torch
 
 from grainwright.inference.common.errors import ConfigError
 from grainwright.inference.images.imageio import write_image
-from grainwright.inference.runtime.modelinfo import read_model_metadata
+from grainwright.inference.runtime.modelinfo import read_model_metadata, render_metadata
 from grainwright.inference.runtime.runner import OnnxDenoiser
 from grainwright.models.checkpoint import checkpoint_payload, load_checkpoint
 from grainwright.models.export import PARITY_TOLERANCE
@@ -442,6 +442,8 @@ def test_the_runtime_feeds_transformed_domain_models_their_noise_model_by_defaul
     export_starting_model(tmp_path / "samples", output, noise_path=noise_path, bit_depth=bit_depth)
     default = OnnxDenoiser(output, threads=1)
     assert default.noise_sigma == "model" and default.noise_model is not None
+    assert read_model_metadata(output)["noise_map"]["source"] == "noise-model"  # the file says so itself
+    assert "level from: noise-model" in render_metadata(read_model_metadata(output))
     peak = float(clean.max())
     scores = {mode: psnr(clean, OnnxDenoiser(output, threads=1, noise_sigma=mode).run(noisy[..., None],
                                                                                        as_float=True)[..., 0], peak)
@@ -457,3 +459,43 @@ def test_gaussian_exports_keep_the_per_image_estimate_by_default(tmp_path):
     write_image(tmp_path / "samples" / "a.png", rng.integers(0, 256, (40, 40, 1), dtype=np.uint8))
     export_starting_model(tmp_path / "samples", tmp_path / "g.onnx", payload=_tiny_starting_payload())
     assert OnnxDenoiser(tmp_path / "g.onnx", threads=1).noise_sigma == "estimate"
+    entry = read_model_metadata(tmp_path / "g.onnx")["noise_map"]
+    assert entry["source"] == "estimate" and "Donoho and Johnstone" in entry["rule"]
+
+
+def _rewrite_noise_map(source, target, entry, **changes):
+    """A copy of the ONNX file ``source`` whose metadata's ``noise_map`` is ``entry`` (deleted when None), other
+    keys set from ``changes``."""
+    import onnx
+
+    proto = onnx.load(source)
+    stored = next(item for item in proto.metadata_props if item.key == "grainwright")
+    metadata = json.loads(stored.value)
+    metadata.pop("noise_map")
+    if entry is not None:
+        metadata["noise_map"] = entry
+    metadata.update(changes)
+    stored.value = json.dumps(metadata)
+    onnx.save(proto, target)
+    return target
+
+
+def test_the_runtime_follows_the_noise_map_source_the_file_states(tmp_path):
+    """The file's own ``noise_map.source`` decides what 'auto' feeds; a file without the entry (written before it)
+    gets the exporter's rule; a source this version does not know is refused in one line naming the file."""
+    from grainwright.inference.common.errors import InputError
+
+    rng = np.random.default_rng(0)
+    (tmp_path / "samples").mkdir()
+    write_image(tmp_path / "samples" / "a.png", rng.integers(0, 256, (40, 40, 1), dtype=np.uint8))
+    exported = tmp_path / "g.onnx"
+    export_starting_model(tmp_path / "samples", exported, payload=_tiny_starting_payload())
+    stated = _rewrite_noise_map(exported, tmp_path / "stated.onnx", {"source": "noise-model", "rule": "..."},
+                                noise={"kind": "gaussian", "sigma": 0.05})
+    assert OnnxDenoiser(stated, threads=1).noise_sigma == "model"
+    older = _rewrite_noise_map(exported, tmp_path / "older.onnx", None)
+    assert OnnxDenoiser(older, threads=1).noise_sigma == "estimate"
+    unknown = _rewrite_noise_map(exported, tmp_path / "unknown.onnx", {"source": "lookup-table"})
+    with pytest.raises(InputError, match="unknown noise map source 'lookup-table'") as caught:
+        OnnxDenoiser(unknown, threads=1)
+    assert "unknown.onnx" in str(caught.value) and "\n" not in str(caught.value)

@@ -154,6 +154,7 @@ def test_a_supervised_model_of_poisson_gaussian_noise_denoises_at_run_time(tmp_p
     export_checkpoint(run.best, tmp_path / "model.onnx", threads=1)
     denoiser = OnnxDenoiser(tmp_path / "model.onnx", threads=1)
     assert denoiser.noise_sigma == "model"
+    assert denoiser.metadata["noise_map"]["source"] == "noise-model"
     gains = []
     for i in range(4):
         clean, noisy = (read_image(folder / role / f"crop{i}.png") for role in ("clean", "noisy"))

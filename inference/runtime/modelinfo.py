@@ -10,10 +10,12 @@ import json
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import InputError
 from grainwright.inference.images.alignment import recorded_revision
+from grainwright.inference.noise.models import NoiseModel, noise_from_dict
 
 METADATA_KEY = "grainwright"
 METADATA_FORMAT = "grainwright-model"
@@ -26,6 +28,16 @@ METADATA_FORMAT = "grainwright-model"
 # written at the lowest version that describes it, so older runtimes keep reading what they can run and refuse
 # only the rest.
 METADATA_VERSION = 4
+# How a noise-map model's "noise_sigma" input is made at run time (the "noise_map" entry's "source"): the training
+# noise model's level at every pixel, or one level per image estimated from the image.
+NOISE_MAP_SOURCES = ("noise-model", "estimate")
+NOISE_MAP_RULES = {
+    "noise-model": "per pixel: the level of the 'noise' model (working units) at the noisy pixel's normalised value "
+                   "x = (value - low) / (high - low), clipped to [0, 1], times (high - low); averaged over the "
+                   "channels",
+    "estimate": "one level per image, native units: the median absolute deviation of the finest diagonal wavelet "
+                "coefficients over 0.6745 (Donoho and Johnstone 1994), the mean over the channels",
+}
 
 
 def _revision(stack: dict[str, Any]) -> str:
@@ -42,6 +54,60 @@ def metadata_version(stack: dict[str, Any] | None) -> int:
     if revision is None:
         return 2
     return 4 if revision >= 2 else 3
+
+
+def has_level_map(model: NoiseModel) -> bool:
+    """Whether the noise model gives a per-pixel level (Gaussian, Poisson-Gaussian, speckle... do)."""
+    return model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None
+
+
+def _signal_dependent(model: NoiseModel) -> bool:
+    dark, bright = (model.sigma_map(np.full((1, 1, 1), value, np.float32)) for value in (0.1, 0.9))
+    return not np.allclose(dark, bright)
+
+
+def derived_noise_map_source(metadata: dict[str, Any]) -> str | None:
+    """Where a noise-map model's level input comes from, by the rule the exporter applies (files written before the
+    ``noise_map`` entry are read by it too); None for a model without a noise-map input.
+
+    ``"noise-model"`` for a model working in a variance-stabilised domain whose training noise model has a
+    per-pixel level (Poisson-Gaussian noise through the Anscombe transform, gamma speckle through the log: there the
+    transform, not the image, sets the level the network sees), and for a supervised model of signal-dependent
+    noise, which trained on that level pixel by pixel; ``"estimate"`` otherwise. One level estimated on a whole
+    image misstates signal-dependent noise: dark regions pull it down, and the graph then converts that one native
+    level at every pixel's own slope, under-telling bright regions."""
+    if not metadata.get("takes_noise_map"):
+        return None
+    normalization = metadata.get("normalization") or {}
+    description = metadata.get("noise")
+    if not description or normalization.get("low") is None or normalization.get("high") is None:
+        return "estimate"
+    model = noise_from_dict(description)
+    if not has_level_map(model):
+        return "estimate"
+    if normalization.get("transform") or (metadata.get("scheme") == "supervised" and _signal_dependent(model)):
+        return "noise-model"
+    return "estimate"
+
+
+def noise_map_entry(metadata: dict[str, Any]) -> dict[str, str] | None:
+    """The ``noise_map`` entry an exported file carries: ``source`` (one of ``NOISE_MAP_SOURCES``) and ``rule``,
+    how to compute the ``noise_sigma`` input in words (for programs in other languages); None without the input."""
+    source = derived_noise_map_source(metadata)
+    return None if source is None else {"source": source, "rule": NOISE_MAP_RULES[source]}
+
+
+def noise_map_source(metadata: dict[str, Any], path: str | Path | None = None) -> str | None:
+    """The noise-map source a model's metadata states (``noise_map.source``), or for files written before it the
+    exporter's rule (:func:`derived_noise_map_source`). A source this grainwright does not know is refused."""
+    entry = metadata.get("noise_map")
+    if not entry:
+        return derived_noise_map_source(metadata)
+    source = entry.get("source") if isinstance(entry, dict) else None
+    if source not in NOISE_MAP_SOURCES:
+        raise InputError(path, f"unknown noise map source {source!r} in the model description (this grainwright "
+                               f"knows {', '.join(NOISE_MAP_SOURCES)}); update grainwright")
+    return source
 
 
 def _session(path: Path) -> ort.InferenceSession:
@@ -124,6 +190,14 @@ def _decisions(summary: dict[str, Any]) -> str:
     return text
 
 
+def _noise_map_text(metadata: dict[str, Any]) -> str:
+    if not metadata.get("takes_noise_map"):
+        return "no"
+    stated = (metadata.get("noise_map") or {}).get("source")
+    source = stated or f"{derived_noise_map_source(metadata)} (the exporter's rule: the file predates its noise_map entry)"
+    return f"yes, level from: {source}"
+
+
 def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None) -> str:
     """A readable multi-line text of the model description (what ``grainwright info`` prints)."""
     architecture = metadata.get("architecture") or {}
@@ -137,7 +211,7 @@ def render_metadata(metadata: dict[str, Any], io: dict[str, list] | None = None)
         f"receptive field   {metadata.get('receptive_field', '-')} px",
         f"alignment         {metadata.get('alignment', '-')} px",
         f"tile margin       {metadata.get('tile_margin', '-')} px",
-        f"noise map input   {'yes' if metadata.get('takes_noise_map') else 'no'}",
+        f"noise map input   {_noise_map_text(metadata)}",
     ]
     stack = metadata.get("stack")
     if stack:

@@ -27,7 +27,9 @@ from grainwright.inference.common.errors import ConfigError, InputError
 from grainwright.inference.images.alignment import ALIGN_REVISION, ALIGNMENTS, recorded_revision
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
-from grainwright.inference.runtime.modelinfo import METADATA_KEY, check_metadata
+from grainwright.inference.runtime.modelinfo import (
+    METADATA_KEY, check_metadata, has_level_map, noise_map_source,
+)
 from grainwright.inference.runtime.tiling import (
     Tile,
     TilePlan,
@@ -199,11 +201,13 @@ class OnnxDenoiser:
         For noise-map models, a factor on the noise map (0.5 denoises as if the noise were half as strong).
         For other models, a blend: ``output = input + strength * (model output - input)``.
     noise_sigma : float or "auto" or "estimate" or "training" or "model"
-        Noise-map models only: "auto" (the default: "model" for a model working in a variance-stabilised domain
-        whose metadata carries a noise model with a per-pixel level, such as Poisson-Gaussian noise through the
-        Anscombe transform or gamma speckle through the log, where the transform and not the image sets the
-        level the network sees, and for a supervised model of signal-dependent noise, which trained on that map;
-        "estimate" otherwise), the noise standard deviation in native units, "estimate"
+        Noise-map models only: "auto" (the default: as the file's metadata states in ``noise_map.source``, or
+        for files exported before that entry by the same rule, :func:`modelinfo.derived_noise_map_source`: "model"
+        for a model working in a variance-stabilised domain whose metadata carries a noise model with a
+        per-pixel level, such as Poisson-Gaussian noise through the Anscombe transform or gamma speckle through the
+        log, where the transform and not the image sets the level the network sees, and for a supervised model of
+        signal-dependent noise, which trained on that map; "estimate" otherwise), the noise standard deviation in
+        native units, "estimate"
         (per image, MAD
         estimator of Donoho & Johnstone 1994), or "training" (the level in the model's metadata), or "model"
         (a per-pixel map from the training noise model, e.g. ``sqrt(gain * x + read**2)`` for Poisson-Gaussian
@@ -297,22 +301,11 @@ class OnnxDenoiser:
             raise InputError(self.path, "grainwright metadata is not valid JSON") from None
 
     def _automatic_noise_sigma(self) -> str:
-        """"model" for a transformed-domain model with a per-pixel noise model, and for a supervised model of
-        signal-dependent noise (trained on the noise model's level at its noisy input, pixel by pixel); else
-        "estimate".
-
-        One level estimated on the whole image misstates signal-dependent noise: dark regions pull it down, and
-        the graph then converts that one native level at every pixel's own slope, under-telling bright regions."""
-        metadata = self.metadata or {}
-        transform = (metadata.get("normalization") or {}).get("transform")
+        """"model" where the file's noise map comes from its training noise model (``noise_map.source``, or for
+        older files the exporter's rule: :func:`modelinfo.derived_noise_map_source`), else "estimate"."""
         if not self.spec.takes_noise_map or self.spec.high is None:
             return "estimate"
-        model = self._described_noise()
-        if model is None or not self._has_level_map(model):
-            return "estimate"
-        if transform or (metadata.get("scheme") == "supervised" and self._signal_dependent(model)):
-            return "model"
-        return "estimate"
+        return "model" if noise_map_source(self.metadata or {}, self.path) == "noise-model" else "estimate"
 
     def _described_noise(self) -> NoiseModel | None:
         """The training noise model of the metadata, when it and the native range are there."""
@@ -321,22 +314,13 @@ class OnnxDenoiser:
             return None
         return noise_from_dict(description)
 
-    @staticmethod
-    def _has_level_map(model: NoiseModel) -> bool:
-        return model.sigma_map(np.zeros((1, 1, 1), np.float32)) is not None
-
-    @staticmethod
-    def _signal_dependent(model: NoiseModel) -> bool:
-        dark, bright = (model.sigma_map(np.full((1, 1, 1), value, np.float32)) for value in (0.1, 0.9))
-        return not np.allclose(dark, bright)
-
     def _noise_model(self, noise_sigma: float | str) -> NoiseModel | None:
         if noise_sigma != "model":
             return None
         model = self._described_noise()
         if model is None:
             raise ConfigError(f"{self.path}: metadata has no noise model or native range; use 'estimate'")
-        if not self._has_level_map(model):
+        if not has_level_map(model):
             raise ConfigError(f"{self.path}: the training noise ({model.kind}) has no per-pixel level; use 'estimate'")
         return model
 
