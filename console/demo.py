@@ -60,6 +60,13 @@ MIN_REGION_SIGNIFICANCE = 3.0
 # The comparison also scores every learned model with the runtime's 8-fold flip/rotation self-ensemble (`denoise
 # --ensemble 8`), a row of its own: the best the model gives, at eight times its time, beside the plain row.
 ENSEMBLE = 8
+# The scored frames' copies in the training folder, and the share of the training patches they get
+# (data.focus_frames, data.focus_share): in proportion to their size 3 frames among 27 would get a ninth of a
+# 3-minute fine-tune's steps. All of them: the other frames give the noise fit and the held-out check. Measured on
+# the demo's frames against shares 0, 0.33, 0.53 and 0.8 (docs/benchmarks.md, "The demo with its scored frames in
+# focus").
+SCORED_PREFIX = "scored-"
+FOCUS_SHARE = 1.0
 # Noisy sets of the scenario and their folders under corrected/.
 CORRECTED_SETS = {scenario.TRAIN_DIR: "train", scenario.HOLDOUT_NOISY_DIR: "holdout", scenario.LARGE_NOISY_DIR: "large"}
 
@@ -101,7 +108,8 @@ class DemoSettings:
     train_on_scored : bool
         Train on the held-out noisy frames too (their corrected noisy versions, never their clean ones), as a user
         trains on the frames they mean to denoise; a strip of every frame is held out for the trainer's checks
-        (``data.validation_split = "regions"``). False: the scored frames are frames the model never saw.
+        (``data.validation_split = "regions"``), and the scored frames get ``FOCUS_SHARE`` of the training patches
+        (``data.focus_frames``). False: the scored frames are frames the model never saw.
     random_weights_row : bool
         Also train the same number of steps from random weights (``start.weights = "random"``) and show it in
         the report beside the fine-tuned model and the starting model alone. Skipped when the main training
@@ -314,9 +322,10 @@ def inspect_and_correct(out: Path, echo: Callable[[str], Any], train_on_scored: 
     echo(f"  recommendation: {after.recommendation['scheme']} ({after.recommendation['why']})")
     if train_on_scored:  # after the noise fit: it stays the training frames' own
         for path in _frames(target / "holdout"):
-            shutil.copyfile(path, target / "train" / f"scored-{path.name}")
-        echo("  the held-out noisy frames join the training frames (never their clean versions), as frames to be "
-             "denoised do; a strip of every frame is held out for the trainer's checks")
+            shutil.copyfile(path, target / "train" / f"{SCORED_PREFIX}{path.name}")
+        echo("  the held-out noisy frames join the training frames (never their clean versions) and get "
+             f"{FOCUS_SHARE:.0%} of the training patches, as frames to be denoised do; a strip of every frame is held "
+             "out for the trainer's checks")
     inspection = {
         "frames": frames,
         "banding_flagged_before": before.summary["banding_images"],
@@ -334,8 +343,9 @@ def training_assignments(settings: DemoSettings, extra: list[str] = ()) -> list[
     """The demo's ``--set`` assignments for ``grainwright train``: its own, then the user's, then ``extra`` (later
     ones win, so the record row's ``start.weights = "random"`` holds whatever the user set)."""
     # The frames were corrected in step 2, so the trainer's own fixed-pattern check has nothing left to do.
-    regions = ['data.validation_split="regions"'] if settings.train_on_scored else []
-    return [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"', *regions,
+    scored = ['data.validation_split="regions"', f'data.focus_frames="{SCORED_PREFIX}*"',
+              f"data.focus_share={FOCUS_SHARE}"] if settings.train_on_scored else []
+    return [f"seed={settings.seed}", f"threads={settings.threads}", 'data.fixed_pattern="never"', *scored,
             f"logging.progress={'true' if settings.progress else 'false'}", *settings.train_settings, *extra]
 
 
@@ -544,8 +554,9 @@ def headline(summary: dict, out: Path) -> list[str]:
     compare, large = summary["compare"], summary["large_frame"]
     training, main = summary["training"], summary["main_model"]
     starting = summary["learned"][STARTING_ALONE]["export"]
-    seen = ("  the scored frames' noisy versions trained with the rest, as the frames a user denoises do (never their "
-            "clean versions;\n  --scored-frames-unseen keeps them out)" if summary["settings"]["train_on_scored"]
+    seen = ("  the scored frames' noisy versions were the training patches, as the frames a user denoises are (never "
+            "their clean versions;\n  the other frames gave the noise fit and the held-out check; "
+            "--scored-frames-unseen keeps them out)" if summary["settings"]["train_on_scored"]
             else "  the scored frames were never seen in training (--scored-frames-unseen)")
     lines = [
         "",

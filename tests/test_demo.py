@@ -11,6 +11,7 @@ import pytest
 
 from grainwright.console.demo import (
     FINE_TUNED,
+    FOCUS_SHARE,
     MARKER_FILE,
     MARKER_KIND,
     RANDOM_WEIGHTS,
@@ -126,7 +127,11 @@ def test_whole_demo_with_a_tiny_budget(tmp_path):
     clean = [read_image(path) for path in sorted((tmp_path / "scenario" / "holdout" / "clean").iterdir())]
     for path in (tmp_path / "corrected" / "train").glob("*.tif"):
         assert not any(np.array_equal(read_image(path), image) for image in clean)
-    assert 'validation_split = "regions"' in (tmp_path / "training-run" / "config.toml").read_text()
+    config = (tmp_path / "training-run" / "config.toml").read_text()
+    assert 'validation_split = "regions"' in config
+    # ... and they get their fixed share of the training patches, in both trainings.
+    assert 'focus_frames = "scored-*"' in config and f"focus_share = {FOCUS_SHARE}" in config
+    assert 'focus_frames = "scored-*"' in (tmp_path / "training-run-random-weights" / "config.toml").read_text()
 
     # Three learned rows: the default training fine-tunes the starting model; the starting model alone; and the
     # same number of steps from random weights. The --set reached both trainings.
@@ -182,4 +187,5 @@ def test_a_demo_set_to_start_from_random_weights_has_no_separate_record_row(tmp_
     assert "[6/6" in "\n".join(lines)
     # Scored frames kept unseen: the training folder holds the training frames alone, split by whole images.
     assert not list((tmp_path / "corrected" / "train").glob("scored-*"))
-    assert 'validation_split = "images"' in (tmp_path / "training-run" / "config.toml").read_text()
+    config = (tmp_path / "training-run" / "config.toml").read_text()
+    assert 'validation_split = "images"' in config and 'focus_frames = ""' in config

@@ -127,6 +127,19 @@ def test_region_split_holds_out_a_strip_of_every_image(tmp_path):
     assert summary["training_images"] == 3 and summary["validation_images"] == 1
 
 
+def test_focus_frames_are_announced_recorded_and_a_pattern_matching_nothing_is_refused(tmp_path):
+    folder = _noisy_folder(tmp_path / "data")
+    said = []
+    train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "run"),
+                  announce=said.append, assignments=TINY + ['data.focus_frames="crop[01].png"', "data.focus_share=0.7"])
+    assert any("2 file(s) matching 'crop[01].png' get 70% of the training patches" in line for line in said), said
+    assert 'focus_frames = "crop[01].png"' in (tmp_path / "run" / "config.toml").read_text()
+    with pytest.raises(ConfigError, match=r"data.focus_frames: no training file in .*data matches 'line3-\*'"):
+        train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "refused"),
+                      announce=_quiet, assignments=TINY + ['data.focus_frames="line3-*"'])
+    assert not (tmp_path / "refused").exists()
+
+
 @pytest.mark.slow
 def test_a_supervised_model_of_poisson_gaussian_noise_denoises_at_run_time(tmp_path):
     """Clean/noisy pairs with signal-dependent noise, a noise-map model, the runtime's defaults. A level map computed

@@ -95,6 +95,13 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                                 "every image trains and the check sees every kind of frame: for a few unlike "
                                 "frames, or when the frames to denoise are the training frames.",
                                 choices=("images", "regions")),
+        "focus_frames": Key("str", "", "File-name pattern (shell wildcards, e.g. `scored-*` or `line3-*.tif`) of "
+                            "the frames the model is for, when they train among others: they get "
+                            "`data.focus_share` of the training patches whatever their number (their noisy values "
+                            "only, as every frame's), so that a short fine-tune spends more of its steps on the "
+                            "frames to be denoised. Empty = every frame in proportion to its size."),
+        "focus_share": Key("float", 0.5, "Share of the training patches drawn from the frames of "
+                           "`data.focus_frames` (1 = those frames only).", 0.01, 1.0),
         "bit_depth": Key("int", 0, "Effective bit depth of integer data; 0 = detect from the data.", 0, 16),
         "fixed_pattern": Key("choice", "auto", "Row/column fixed-pattern correction before training: `auto` = "
                              "when the banding or correlation flag is raised.", choices=("auto", "always", "never")),

@@ -107,7 +107,8 @@ class PatchSource:
     All roles share the image shapes, so one set of indices gathers aligned patches from each.
     """
 
-    def __init__(self, images: dict[str, list[np.ndarray]]):
+    def __init__(self, images: dict[str, list[np.ndarray]], focus: list[bool] | None = None,
+                 focus_share: float = 0.5):
         roles = list(images)
         first = images[roles[0]]
         self.channels = first[0].shape[2]
@@ -117,6 +118,19 @@ class PatchSource:
         self.offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
         self.buffers = {role: np.concatenate([image.reshape(-1) for image in images[role]]).astype(np.float32)
                         for role in roles}
+        self.focus = None if focus is None else np.asarray(focus, bool)
+        self.focus_share = float(focus_share)
+
+    def image_weights(self, size: int) -> np.ndarray:
+        """The probability of drawing each image for ``size`` x ``size`` patches: in proportion to its number of
+        patch positions, and with ``focus`` the focus images together ``focus_share`` of the draws (each group
+        still in proportion to positions) when both groups exist."""
+        positions = ((self.heights - size + 1) * (self.widths - size + 1)).astype(np.float64)
+        if self.focus is None or self.focus.all() or not self.focus.any():
+            return positions / positions.sum()
+        share = np.where(self.focus, self.focus_share / positions[self.focus].sum(),
+                         (1.0 - self.focus_share) / positions[~self.focus].sum())
+        return positions * share / (positions * share).sum()
 
     @property
     def roles(self) -> tuple[str, ...]:
@@ -135,13 +149,13 @@ class PatchSource:
                flat_level: float | None = None) -> dict[str, np.ndarray]:
         """Draw ``count`` aligned ``size`` x ``size`` patches per role, shaped ``(count, C, size, size)``.
 
-        Images are chosen in proportion to their number of patch positions. With ``augment`` each patch gets one
+        Images are chosen by :meth:`image_weights` (in proportion to their number of patch positions, focus images
+        with their share). With ``augment`` each patch gets one
         of the 8 flips/90-degree rotations. With ``flat_level`` set, patches whose standard deviation (clean role
         if present, else the first role) is below it are replaced by non-flat candidates when there are any.
         """
         draw = count if flat_level is None else 2 * count
-        positions = (self.heights - size + 1) * (self.widths - size + 1)
-        index = rng.choice(len(self), size=draw, p=positions / positions.sum())
+        index = rng.choice(len(self), size=draw, p=self.image_weights(size))
         top = (rng.random(draw) * (self.heights[index] - size + 1)).astype(np.int64)
         left = (rng.random(draw) * (self.widths[index] - size + 1)).astype(np.int64)
         code = rng.integers(0, 8, draw) if augment else None

@@ -8,6 +8,7 @@ nothing behind, and a run that stops at any later point can be resumed with ``--
 from __future__ import annotations
 
 import datetime
+import fnmatch
 import math
 import os
 import warnings
@@ -383,16 +384,36 @@ def _settle_stack_scheme(requested: str, config: dict[str, Any], candidate: str,
 
 
 def _cut_windows(config: dict[str, Any], scheme: str, working: list[dict[str, np.ndarray]],
-                 sources: list[Path]) -> list[dict[str, np.ndarray]]:
+                 sources: list[Path]) -> tuple[list[dict[str, np.ndarray]], list[Path]]:
     """Stage 4c: a multi-frame model's whole stacks cut into pairs of K-frame windows (``stack_windows``) at the
     chosen scheme's frame stride, the neighbours aligned to the centre frame as ``model.align_neighbours`` says;
-    single-frame images as they are."""
+    single-frame images as they are. Returns the items and the file each came from."""
     frames = stack_frames(config)
     if frames == 1:
-        return working
+        return working, list(sources)
     stride, alignment = scheme_class(scheme).stride_for(config), config["model"]["align_neighbours"]
-    return [window for item, source in zip(working, sources)
-            for window in stack_windows(source, item["noisy"], frames, stride, alignment)]
+    pairs = [(window, source) for item, source in zip(working, sources)
+             for window in stack_windows(source, item["noisy"], frames, stride, alignment)]
+    return [window for window, _ in pairs], [source for _, source in pairs]
+
+
+def focus_flags(config: dict[str, Any], sources: list[Path], root: Path,
+                announce: Callable[[str], None]) -> list[bool] | None:
+    """Which training items come from the frames of ``data.focus_frames`` (a shell-wildcard pattern matched
+    against file names), or None when the key is empty. A pattern that matches no training file is refused."""
+    pattern, share = config["data"]["focus_frames"], config["data"]["focus_share"]
+    if not pattern:
+        return None
+    flags = [fnmatch.fnmatch(source.name, pattern) for source in sources]
+    matched = sorted({source.name for source, flag in zip(sources, flags) if flag})
+    if not matched:
+        raise ConfigError(f"data.focus_frames: no training file in {root} matches {pattern!r}")
+    if all(flags):
+        announce(f"focus frames: every training file matches {pattern!r}; patches drawn in proportion to size")
+    else:
+        announce(f"focus frames: {len(matched)} file(s) matching {pattern!r} get {share:.0%} of the training patches "
+                 "(data.focus_frames, data.focus_share)")
+    return flags
 
 
 def stack_pairing(chosen: str, flags: list[str], corrected: bool) -> tuple[str, str]:
@@ -464,14 +485,15 @@ def _figure_text(value: Any) -> str:
 
 
 def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announce: Callable[[str], None]
-           ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]]]:
+           ) -> tuple[list[dict[str, np.ndarray]], list[dict[str, np.ndarray]], list[int]]:
     """Stage 5: training and validation images, split by whole image (``data.validation_split = "images"``;
-    a single image is split into two regions) or by region of every image (``"regions"``)."""
+    a single image is split into two regions) or by region of every image (``"regions"``); and the index in
+    ``working`` of each training image."""
     data_cfg = config["data"]
     fraction, patch_size = data_cfg["validation_fraction"], data_cfg["patch_size"]
     if len(working) == 1 or data_cfg["validation_split"] == "regions":
         parts = [split_single_image(item, fraction, patch_size) for item in working]
-        train_images = [train_part for train_part, _ in parts]
+        train_images, train_index = [train_part for train_part, _ in parts], list(range(len(working)))
         validation_images = [held for _, held in parts if held is not None]
         if validation_images and len(validation_images) < len(working):
             announce(f"validation: {len(working) - len(validation_images)} of {len(working)} images too small "
@@ -479,11 +501,11 @@ def _split(config: dict[str, Any], working: list[dict[str, np.ndarray]], announc
     else:
         rng = np.random.default_rng(config["seed"])
         train_index, validation_index = split_by_image(len(working), fraction, rng)
-        train_images = [working[i] for i in train_index]
+        train_images, train_index = [working[i] for i in train_index], [int(i) for i in train_index]
         validation_images = [working[i] for i in validation_index]
     if not validation_images:
         announce("warning: no images held out for validation; the last state is kept as the best")
-    return train_images, validation_images
+    return train_images, validation_images, train_index
 
 
 def _build_model(config: dict[str, Any], scheme: str, channels: int, level_known: bool,
@@ -542,8 +564,9 @@ def _level_known(data: _TrainingImages, sigma: np.ndarray | None) -> bool:
     return False
 
 
-def _patch_source(items: list[dict[str, np.ndarray]], roles: tuple[str, ...]) -> PatchSource:
-    return PatchSource({role: [item[role] for item in items] for role in roles})
+def _patch_source(items: list[dict[str, np.ndarray]], roles: tuple[str, ...], focus: list[bool] | None = None,
+                  focus_share: float = 0.5) -> PatchSource:
+    return PatchSource({role: [item[role] for item in items] for role in roles}, focus, focus_share)
 
 
 def _validation_batches(config: dict[str, Any], scheme: Any, images: list[dict[str, np.ndarray]],
@@ -582,8 +605,10 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     config = _resolve_stack_pairing(dict(config, scheme=name), name, data.findings, fixed_pattern, announce)
     config = _resolve_alpha(config, name, announce)
     data_figures = _check_data(config, name, working, data.findings, fixed_pattern, announce)
-    working = _cut_windows(config, name, working, data.sources)
-    train_images, validation_images = _split(config, working, announce)
+    working, sources = _cut_windows(config, name, working, data.sources)
+    flags = focus_flags(config, sources, layout.root, announce)
+    train_images, validation_images, train_index = _split(config, working, announce)
+    train_focus = None if flags is None else [flags[index] for index in train_index]
     config = fit_start_config(config, data.channels)
     model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)
     config = dict(config, model=model_table)
@@ -629,7 +654,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["neighbor2neighbor_gamma"] = config["neighbor2neighbor"]["gamma"]
     summary.update(data_figures)
     files = sorted({path for sample in layout.samples for path in sample})
-    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles),
+    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles, train_focus,
+                                                                                config["data"]["focus_share"]),
                           validation=validation, ground_truth=layout.has_ground_truth,
                           normalization=data.normalization, channels_last=channels_last, precision=precision,
                           noise=data.noise, data_fingerprint=data_fingerprint(files),
