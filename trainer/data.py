@@ -150,9 +150,9 @@ class PatchSource:
         """Draw ``count`` aligned ``size`` x ``size`` patches per role, shaped ``(count, C, size, size)``.
 
         Images are chosen by :meth:`image_weights` (in proportion to their number of patch positions, focus images
-        with their share). With ``augment`` each patch gets one
-        of the 8 flips/90-degree rotations. With ``flat_level`` set, patches whose standard deviation (clean role
-        if present, else the first role) is below it are replaced by non-flat candidates when there are any.
+        with their share). With ``augment`` each patch gets one of the 8 flips/90-degree rotations. With
+        ``flat_level`` set, patches whose standard deviation (clean role if present, else the first role) is below
+        it are replaced by non-flat candidates when there are any.
         """
         draw = count if flat_level is None else 2 * count
         index = rng.choice(len(self), size=draw, p=self.image_weights(size))
