@@ -318,6 +318,26 @@ def test_noise2noise_across_frames_trains_on_a_folder_of_numbered_frames(tmp_pat
     assert load_checkpoint(run.best)["architecture"] == "unet-stack"
 
 
+def test_focus_flags_follow_each_stack_through_its_windows_and_the_split(tmp_path):
+    """data.focus_frames names files; a multi-frame model trains on windows cut from them, so every window of a
+    matching stack (told apart here by its frame size) is a focus item, whichever side of the split it lands."""
+    from grainwright.trainer.run import prepare
+
+    rng = np.random.default_rng(5)
+    (tmp_path / "noisy-stacks").mkdir()
+    for name, size in (("line1.tif", 48), ("line2.tif", 40), ("line3.tif", 48)):
+        tifffile.imwrite(tmp_path / "noisy-stacks" / name, _pure_noise_stack(rng, 10, size, False)[0])
+    config = load_config(None, TINY + ['scheme="noise2noise-stack"', f'data.folder="{tmp_path.as_posix()}"',
+                                       'data.focus_frames="line2*"', "data.focus_share=0.75", "budget.steps=1"])
+    said = []
+    setup, _, _ = prepare(config, said.append)
+    source = setup.train
+    assert source.focus is not None and source.focus.any() and not source.focus.all()
+    assert np.array_equal(source.focus, source.heights == 40)
+    assert source.image_weights(16)[source.focus].sum() == pytest.approx(0.75)
+    assert any("1 file(s) matching 'line2*' get 75% of the training patches" in line for line in said), said
+
+
 def test_a_gap_in_a_training_folder_of_frames_names_the_file(tmp_path):
     folder = tmp_path / "data" / "noisy-stacks" / "burst"
     folder.mkdir(parents=True)
