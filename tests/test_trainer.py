@@ -138,6 +138,11 @@ def test_focus_frames_are_announced_recorded_and_a_pattern_matching_nothing_is_r
         train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "refused"),
                       announce=_quiet, assignments=TINY + ['data.focus_frames="line3-*"'])
     assert not (tmp_path / "refused").exists()
+    # Split by whole images (seed 0 holds out crop2): a focus file held out entirely is said, not silently ignored.
+    said = []
+    train_command(None, str(folder), scheme="neighbor2neighbor", steps=2, out=str(tmp_path / "held"),
+                  announce=said.append, assignments=TINY + ['data.focus_frames="crop2.png"'])
+    assert any("every file matching data.focus_frames was held out for validation" in line for line in said), said
 
 
 @pytest.mark.slow

@@ -609,6 +609,9 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
     flags = focus_flags(config, sources, layout.root, announce)
     train_images, validation_images, train_index = _split(config, working, announce)
     train_focus = None if flags is None else [flags[index] for index in train_index]
+    if train_focus is not None and not any(train_focus):
+        announce("warning: every file matching data.focus_frames was held out for validation, so patches are drawn in "
+                 "proportion to size; data.validation_split = \"regions\" trains on every file")
     config = fit_start_config(config, data.channels)
     model, model_table = _build_model(config, name, data.channels, _level_known(data, sigma), announce)
     config = dict(config, model=model_table)
@@ -654,8 +657,8 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["neighbor2neighbor_gamma"] = config["neighbor2neighbor"]["gamma"]
     summary.update(data_figures)
     files = sorted({path for sample in layout.samples for path in sample})
-    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=_patch_source(train_images, layout.roles, train_focus,
-                                                                                config["data"]["focus_share"]),
+    train = _patch_source(train_images, layout.roles, train_focus, config["data"]["focus_share"])
+    setup = TrainingSetup(config=config, scheme=scheme, model=model, train=train,
                           validation=validation, ground_truth=layout.has_ground_truth,
                           normalization=data.normalization, channels_last=channels_last, precision=precision,
                           noise=data.noise, data_fingerprint=data_fingerprint(files),

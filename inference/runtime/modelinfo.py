@@ -194,7 +194,8 @@ def _noise_map_text(metadata: dict[str, Any]) -> str:
     if not metadata.get("takes_noise_map"):
         return "no"
     stated = (metadata.get("noise_map") or {}).get("source")
-    source = stated or f"{derived_noise_map_source(metadata)} (the exporter's rule: the file predates its noise_map entry)"
+    older = f"{derived_noise_map_source(metadata)} (the exporter's rule: the file predates its noise_map entry)"
+    source = stated or older
     return f"yes, level from: {source}"
 
 
