@@ -5,16 +5,18 @@ Runtime part (side by side in one run, ratios):
 - seconds per megapixel per output frame of a K-frame ``unet-stack`` against the ``unet-small`` of the same
   width and levels (random weights: speed does not depend on them), through the runtime's own paths
   (``stack_window.denoise_stack_array`` and ``OnnxDenoiser.run``), interleaved repetitions, median; and of the
-  same K-frame model with its neighbours aligned by optical flow (``model.align_neighbours``), whose flow
-  estimates and warps are part of the time;
+  same K-frame model with its neighbours aligned (``model.align_neighbours``: by optical flow, and by dominant
+  whole-pixel shifts), whose motion estimates and warps are part of the time. The stack is noise with a band
+  across its middle third moving 3 pixels per frame over a still rest, so that both alignments find motion and
+  do all their work;
 - peak resident memory of ``grainwright denoise`` in a fresh process on a generated 200-slice and a 2,000-slice
   volume (ImageJ z-stacks), with the K-frame model.
 
 Quality part (noisy frames only, the budget per model in minutes, one run per seed):
 
 - the generated conveyor sequence (:func:`grainwright.inference.synthetic.stack_scenario.conveyor_sequence`):
-  K-frame model (``recorrupted-stack`` at its default strength with its neighbours aligned to the centre frame by
-  optical flow, ``SEQUENCE_STACK_SETTINGS``, or ``neighbor2neighbor-stack``) against the
+  K-frame model (``recorrupted-stack`` at its default strength with its neighbours aligned to the centre frame,
+  by ``--sequence-alignment``, or ``neighbor2neighbor-stack``) against the
   single-frame model of the same size and budget (``recorrupted`` at its best strength on this sequence, or
   ``neighbor2neighbor``, on the same frames; ``SEQUENCE_SCHEMES``), the plain K-frame average and per-frame BM3D (its noise level
   tuned on the clean frames); PSNR on whole frames and on the moving pixels; crack contrast retention (the
@@ -36,6 +38,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from functools import partial
 from pathlib import Path
 from typing import Any, Callable
 
@@ -44,7 +47,7 @@ import numpy as np
 from grainwright.benchmarks.runtime import _LAUNCHER
 from grainwright.inference.common.atomic import write_json_atomic
 from grainwright.inference.common.errors import ConfigError
-from grainwright.inference.images.alignment import ALIGN_REVISION
+from grainwright.inference.images.alignment import ALIGN_REVISIONS, ALIGNMENTS
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.images.stacks import StackInfo, write_stack
 from grainwright.inference.runtime.runner import OnnxDenoiser
@@ -83,26 +86,40 @@ def export_random(name: str, hyper: dict[str, Any], path: Path, seed: int = 0, a
     from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
     from grainwright.models.export import export_checkpoint
 
-    summary = {"align_neighbours": align, "align_revision": ALIGN_REVISION} if align != "none" else None
+    summary = {"align_neighbours": align, "align_revision": ALIGN_REVISIONS[align]} if align != "none" else None
     payload = new_checkpoint(name, 1, TWELVE_BIT, hyper=hyper, seed=seed, training_summary=summary)
     export_checkpoint(save_checkpoint(path.with_suffix(".pt"), payload), path, threads=1, overwrite=True)
     return path
 
 
+def moving_band_stack(frames: int, size: int, speed: int = 3, seed: int = 0) -> np.ndarray:
+    """``(frames, size, size, 1)`` float32: noise around 2,000 whose middle third of the rows moves ``speed``
+    pixels per frame to the right over a still rest, fresh noise added to every frame (so that an alignment finds
+    motion and does all its work; pure noise lets the shift search stop at zero motion)."""
+    rng = np.random.default_rng(seed)
+    scene = rng.normal(2000, 100, (size, size + speed * frames)).astype(np.float32)
+    band = slice(size // 3, 2 * size // 3)
+    stack = np.repeat(scene[None, :, :size], frames, axis=0)
+    for index in range(frames):
+        start = speed * (frames - index)
+        stack[index, band] = scene[band, start:start + size]
+    return (stack + rng.normal(0, 30, stack.shape).astype(np.float32))[..., None]
+
+
 def runtime_figures(stack_model: Path, single_model: Path, *, size: int, frames: int, threads: int,
-                    repeats: int, aligned_model: Path | None = None) -> dict[str, Any]:
-    """Seconds per megapixel per output frame of the models on the same generated stack, interleaved:
-    ``ratio`` = K-frame over single-frame model, ``aligned_ratio`` = the K-frame model with aligned neighbours over
-    the same model without (when ``aligned_model`` is given)."""
-    stack = np.random.default_rng(0).normal(2000, 100, (frames, size, size, 1)).astype(np.float32)
+                    repeats: int, aligned_models: dict[str, Path] | None = None) -> dict[str, Any]:
+    """Seconds per megapixel per output frame of the models on the same generated stack
+    (:func:`moving_band_stack`), interleaved: ``ratio`` = K-frame over single-frame model; for each alignment in
+    ``aligned_models`` (the K-frame model's file recording it), ``aligned_ratio`` = that model over the same model
+    without alignment and ``aligned_over_single`` = over the single-frame model (the issue's target)."""
+    stack = moving_band_stack(frames, size)
     stacked, single = OnnxDenoiser(stack_model, threads=threads), OnnxDenoiser(single_model, threads=threads)
     runs: dict[str, Callable[[], Any]] = {
         "stack": lambda: denoise_stack_array(stacked, stack),
         "single": lambda: [single.run(frame, as_float=True) for frame in stack],
     }
-    if aligned_model is not None:
-        aligned = OnnxDenoiser(aligned_model, threads=threads)
-        runs["stack aligned"] = lambda: denoise_stack_array(aligned, stack)
+    for alignment, path in (aligned_models or {}).items():
+        runs[f"stack {alignment}"] = partial(denoise_stack_array, OnnxDenoiser(path, threads=threads), stack)
     seconds: dict[str, list[float]] = {name: [] for name in runs}
     for _ in range(repeats):
         for name, action in runs.items():
@@ -113,8 +130,9 @@ def runtime_figures(stack_model: Path, single_model: Path, *, size: int, frames:
     rates = {name: statistics.median(values) / megapixels for name, values in seconds.items()}
     figures = {"seconds_per_megapixel_per_frame": rates, "ratio": rates["stack"] / rates["single"],
                "size": size, "frames": frames, "threads": threads, "repeats": repeats}
-    if aligned_model is not None:
-        figures["aligned_ratio"] = rates["stack aligned"] / rates["stack"]
+    if aligned_models:
+        figures["aligned_ratio"] = {name: rates[f"stack {name}"] / rates["stack"] for name in aligned_models}
+        figures["aligned_over_single"] = {name: rates[f"stack {name}"] / rates["single"] for name in aligned_models}
     return figures
 
 
@@ -225,17 +243,17 @@ SINGLE_FRAME_SETTINGS = {"recorrupted": ("recorrupted.alpha=0.5",), "neighbor2ne
 # optical flow (the lane moves; at 3,000 steps on seed 0 it kept 0.83 of the lane cracks' contrast against 0.70
 # unaligned and 0.78 for the single-frame model; with the flow's zero-motion test and median filter and the cubic
 # warp 0.90 / 0.75 / 0.67 on seeds 0 / 1 / 2; docs/benchmarks.md). `neighbor2neighbor-stack` was not measured
-# with alignment and stays without.
-SEQUENCE_STACK_SETTINGS = {"recorrupted": ('model.align_neighbours="optical-flow"',), "neighbor2neighbor": ()}
+# with alignment and stays without. The alignment itself is the bench's --sequence-alignment.
+SEQUENCE_STACK_SETTINGS = {"recorrupted": ("model.align_neighbours={alignment}",), "neighbor2neighbor": ()}
 
 
 def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
                      bm3d_frames_scored: int, log: Callable[[str], None], steps: int = 0,
                      shape: tuple[int, int] = (192, 256), settings: tuple[str, ...] = (),
-                     family: str = "recorrupted") -> dict[str, Any]:
+                     family: str = "recorrupted", alignment: str = "optical-flow") -> dict[str, Any]:
     """The conveyor sequence of ``seed``: the K-frame and the single-frame model of one scheme ``family``
     (``SEQUENCE_SCHEMES``) trained on its noisy frames, the K-frame average and per-frame BM3D, scored on the
-    clean frames."""
+    clean frames. ``alignment``: the K-frame model's ``model.align_neighbours`` where its family aligns."""
     stack_scheme, single_scheme = SEQUENCE_SCHEMES[family]
     sequence = conveyor_sequence(height=shape[0], width=shape[1], seed=seed)
     data = folder / f"sequence-{seed}"
@@ -246,7 +264,9 @@ def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, th
     stack_hyper = {"frames": frames, "levels": 2, "width": width}
     trained: dict[str, Any] = {}
     budget = {"minutes": minutes, "steps": steps, "extra": settings}
-    stack_budget = dict(budget, extra=(*SEQUENCE_STACK_SETTINGS[family], *settings))
+    stack_settings = tuple(setting.format(alignment=json.dumps(alignment))
+                           for setting in SEQUENCE_STACK_SETTINGS[family])
+    stack_budget = dict(budget, extra=(*stack_settings, *settings))
     log(f"sequence seed {seed}: training the {frames}-frame model ({f'{steps} steps' if steps else f'{minutes} min'})")
     stack_model = train_and_export(data, folder / f"seq-stack-{seed}", model="unet-stack", hyper=stack_hyper,
                                    scheme=stack_scheme, seed=seed, threads=threads, trained=trained, **stack_budget)
@@ -324,11 +344,12 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
             levels = {"levels": 3, "width": args.width}
             stack_model = export_random("unet-stack", {"frames": args.frames, **levels}, folder / "stack.onnx")
             single_model = export_random("unet-small", levels, folder / "single.onnx")
-            aligned_model = export_random("unet-stack", {"frames": args.frames, **levels}, folder / "aligned.onnx",
-                                          align="optical-flow")
+            aligned_models = {alignment: export_random("unet-stack", {"frames": args.frames, **levels},
+                                                       folder / f"aligned-{alignment}.onnx", align=alignment)
+                              for alignment in ALIGNMENTS[1:]}
             figures["runtime"] = runtime_figures(stack_model, single_model, size=args.size, frames=args.runtime_frames,
                                                  threads=args.threads, repeats=args.repeat,
-                                                 aligned_model=aligned_model)
+                                                 aligned_models=aligned_models)
             log(f"runtime: {json.dumps(figures['runtime'])}")
             if args.rss_slices:
                 figures["peak_rss"] = [peak_rss(denoise_command, stack_model, slices, args.rss_edge, args.threads,
@@ -342,7 +363,8 @@ def run_bench(args: argparse.Namespace, denoise_command: list[str]) -> int:
                                                     threads=args.threads, width=args.width,
                                                     bm3d_frames_scored=args.bm3d_frames, log=log, steps=args.steps,
                                                     shape=tuple(args.sequence_size), settings=tuple(args.set),
-                                                    family=args.sequence_schemes)
+                                                    family=args.sequence_schemes,
+                                                    alignment=args.sequence_alignment)
                                    for seed in args.seeds]
             log(f"sequence: {json.dumps(figures['sequence'], indent=1)}")
         if "volume" in args.parts:

@@ -194,15 +194,16 @@ def test_the_centre_frame_is_never_warped_and_none_keeps_the_frames():
     assert all(np.array_equal(a, stack[p]) for a, p in zip(aligned_frames(stack, positions, "none"), positions))
 
 
-def test_training_windows_equal_the_runtime_windows():
+@pytest.mark.parametrize("method", ["optical-flow", "dominant-shifts"])
+def test_training_windows_equal_the_runtime_windows(method):
     """The trainer's windows (``trainer.data.stack_windows``) and the runtime's (``sliding_windows``) align with
     the same function, so a centre frame's training input is exactly its run-time input."""
     pytest.importorskip("torch")
     from grainwright.trainer.data import stack_windows
 
     stack = conveyor_sequence(frames=9, height=48, width=64, seed=1).noisy.astype(np.float32)[..., None]
-    training = stack_windows(None, stack, 3, alignment="optical-flow")
-    runtime = dict(sliding_windows(lambda j: stack[j], 9, 3, alignment="optical-flow"))
+    training = stack_windows(None, stack, 3, alignment=method)
+    runtime = dict(sliding_windows(lambda j: stack[j], 9, 3, alignment=method))
     for index, pair in enumerate(training):
         assert np.array_equal(pair["noisy"], runtime[index])
         assert np.array_equal(pair["noisy_b"], runtime[index + 3])

@@ -114,17 +114,25 @@ def test_bench_sequence_quality_computes_every_row(tmp_path, family):
         assert np.isfinite(row["psnr_whole"]) and "crack_retention_moving" in row
 
 
-def test_bench_runtime_times_the_aligned_model_beside_the_plain_one(tmp_path):
-    """The runtime part times the K-frame model with aligned neighbours beside the same model without: the flow
-    estimates and warps make it slower (random weights; speed does not depend on them)."""
-    from grainwright.benchmarks.stacks import export_random, runtime_figures
+def test_bench_runtime_times_the_aligned_models_beside_the_plain_one(tmp_path):
+    """The runtime part times the K-frame model with neighbours aligned by each alignment beside the same model
+    without, on a stack whose middle band moves (so that both alignments do their work): the motion estimates
+    and warps make it slower (random weights; speed does not depend on them)."""
+    from grainwright.benchmarks.stacks import export_random, moving_band_stack, runtime_figures
+    from grainwright.inference.images.alignment import AlignedNeighbours
     from grainwright.inference.runtime.modelinfo import read_model_metadata
 
     levels = {"levels": 2, "width": 4}
     stack = export_random("unet-stack", {"frames": 3, **levels}, tmp_path / "stack.onnx")
-    aligned = export_random("unet-stack", {"frames": 3, **levels}, tmp_path / "aligned.onnx", align="optical-flow")
+    aligned = {alignment: export_random("unet-stack", {"frames": 3, **levels}, tmp_path / f"{alignment}.onnx",
+                                        align=alignment) for alignment in ("optical-flow", "dominant-shifts")}
     single = export_random("unet-small", levels, tmp_path / "single.onnx")
-    assert read_model_metadata(aligned)["stack"]["align_neighbours"] == "optical-flow"
-    figures = runtime_figures(stack, single, size=64, frames=4, threads=1, repeats=1, aligned_model=aligned)
-    assert set(figures["seconds_per_megapixel_per_frame"]) == {"stack", "single", "stack aligned"}
-    assert figures["aligned_ratio"] > 1.0, figures
+    assert read_model_metadata(aligned["dominant-shifts"])["stack"]["align_neighbours"] == "dominant-shifts"
+    figures = runtime_figures(stack, single, size=64, frames=4, threads=1, repeats=1, aligned_models=aligned)
+    assert set(figures["seconds_per_megapixel_per_frame"]) == {"stack", "single", "stack optical-flow",
+                                                               "stack dominant-shifts"}
+    assert figures["aligned_ratio"]["optical-flow"] > 1.0, figures
+    assert set(figures["aligned_over_single"]) == {"optical-flow", "dominant-shifts"}
+    band = moving_band_stack(4, 64)
+    steps = AlignedNeighbours(band, alignment="dominant-shifts").step(1, 2)
+    assert np.all(steps[:, 64 // 3 + 8:2 * 64 // 3 - 8, 8:-8] == np.array([0, 3])[:, None, None])

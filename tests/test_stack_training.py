@@ -222,24 +222,41 @@ PURE_NOISE_CASES = {
 }
 
 
+# (alignment, noise, pairing, steps): the optical flow on independent noise, and the dominant shifts with banding
+# and a pixel pattern repeated in every frame (a correlation surface with a ridge along the rows, where a spurious
+# shift could be taken; the row/column-blind pairing, as `auto` takes with banding). On independent noise the
+# dominant shifts find no motion at all (tests/test_shift_alignment.py), the windows of the unaligned model.
+ALIGNED_PURE_NOISE_CASES = {
+    "optical-flow": ("optical-flow", {"repeated": False}, "adjacent", 2000),
+    "dominant-shifts-pattern-in-every-frame": ("dominant-shifts", {"repeated": True}, "row-column-blind", 3000),
+}
+
+
 @pytest.mark.slow
-def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path):
-    """``model.align_neighbours = "optical-flow"``: the neighbours are warped by a flow estimated from the noisy
-    frames, centre frame included, so they depend (weakly) on the centre frame's noise; the scheme must still give
-    the model no reason to copy the centre frame. Pure independent noise, the published adjacent pairing. Measured
-    once (2,000 steps): output/input standard deviation 62 / 200, correlation with the centre frame 0.13; with
-    the zero-motion test, the flow's median filter and the cubic warp added (the alignment now) 45 / 200, -0.09."""
-    data = _write_stacks(tmp_path / "data", repeated=False)
-    summary, run = train_command(None, str(data), scheme="neighbor2neighbor-stack", steps=2000,
+@pytest.mark.parametrize("case", list(ALIGNED_PURE_NOISE_CASES))
+def test_with_aligned_neighbours_a_model_trained_on_pure_noise_stacks_outputs_the_mean(tmp_path, case):
+    """``model.align_neighbours``: the neighbours are moved by a motion estimated from the noisy frames, centre
+    frame included, so they may depend (weakly) on the centre frame's noise; the scheme must still give the model
+    no reason to copy the centre frame, nor a pattern repeated in every frame. Optical flow on pure independent
+    noise, the published adjacent pairing, measured once (2,000 steps): output/input standard deviation 62 / 200,
+    correlation with the centre frame 0.13; with the zero-motion test, the flow's median filter and the cubic warp
+    added (the alignment now) 45 / 200, -0.09."""
+    alignment, noise, pairing, steps = ALIGNED_PURE_NOISE_CASES[case]
+    data = _write_stacks(tmp_path / "data", **noise)
+    summary, run = train_command(None, str(data), scheme="neighbor2neighbor-stack", steps=steps,
                                  out=str(tmp_path / "run"), announce=lambda message: None,
                                  assignments=TINY + ["optim.lr=0.003", "optim.final_lr_fraction=1.0",
-                                                     'model.align_neighbours="optical-flow"'])
-    assert summary["align_neighbours"] == "optical-flow"
-    output, centre, _ = _trained_output(run, repeated=False, alignment="optical-flow")
+                                                     f'model.align_neighbours="{alignment}"',
+                                                     f'neighbor2neighbor.stack_pairing="{pairing}"'])
+    assert summary["align_neighbours"] == alignment
+    output, centre, fixed = _trained_output(run, alignment=alignment, **noise)
     figures = (f"output mean {output.mean():.0f}, std {output.std():.0f}; input mean {centre.mean():.0f}, "
                f"std {centre.std():.0f}")
     assert abs(output.mean() - centre.mean()) < 0.5 * TEMPORAL, figures
     assert np.std(output) < 0.5 * np.std(centre), figures  # the identity keeps all of it
+    assert abs(np.corrcoef(output.ravel(), centre.ravel())[0, 1]) < 0.5, figures
+    if noise["repeated"]:  # the pattern repeated in every frame is not reproduced either
+        assert abs(np.corrcoef(output.ravel(), np.broadcast_to(fixed, output.shape).ravel())[0, 1]) < 0.5, figures
 
 
 @pytest.mark.parametrize("earlier", [None, 2])
@@ -248,7 +265,7 @@ def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path, earlier):
     revisions were recorded; 2: every neighbour's flow estimated directly) would train on windows aligned two ways:
     refused in one line naming the checkpoint, the run folder left as it was."""
     from grainwright.inference.common.errors import InputError
-    from grainwright.inference.images.alignment import ALIGN_REVISION
+    from grainwright.inference.images.alignment import ALIGN_REVISIONS
     from grainwright.models.checkpoint import load_checkpoint, save_checkpoint
 
     data = _write_stacks(tmp_path / "data", repeated=False, count=1, frames=6, size=32)
@@ -257,7 +274,7 @@ def test_a_run_aligned_by_an_earlier_revision_is_not_resumed(tmp_path, earlier):
                                  assignments=TINY + ['model.align_neighbours="optical-flow"'])
     assert summary["stopped"] == "interrupted"
     state = load_checkpoint(run.last)
-    assert state["training_summary"]["align_revision"] == ALIGN_REVISION == 3
+    assert state["training_summary"]["align_revision"] == ALIGN_REVISIONS["optical-flow"] == 3
     if earlier is None:
         del state["training_summary"]["align_revision"]  # as a checkpoint written before revisions were recorded
     else:

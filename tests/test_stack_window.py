@@ -9,7 +9,7 @@ import pytest
 import tifffile
 
 from grainwright.inference.common.errors import InputError
-from grainwright.inference.images.alignment import ALIGN_REVISION
+from grainwright.inference.images.alignment import ALIGN_REVISIONS
 from grainwright.inference.images.imageio import read_text
 from grainwright.inference.images.normalization import Normalization
 from grainwright.inference.runtime.batch import denoise_files
@@ -51,7 +51,7 @@ def aligned_model(tmp_path_factory):
     payload = new_checkpoint("unet-stack", 1, normalization, hyper={"frames": 5, "levels": 2, "width": 4}, seed=3,
                              training_noise={"sigma_native": 40.0},
                              training_summary={"stack_axis": "T", "align_neighbours": "optical-flow",
-                                               "align_revision": ALIGN_REVISION})
+                                               "align_revision": ALIGN_REVISIONS["optical-flow"]})
     export_checkpoint(save_checkpoint(folder / "stack.pt", payload), folder / "stack.onnx", threads=1)
     return folder / "stack.onnx"
 
@@ -120,12 +120,28 @@ def test_an_aligned_model_records_it_and_the_runtime_aligns(aligned_model, stack
     instead of feeding it other windows than the model was trained on); unaligned models stay at version 2."""
     metadata = read_model_metadata(aligned_model)
     assert metadata["stack"]["align_neighbours"] == "optical-flow" and metadata["format_version"] == 4
-    assert metadata["stack"]["align_revision"] == ALIGN_REVISION == 3
+    assert metadata["stack"]["align_revision"] == ALIGN_REVISIONS["optical-flow"] == 3
     assert read_model_metadata(stack_model)["stack"]["align_neighbours"] == "none"
     assert "align_revision" not in read_model_metadata(stack_model)["stack"]
     assert "neighbours aligned: optical-flow (revision 3)" in render_metadata(metadata)
     assert OnnxDenoiser(aligned_model, threads=1).spec.stack_alignment == "optical-flow"
     assert OnnxDenoiser(stack_model, threads=1).spec.stack_alignment == "none"
+
+
+def _assert_windows_chunks_and_whole_agree(denoiser, stack, aligned):
+    """The 7-frame ``stack`` denoised whole equals one untiled ONNX call per reflected 5-frame window whose
+    neighbours are ``aligned(centre, neighbour)``, differs from the unaligned windows' result, and any split into
+    chunks gives the whole-stack result."""
+    whole = denoise_stack_array(denoiser, stack)
+    reference = [denoiser.run_whole(np.concatenate([aligned(index, p) for p in window_indices(index, 7, 5)], axis=2))
+                 for index in range(7)]
+    assert np.max(np.abs(whole - np.stack(reference))) / 4095.0 <= 1e-5
+    unaligned = np.stack([denoiser.run_whole(np.concatenate(list(stack[window_indices(i, 7, 5)]), axis=2))
+                          for i in range(7)])
+    assert np.max(np.abs(whole - unaligned)) / 4095.0 > 1e-3
+    for bounds in ([0, 1, 5, 7], [0, 3, 7], [0, 2, 4, 6, 7]):
+        chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
+        assert np.array_equal(np.concatenate(chunks), whole)
 
 
 def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned_model):
@@ -142,7 +158,6 @@ def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned
     denoiser = OnnxDenoiser(aligned_model, threads=1, tile=16, batch=3)
     base = ndimage.gaussian_filter(np.random.default_rng(4).uniform(0, 4095, (40, 48)), 3) * 3
     stack = np.stack([np.roll(base, 2 * i, axis=1) for i in range(7)])[..., None].astype(np.float32)
-    whole = denoise_stack_array(denoiser, stack)
 
     def aligned(centre, neighbour):
         if neighbour == centre:
@@ -153,15 +168,7 @@ def test_aligned_chunked_equals_whole_equals_one_call_per_aligned_window(aligned
             flow = compose_flows(flow, neighbour_flow(stack[middle], stack[neighbour]))
         return warp_onto_centre(stack[neighbour], flow)
 
-    reference = [denoiser.run_whole(np.concatenate([aligned(index, p) for p in window_indices(index, 7, 5)], axis=2))
-                 for index in range(7)]
-    assert np.max(np.abs(whole - np.stack(reference))) / 4095.0 <= 1e-5
-    unaligned = np.stack([denoiser.run_whole(np.concatenate(list(stack[window_indices(i, 7, 5)]), axis=2))
-                          for i in range(7)])
-    assert np.max(np.abs(whole - unaligned)) / 4095.0 > 1e-3
-    for bounds in ([0, 1, 5, 7], [0, 3, 7], [0, 2, 4, 6, 7]):
-        chunks = [denoise_stack_array(denoiser, stack, start, stop) for start, stop in zip(bounds, bounds[1:])]
-        assert np.array_equal(np.concatenate(chunks), whole)
+    _assert_windows_chunks_and_whole_agree(denoiser, stack, aligned)
 
 
 @pytest.mark.parametrize(("revision", "version", "remedy"), [
@@ -191,6 +198,63 @@ def test_a_model_trained_on_another_alignment_revision_is_refused_naming_the_fil
     assert f"neighbours aligned: optical-flow (revision {revision or 1})" in render_metadata(metadata)
     with pytest.raises(InputError, match=rf"other\.onnx.*revision {revision or 1} of the optical-flow alignment; this "
                                          rf"grainwright computes revision 3.*{remedy}") as refused:
+        OnnxDenoiser(model, threads=1)
+    assert "\n" not in str(refused.value)
+
+
+def _shift_aligned_model(folder, revision=None):
+    from grainwright.models.checkpoint import new_checkpoint, save_checkpoint
+    from grainwright.models.export import export_checkpoint
+
+    summary = {"stack_axis": "T", "align_neighbours": "dominant-shifts",
+               "align_revision": revision or ALIGN_REVISIONS["dominant-shifts"]}
+    payload = new_checkpoint("unet-stack", 1, Normalization("uint16", 12, 0.0, 4095.0, 1),
+                             hyper={"frames": 5, "levels": 2, "width": 4}, seed=3, training_summary=summary)
+    export_checkpoint(save_checkpoint(folder / "shifts.pt", payload), folder / "shifts.onnx", threads=1)
+    return folder / "shifts.onnx"
+
+
+def test_a_model_aligned_by_dominant_shifts_runs_chunked_as_whole_as_one_call_per_window(tmp_path):
+    """``align_neighbours = "dominant-shifts"``: written at format version 5 (an older runtime refuses the file by
+    its version instead of feeding it windows aligned otherwise); the runtime moves each neighbour by the whole-pixel
+    motion between consecutive frames (``pair_shifts``, composed for the frames two away), so the result equals one
+    untiled ONNX call per such window, any split into chunks gives the whole-stack result, and it differs from the
+    unaligned windows' (the frames are copies of a smooth random image moved 2 pixels per frame)."""
+    from scipy import ndimage
+
+    from grainwright.inference.images.shift_alignment import (PreparedFrame, compose_shifts, pair_shifts,
+                                                               warp_by_shifts)
+
+    model = _shift_aligned_model(tmp_path)
+    metadata = read_model_metadata(model)
+    assert metadata["format_version"] == 5 and metadata["stack"]["align_neighbours"] == "dominant-shifts"
+    assert "neighbours aligned: dominant-shifts (revision 1)" in render_metadata(metadata)
+    denoiser = OnnxDenoiser(model, threads=1, tile=16, batch=3)
+    rng = np.random.default_rng(4)
+    base = ndimage.gaussian_filter(rng.uniform(0, 4095, (40, 48)), 2) * 3
+    stack = np.stack([np.roll(base, 2 * i, axis=1) + rng.normal(0, 20, base.shape)
+                      for i in range(7)])[..., None].astype(np.float32)
+
+    def motion(start, end):  # each pair searched from its lower index, as the runtime does
+        forward, backward = pair_shifts(PreparedFrame(stack[min(start, end)]), PreparedFrame(stack[max(start, end)]))
+        return forward if start < end else backward
+
+    def aligned(centre, neighbour):
+        if neighbour == centre:
+            return stack[centre]
+        middle = centre + np.sign(neighbour - centre)
+        flow = motion(centre, middle)
+        if middle != neighbour:
+            flow = compose_shifts(flow, motion(middle, neighbour))
+        return warp_by_shifts(stack[neighbour], flow)
+
+    _assert_windows_chunks_and_whole_agree(denoiser, stack, aligned)
+
+
+def test_a_later_revision_of_the_dominant_shifts_is_refused_naming_the_file(tmp_path):
+    model = _shift_aligned_model(tmp_path, revision=2)
+    with pytest.raises(InputError, match=r"shifts\.onnx.*revision 2 of the dominant-shifts alignment; this grainwright "
+                                         r"computes revision 1.*update grainwright") as refused:
         OnnxDenoiser(model, threads=1)
     assert "\n" not in str(refused.value)
 

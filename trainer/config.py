@@ -61,7 +61,10 @@ SCHEMA: dict[str, dict[str, Key] | Key] = {
                                 "the centre frame before the model sees it (dense optical flow estimated on the "
                                 "noisy frames, iterative Lucas-Kanade; motion compensation as in Ehret et al., CVPR "
                                 "2019), in training and at run time (recorded in the exported model); for scenes "
-                                "that move. `none` = the frames as they are (volumes, still scenes).",
+                                "that move. `dominant-shifts` = each neighbour moved by whole pixels, each pixel "
+                                "taking one of a few translations found by phase correlation: for rigid motion "
+                                "(a conveyor, a stage), a small part of the optical flow's cost. `none` = the "
+                                "frames as they are (volumes, still scenes).",
                                 choices=ALIGNMENTS),
     },
     "start": {

@@ -201,7 +201,7 @@ def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int
         positions = np.where(positions > count - 1, period - positions, positions)
         return np.concatenate(aligned_frames(frames, positions, alignment, warped), axis=2)
 
-    warped = AlignedNeighbours(frames, stride) if alignment != "none" else None
+    warped = AlignedNeighbours(frames, stride, alignment) if alignment != "none" else None
 
     return [{"noisy": window(i), "noisy_b": window(i + stack_frames)} for i in range(count - stack_frames)]
 

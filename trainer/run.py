@@ -25,7 +25,7 @@ from grainwright.inference.common.errors import (
     GrainwrightError,
     InputError,
 )
-from grainwright.inference.images.alignment import ALIGN_REVISION, recorded_revision
+from grainwright.inference.images.alignment import ALIGN_REVISIONS, recorded_revision
 from grainwright.models.checkpoint import RunFolder, data_fingerprint, load_checkpoint
 from grainwright.models.registry import build_model, hyper_defaults
 from grainwright.trainer.config import load_config, validate
@@ -648,7 +648,7 @@ def prepare(config: dict[str, Any], announce: Callable[[str], None] = print,
         summary["stack_axis"] = training_stack_axis(config, layout)
         summary["align_neighbours"] = config["model"]["align_neighbours"]
         if summary["align_neighbours"] != "none":
-            summary["align_revision"] = ALIGN_REVISION
+            summary["align_revision"] = ALIGN_REVISIONS[summary["align_neighbours"]]
     if name == "neighbor2neighbor-stack":
         summary["stack_pairing"] = config["neighbor2neighbor"]["stack_pairing"]
     if scheme_class(name).default_alpha is not None:
@@ -758,11 +758,13 @@ def train_command(config_path: str | None, data: str | None, *, scheme: str | No
         state = load_checkpoint(run.last)
         if "step" not in state:
             raise InputError(run.last, "holds no resume state (optimizer, rng, step)")
-        revision = recorded_revision(state.get("training_summary") or {})
-        if revision not in (None, ALIGN_REVISION):
-            raise InputError(run.last, f"was trained on neighbours aligned by revision {revision} of the optical-flow "
-                             f"alignment; this grainwright computes revision {ALIGN_REVISION}, and training on "
-                             "would mix the two: start a new run")
+        trained = state.get("training_summary") or {}
+        revision = recorded_revision(trained)
+        if revision is not None and revision != ALIGN_REVISIONS.get(trained["align_neighbours"]):
+            alignment = trained["align_neighbours"]
+            raise InputError(run.last, f"was trained on neighbours aligned by revision {revision} of the {alignment} "
+                             f"alignment; this grainwright computes revision {ALIGN_REVISIONS.get(alignment)}, and "
+                             "training on would mix the two: start a new run")
     else:
         if data is not None:
             assignments.append(f'data.folder="{Path(data).resolve().as_posix()}"')

@@ -41,7 +41,7 @@ filters and 0.2 s in the rest. The closed-form solver, 5 iterations at full reso
 (revision 2) take that to about a quarter, for the same or better quality at 3,000 fixed steps
 on the conveyor sequence (seeds 0, 1, 2; docs/benchmarks.md, where the variants tried are recorded).
 
-Flow reuse (revision 3, ``ALIGN_REVISION``). A K = 5 window needs the flow from its centre frame t to t - 2, t - 1,
+Flow reuse (revision 3, ``ALIGN_REVISIONS``). A K = 5 window needs the flow from its centre frame t to t - 2, t - 1,
 t + 1 and t + 2, and the next window needs the flow from t + 1 to t + 2 again. :class:`AlignedNeighbours` therefore
 estimates the flow (:func:`neighbour_flow`) only between consecutive frames (frames one window spacing apart:
 consecutive at run time, ``stride`` apart in training windows that skip frames), each ordered pair once, keeps it
@@ -100,7 +100,11 @@ import numpy as np
 from scipy import ndimage
 from skimage.transform import pyramid_reduce, warp
 
-ALIGNMENTS = ("none", "optical-flow")  # the values of model.align_neighbours and of the exported "stack" entry
+from grainwright.inference.images.shift_alignment import DominantShifts
+
+# The values of model.align_neighbours and of the exported "stack" entry: "dominant-shifts" is the cheaper
+# alignment of grainwright.inference.images.shift_alignment.
+ALIGNMENTS = ("none", "optical-flow", "dominant-shifts")
 FLOW_SMOOTHING = 1.0  # pixels; standard deviation of the Gaussian both frames are smoothed with for the flow only
 FLOW_RADIUS = 7  # pixels; the radius of the Lucas-Kanade window (scikit-image's default), measured best of 3 / 7 / 11
 COARSE_WARPS = 10  # Lucas-Kanade iterations on each coarser pyramid level (scikit-image's default)
@@ -113,8 +117,8 @@ MEDIAN_OFFSETS = (-7, -4, 0, 4, 7)
 # "align_revision"): 1 was scikit-image's optical_flow_ilk with 10 iterations at every level and a dense 15 x 15
 # median, 2 this module's solver with FINEST_WARPS and the sampled median, the flow to every neighbour estimated
 # directly; 3 estimates it only between frames one window spacing apart and composes those steps for the neighbours
-# further away (AlignedNeighbours). A runtime refuses another revision.
-ALIGN_REVISION = 3
+# further away (AlignedNeighbours). A runtime refuses another revision. "dominant-shifts" has its own revisions.
+ALIGN_REVISIONS = {"optical-flow": 3, "dominant-shifts": 1}
 STILL_MARGIN = 0.1  # the zero-motion test's margin: zero motion kept where its residual is within 10 % of the flow's
 WARP_ORDER = 3  # the spline order of the resampling: cubic (measured against bilinear, order 1, docs/benchmarks.md)
 
@@ -282,7 +286,7 @@ def check_alignment(value: str, where: str) -> str:
 def aligned_frames(frames: np.ndarray | list[np.ndarray], positions: np.ndarray, alignment: str,
                    warped: Callable[[int, int], np.ndarray] | None = None) -> list[np.ndarray]:
     """The frames ``positions`` (a window's stack indices, centre in the middle) of ``frames``, each ``(H, W, C)``,
-    with every neighbour aligned to the centre frame when ``alignment`` is ``"optical-flow"``.
+    with every neighbour aligned to the centre frame when ``alignment`` is not ``"none"``.
 
     ``warped(centre_index, neighbour_index)``, when given, returns the aligned neighbour instead (an
     :class:`AlignedNeighbours` kept across windows, so that each step's flow is estimated once; without it, one for
@@ -293,7 +297,7 @@ def aligned_frames(frames: np.ndarray | list[np.ndarray], positions: np.ndarray,
     centre = int(positions[len(positions) // 2])
     if alignment == "none":
         return [frames[int(position)] for position in positions]
-    fetch = warped or AlignedNeighbours(frames)  # a window reflected at a stack's end holds a neighbour twice
+    fetch = warped or AlignedNeighbours(frames, alignment=alignment)  # a reflected window holds a neighbour twice
     return [frames[centre] if int(position) == centre else fetch(centre, int(position)) for position in positions]
 
 
@@ -317,42 +321,67 @@ def flow_steps(centre: int, neighbour: int, stride: int = 1) -> list[tuple[int, 
     return list(zip(stops, stops[1:]))
 
 
+class OpticalFlowSteps:
+    """The steps of :class:`AlignedNeighbours` by optical flow: :func:`neighbour_flow` between two frames,
+    :func:`compose_flows`, :func:`warp_onto_centre`."""
+
+    def __init__(self, frames: np.ndarray | dict[int, np.ndarray]):
+        self.frames = frames
+
+    def step(self, start: int, end: int) -> np.ndarray:
+        return neighbour_flow(self.frames[start], self.frames[end])
+
+    compose = staticmethod(compose_flows)
+
+    def warp(self, neighbour: int, flow: np.ndarray) -> np.ndarray:
+        return warp_onto_centre(self.frames[neighbour], flow)
+
+    def forget(self, kept: set[int]) -> None:
+        """Nothing of its own to drop: the estimates are kept by :class:`AlignedNeighbours`."""
+
+
 class AlignedNeighbours:
     """The neighbours of a stack's frames (an ``(N, H, W, C)`` array, or frames ``(H, W, C)`` by index) aligned to
-    their centre frames, float32. Flow reuse: the flow is estimated (:func:`neighbour_flow`) only between frames
-    ``stride`` apart, the spacing of a window's frames (consecutive frames at run time), each such step once in each
-    direction and kept while it is needed; the flow to a neighbour further away is those steps composed
-    (:func:`compose_flows`, :func:`flow_steps`), so a K = 5 window costs two flow estimates per output frame
-    instead of four. Every value depends only on the frames it is computed from, never on which window asked first,
-    so a stack cut into chunks gives the same windows as the whole stack."""
+    their centre frames, float32, by ``alignment`` (``"optical-flow"``: :class:`OpticalFlowSteps`;
+    ``"dominant-shifts"``: :class:`grainwright.inference.images.shift_alignment.DominantShifts`). Flow reuse: the
+    motion is estimated only between frames ``stride`` apart, the spacing of a window's frames (consecutive frames
+    at run time), each such step once in each direction and kept while it is needed; the motion to a neighbour
+    further away is those steps composed (:func:`flow_steps`), so a K = 5 window costs two estimates per output
+    frame instead of four. Every value depends only on the frames it is computed from, never on which window asked
+    first, so a stack cut into chunks gives the same windows as the whole stack."""
 
-    def __init__(self, frames: np.ndarray | dict[int, np.ndarray], stride: int = 1):
-        self.frames = frames
+    def __init__(self, frames: np.ndarray | dict[int, np.ndarray], stride: int = 1,
+                 alignment: str = "optical-flow"):
+        check_alignment(alignment, "the neighbour alignment")
+        if alignment == "none":
+            raise ValueError("AlignedNeighbours needs an alignment other than none")
+        self.method = OpticalFlowSteps(frames) if alignment == "optical-flow" else DominantShifts(frames)
         self.stride = stride
-        self._steps: dict[tuple[int, int], np.ndarray] = {}  # (from, to): flow estimated between the two frames
-        self._flows: dict[tuple[int, int], np.ndarray] = {}  # (centre, neighbour): the composed flow
+        self._steps: dict[tuple[int, int], np.ndarray] = {}  # (from, to): motion estimated between the two frames
+        self._flows: dict[tuple[int, int], np.ndarray] = {}  # (centre, neighbour): the composed motion
         self._warped: dict[tuple[int, int], np.ndarray] = {}
 
     def step(self, start: int, end: int) -> np.ndarray:
-        """The flow estimated from frame ``start`` to frame ``end`` (each ordered pair once)."""
+        """The motion estimated from frame ``start`` to frame ``end`` (each ordered pair once)."""
         if (start, end) not in self._steps:
-            self._steps[start, end] = neighbour_flow(self.frames[start], self.frames[end])
+            self._steps[start, end] = self.method.step(start, end)
         return self._steps[start, end]
 
     def flow(self, centre: int, neighbour: int) -> np.ndarray:
-        """The flow from frame ``centre`` to frame ``neighbour``: one step, or the steps towards it composed, the
-        flow to the frame before it first (``flow(c, n) = compose(flow(c, previous), step(previous, n))``)."""
+        """The motion from frame ``centre`` to frame ``neighbour``: one step, or the steps towards it composed, the
+        motion to the frame before it first (``flow(c, n) = compose(flow(c, previous), step(previous, n))``)."""
         if (centre, neighbour) not in self._flows:
             steps = flow_steps(centre, neighbour, self.stride)
             previous, _ = steps[-1]
             self._flows[centre, neighbour] = (self.step(centre, neighbour) if len(steps) == 1 else
-                                              compose_flows(self.flow(centre, previous), self.step(*steps[-1])))
+                                              self.method.compose(self.flow(centre, previous),
+                                                                  self.step(*steps[-1])))
         return self._flows[centre, neighbour]
 
     def __call__(self, centre: int, neighbour: int) -> np.ndarray:
         key = (centre, neighbour)
         if key not in self._warped:
-            self._warped[key] = warp_onto_centre(self.frames[neighbour], self.flow(centre, neighbour))
+            self._warped[key] = self.method.warp(neighbour, self.flow(centre, neighbour))
         return self._warped[key]
 
     def forget(self, kept: set[int], centre: int) -> None:
@@ -363,3 +392,4 @@ class AlignedNeighbours:
         for table in (self._flows, self._warped):
             for key in [key for key in table if key[0] != centre]:
                 del table[key]
+        self.method.forget(kept)

@@ -24,10 +24,11 @@ METADATA_FORMAT = "grainwright-model"
 # its "align_revision" (2: the cheaper flow of grainwright.inference.images.alignment; a version-3 file was aligned
 # by revision 1, and a runtime of version 3 would align a version-4 model's windows the old way). Revision 3 (the
 # flow reused between output frames) stays at version 4: every version-4 runtime checks the revision and refuses
-# another one by itself. Each file is
+# another one by itself. Version 5 added the "align_neighbours" value "dominant-shifts" (the whole-pixel shifts of
+# grainwright.inference.images.shift_alignment). Each file is
 # written at the lowest version that describes it, so older runtimes keep reading what they can run and refuse
 # only the rest.
-METADATA_VERSION = 4
+METADATA_VERSION = 5
 # How a noise-map model's "noise_sigma" input is made at run time (the "noise_map" entry's "source"): the training
 # noise model's level at every pixel, or one level per image estimated from the image.
 NOISE_MAP_SOURCES = ("noise-model", "estimate")
@@ -53,6 +54,8 @@ def metadata_version(stack: dict[str, Any] | None) -> int:
     revision = recorded_revision(stack)
     if revision is None:
         return 2
+    if stack["align_neighbours"] == "dominant-shifts":
+        return 5
     return 4 if revision >= 2 else 3
 
 

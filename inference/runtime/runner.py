@@ -24,7 +24,7 @@ import numpy as np
 import onnxruntime as ort
 
 from grainwright.inference.common.errors import ConfigError, InputError
-from grainwright.inference.images.alignment import ALIGN_REVISION, ALIGNMENTS, recorded_revision
+from grainwright.inference.images.alignment import ALIGN_REVISIONS, ALIGNMENTS, recorded_revision
 from grainwright.inference.noise.estimation import estimate_sigma
 from grainwright.inference.noise.models import NoiseModel, noise_from_dict
 from grainwright.inference.runtime.modelinfo import (
@@ -259,12 +259,13 @@ class OnnxDenoiser:
         if spec.stack_alignment not in ALIGNMENTS:
             raise InputError(self.path, f"unknown neighbour alignment {spec.stack_alignment!r} in the model's stack "
                              f"entry (this grainwright knows {', '.join(ALIGNMENTS)}); update grainwright")
-        if spec.stack_alignment != "none" and spec.stack_align_revision != ALIGN_REVISION:
-            remedy = ("update grainwright" if (spec.stack_align_revision or 1) > ALIGN_REVISION
+        current = ALIGN_REVISIONS.get(spec.stack_alignment)
+        if spec.stack_alignment != "none" and spec.stack_align_revision != current:
+            remedy = ("update grainwright" if (spec.stack_align_revision or 1) > current
                       else "train it again (docs/stacks-and-volumes.md)")
             raise InputError(self.path, f"was trained on neighbours aligned by revision {spec.stack_align_revision} of "
-                             f"the optical-flow alignment; this grainwright computes revision {ALIGN_REVISION}, which "
-                             f"the model has not seen: {remedy}")
+                             f"the {spec.stack_alignment} alignment; this grainwright computes revision {current}, "
+                             f"which the model has not seen: {remedy}")
         inputs = {node.name for node in self.session.get_inputs()}
         if "image" not in inputs:
             raise InputError(self.path, f"model has no input named 'image' (inputs: {sorted(inputs)})")

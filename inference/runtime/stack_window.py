@@ -58,7 +58,7 @@ def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, 
     """
     stop = count if stop is None else stop
     held: dict[int, np.ndarray] = {}
-    aligned = AlignedNeighbours(held) if alignment != "none" else None  # steps between frames reused while held
+    aligned = AlignedNeighbours(held, alignment=alignment) if alignment != "none" else None  # steps reused while held
     for index in range(start, stop):
         wanted = window_indices(index, count, frames)
         for key in [key for key in held if key not in wanted]:
