@@ -239,18 +239,18 @@ SEQUENCE_SCHEMES = {  # the schemes of the K-frame and the single-frame model, b
 # the conveyor sequence (alpha 0.5: 0.3 dB above its default 0.3 and 0.1 dB above 1.0; docs/benchmarks.md), so
 # that the K-frame model (at its own default, 1.0) meets the best single-frame model found. `--set` overrides it.
 SINGLE_FRAME_SETTINGS = {"recorrupted": ("recorrupted.alpha=0.5",), "neighbor2neighbor": ()}
-# The K-frame model's settings, by family: `recorrupted-stack` with its neighbours aligned to the centre frame by
-# optical flow (the lane moves; at 3,000 steps on seed 0 it kept 0.83 of the lane cracks' contrast against 0.70
-# unaligned and 0.78 for the single-frame model; with the flow's zero-motion test and median filter and the cubic
-# warp 0.90 / 0.75 / 0.67 on seeds 0 / 1 / 2; docs/benchmarks.md). `neighbor2neighbor-stack` was not measured
-# with alignment and stays without. The alignment itself is the bench's --sequence-alignment.
+# The K-frame model's settings, by family: `recorrupted-stack` with its neighbours aligned to the centre frame (the
+# lane moves; by optical flow, at 3,000 steps on seed 0 it kept 0.83 of the lane cracks' contrast against 0.70
+# unaligned and 0.78 for the single-frame model; by dominant shifts, at 10 minutes, 0.84 against 0.73 in the mean of
+# 3 seeds; docs/benchmarks.md), by the bench's --sequence-alignment. `neighbor2neighbor-stack` was not measured
+# with alignment and stays without.
 SEQUENCE_STACK_SETTINGS = {"recorrupted": ("model.align_neighbours={alignment}",), "neighbor2neighbor": ()}
 
 
 def sequence_quality(folder: Path, *, frames: int, minutes: float, seed: int, threads: int, width: int,
                      bm3d_frames_scored: int, log: Callable[[str], None], steps: int = 0,
                      shape: tuple[int, int] = (192, 256), settings: tuple[str, ...] = (),
-                     family: str = "recorrupted", alignment: str = "optical-flow") -> dict[str, Any]:
+                     family: str = "recorrupted", alignment: str = "dominant-shifts") -> dict[str, Any]:
     """The conveyor sequence of ``seed``: the K-frame and the single-frame model of one scheme ``family``
     (``SEQUENCE_SCHEMES``) trained on its noisy frames, the K-frame average and per-frame BM3D, scored on the
     clean frames. ``alignment``: the K-frame model's ``model.align_neighbours`` where its family aligns."""

@@ -12,6 +12,7 @@ from skimage import data as sample_images
 from grainwright.inference.images.alignment import AlignedNeighbours
 from grainwright.inference.images.shift_alignment import (
     PreparedFrame,
+    ShiftField,
     candidate_shifts,
     compose_shifts,
     pair_shifts,
@@ -43,12 +44,12 @@ def test_a_known_translation_of_a_sample_image_is_found_and_undone_exactly(shift
     noisy_centre, noisy_neighbour = (image + rng.normal(0, 12, image.shape) for image in (centre, neighbour))
     prepared = PreparedFrame(noisy_centre[..., None]), PreparedFrame(noisy_neighbour[..., None])
     assert shift in candidate_shifts(*prepared)
-    forward, backward = pair_shifts(*prepared)
+    forward, backward = (field.as_flow() for field in pair_shifts(*prepared))
     inner = (slice(16, -16), slice(16, -16))
     taken = (forward[0] == shift[0]) & (forward[1] == shift[1])
     textured = ndimage.generic_filter(centre, np.std, 9) > 20  # DN; 256-level image
     assert np.mean(taken[inner][textured[inner]]) > 0.95
-    warped = warp_by_shifts(neighbour[..., None], forward)[..., 0]
+    warped = warp_by_shifts(neighbour[..., None], pair_shifts(*prepared)[0])[..., 0]
     assert np.array_equal(warped[inner][taken[inner]], centre[inner][taken[inner]])
     back_taken = (backward[0] == -shift[0]) & (backward[1] == -shift[1])
     assert np.mean(back_taken[inner][_moved(textured, shift)[inner]]) > 0.95
@@ -64,12 +65,13 @@ def test_two_motions_are_found_and_each_pixel_takes_its_own():
     top, bottom = sequence.motion["lane_rows"]
     centre, neighbour = PreparedFrame(noisy[1]), PreparedFrame(noisy[2])
     assert candidate_shifts(centre, neighbour)[:2] == [(0, 0), (0, 3)]
-    forward, _ = pair_shifts(centre, neighbour)
+    field, _ = pair_shifts(centre, neighbour)
+    forward = field.as_flow()
     visible = np.abs(clean[2] - clean[1])[..., 0] > 60  # DN: where the motion changes the clean pixel visibly
     lane = (slice(top + 8, bottom - 8), slice(8, -8))
     assert np.mean(forward[1][lane][visible[lane]] == 3) > 0.9 and np.all(forward[0][lane] == 0)
     assert np.mean(forward[:, :top - 8] == 0) > 0.97 and np.mean(forward[:, bottom + 8:] == 0) > 0.97
-    warped = warp_by_shifts(clean[2], forward)[..., 0]
+    warped = warp_by_shifts(clean[2], field)[..., 0]
     before, after = (float(np.sqrt(np.mean((values - clean[1, ..., 0])[top:bottom] ** 2)))
                      for values in (clean[2, ..., 0], warped))
     assert after < 0.2 * before, (before, after)
@@ -91,25 +93,32 @@ def test_composing_whole_pixel_motions_is_exact():
     """``first`` moves the left half by (0, 2) and the right half by (1, 0); ``second`` moves everything by
     (0, -1) except the bottom row: the composition at each pixel is ``first(x) + second(x + first(x))``, worked
     here by hand, edges clipped."""
-    first = np.zeros((2, 4, 6), np.int16)
-    first[1, :, :3] = 2
-    first[0, :, 3:] = 1
-    second = np.zeros((2, 4, 6), np.int16)
-    second[1, :3] = -1
-    both = compose_shifts(first, second)
+    left = np.zeros((4, 6), np.int8)
+    left[:, 3:] = 1
+    first = ShiftField(left, np.array([[0, 2], [1, 0]]))
+    bottom = np.zeros((4, 6), np.int8)
+    bottom[3] = 1
+    second = ShiftField(bottom, np.array([[0, -1], [0, 0]]))
+    both = compose_shifts(first, second).as_flow()
     assert np.array_equal(both[1, :3, :3], np.full((3, 3), 1))  # (0, 2) then (0, -1) on rows 0..2
     assert np.array_equal(both[1, 3, :3], np.full(3, 2))  # the bottom row does not move in the second step
-    assert np.array_equal(both[0, :3, 3:], np.ones((3, 3)))  # (1, 0) then a row that moves by (0, -1)...
-    assert np.array_equal(both[1, :2, 3:], np.full((2, 3), -1))  # ...for rows 0 and 1 (they land on rows 1, 2)
-    assert np.array_equal(both[1, 2:, 3:], np.zeros((2, 3)))  # rows 2, 3 land on row 3 (bottom row, still)
+    assert np.array_equal(both[0, :, :3], np.zeros((4, 3)))
+    assert np.array_equal(both[0, :, 3:], np.ones((4, 3)))  # (1, 0) then...
+    assert np.array_equal(both[1, :2, 3:], np.full((2, 3), -1))  # ...rows 0 and 1 land on rows 1, 2: (0, -1)
+    assert np.array_equal(both[1, 2:, 3:], np.zeros((2, 3)))  # rows 2, 3 land on row 3 (clipped): still
 
 
-def test_the_warp_repeats_the_edge_beyond_the_frame():
+def test_the_warp_repeats_the_edge_beyond_the_frame_and_equals_the_dense_flow_lookup():
+    """Reference: the dense lookup ``frame[clip(y + dy), clip(x + dx)]`` with numpy indexing."""
     frame = np.arange(12, dtype=np.float32).reshape(3, 4, 1)
-    flow = np.zeros((2, 3, 4), np.int16)
-    flow[1] = 3
-    warped = warp_by_shifts(frame, flow)[..., 0]
-    assert np.array_equal(warped, np.repeat(frame[:, 3:4, 0], 4, axis=1))
+    right = ShiftField(np.zeros((3, 4), np.int8), np.array([[0, 3]]))
+    assert np.array_equal(warp_by_shifts(frame, right)[..., 0], np.repeat(frame[:, 3:4, 0], 4, axis=1))
+    labels = np.random.default_rng(2).integers(0, 3, (3, 4)).astype(np.int8)
+    field = ShiftField(labels, np.array([[0, 0], [-2, 1], [1, -5]]))
+    flow = field.as_flow()
+    rows = np.clip(np.arange(3)[:, None] + flow[0], 0, 2)
+    cols = np.clip(np.arange(4)[None, :] + flow[1], 0, 3)
+    assert np.array_equal(warp_by_shifts(frame, field)[..., 0], frame[rows, cols, 0])
 
 
 def test_the_motion_does_not_depend_on_the_units_of_the_pixel_values():
@@ -117,7 +126,7 @@ def test_the_motion_does_not_depend_on_the_units_of_the_pixel_values():
     frames = sequence.noisy.astype(np.float32)[..., None]
     native = pair_shifts(PreparedFrame(frames[0]), PreparedFrame(frames[1]))
     scaled = pair_shifts(PreparedFrame(frames[0] / 4095 * 2 - 0.3), PreparedFrame(frames[1] / 4095 * 2 - 0.3))
-    assert all(np.array_equal(a, b) for a, b in zip(native, scaled))
+    assert all(np.array_equal(a.as_flow(), b.as_flow()) for a, b in zip(native, scaled))
 
 
 @pytest.mark.parametrize("shape", [(1, 1), (2, 3), (5, 7), (9, 4)])
@@ -156,8 +165,8 @@ def test_on_a_moving_scene_the_aligned_neighbour_carries_none_of_the_centre_fram
     aligned = AlignedNeighbours(clean + noise, alignment="dominant-shifts")
     moved = 0.0
     for neighbour in (1, 2, 4, 5):
-        flow = aligned.flow(3, neighbour)
-        moved += np.mean(np.any(flow != 0, axis=0)) / 4
-        carried = aligned(3, neighbour) - warp_by_shifts(clean[neighbour], flow)
+        field = aligned.flow(3, neighbour)
+        moved += np.mean(np.any(field.as_flow() != 0, axis=0)) / 4
+        carried = aligned(3, neighbour) - warp_by_shifts(clean[neighbour], field)
         assert abs(np.corrcoef(carried.ravel(), noise[3].ravel())[0, 1]) < 0.02
     assert moved > 0.2  # the lane (40 % of the frame) did move

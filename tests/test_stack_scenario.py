@@ -105,7 +105,7 @@ def test_bench_sequence_quality_computes_every_row(tmp_path, family):
                                log=lambda message: None, steps=2, shape=(64, 96), family=family,
                                settings=(f'noise.file="{noise}"',))
     assert figures["trained"]["unet-stack"]["steps"] == 2 and figures["trained"]["unet-stack"]["stack_axis"] == "T"
-    assert figures["trained"]["unet-stack"]["align_neighbours"] == ("optical-flow" if family == "recorrupted"
+    assert figures["trained"]["unet-stack"]["align_neighbours"] == ("dominant-shifts" if family == "recorrupted"
                                                                      else "none")
     assert [figures["trained"][name]["scheme"] for name in ("unet-stack", "unet-small")] == list(
         SEQUENCE_SCHEMES[family])
@@ -134,5 +134,5 @@ def test_bench_runtime_times_the_aligned_models_beside_the_plain_one(tmp_path):
     assert figures["aligned_ratio"]["optical-flow"] > 1.0, figures
     assert set(figures["aligned_over_single"]) == {"optical-flow", "dominant-shifts"}
     band = moving_band_stack(4, 64)
-    steps = AlignedNeighbours(band, alignment="dominant-shifts").step(1, 2)
+    steps = AlignedNeighbours(band, alignment="dominant-shifts").step(1, 2).as_flow()
     assert np.all(steps[:, 64 // 3 + 8:2 * 64 // 3 - 8, 8:-8] == np.array([0, 3])[:, None, None])

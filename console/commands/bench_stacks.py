@@ -22,9 +22,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--sequence-schemes", choices=("recorrupted", "neighbor2neighbor"), default="recorrupted",
                         help="training schemes of the two sequence models: recorrupted-stack and recorrupted, or "
                         "neighbor2neighbor-stack and neighbor2neighbor (default recorrupted)")
-    parser.add_argument("--sequence-alignment", choices=("optical-flow", "dominant-shifts"), default="optical-flow",
+    parser.add_argument("--sequence-alignment", choices=("optical-flow", "dominant-shifts"), default="dominant-shifts",
                         help="how the recorrupted K-frame model aligns its neighbours on the sequence "
-                        "(model.align_neighbours; default optical-flow)")
+                        "(model.align_neighbours; default dominant-shifts)")
     parser.add_argument("--sequence-size", type=int, nargs=2, default=[192, 256], metavar=("H", "W"),
                         help="frame size of the generated sequence (pixels, default 192 256)")
     parser.add_argument("--set", action="append", default=[], metavar="KEY=VALUE",
