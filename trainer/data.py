@@ -188,10 +188,10 @@ def stack_windows(path: Path, frames: np.ndarray, stack_frames: int, stride: int
     overlap, so the centre of one is a frame outside the other (Noise2Noise across frames), and every frame is a
     centre. ``stride`` s takes every s-th frame (``i - s r .. i + s r``): a scheme that halves the frames in x and y
     (``neighbor2neighbor-stack``) takes s = 2, so that the motion between neighbouring frames of the window, in
-    its half-size pixels, is what the model meets between consecutive frames at full size. ``alignment``
-    ``"optical-flow"`` warps each window's neighbours onto its centre frame
-    (:mod:`grainwright.inference.images.alignment`, the function the runtime uses), each frame pair's flow computed
-    once on the whole frames."""
+    its half-size pixels, is what the model meets between consecutive frames at full size. An ``alignment`` other
+    than ``"none"`` (``"optical-flow"``, ``"dominant-shifts"``) moves each window's neighbours onto its centre frame
+    (:mod:`grainwright.inference.images.alignment`, the function the runtime uses), each frame pair's motion
+    estimated once on the whole frames."""
     count = frames.shape[0]
     check_stack_length(path, count, stack_frames)
     period = 2 * (count - 1)  # mirror reflection about both end frames, repeated as numpy.pad(mode="reflect")

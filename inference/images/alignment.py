@@ -95,6 +95,7 @@ time warp with the same function, so the model learns on the inputs it meets.
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 from scipy import ndimage
@@ -357,17 +358,18 @@ class AlignedNeighbours:
             raise ValueError("AlignedNeighbours needs an alignment other than none")
         self.method = OpticalFlowSteps(frames) if alignment == "optical-flow" else DominantShifts(frames)
         self.stride = stride
-        self._steps: dict[tuple[int, int], np.ndarray] = {}  # (from, to): motion estimated between the two frames
-        self._flows: dict[tuple[int, int], np.ndarray] = {}  # (centre, neighbour): the composed motion
+        # A motion is whatever the steps object makes: a dense flow, or a ShiftField.
+        self._steps: dict[tuple[int, int], Any] = {}  # (from, to): motion estimated between the two frames
+        self._flows: dict[tuple[int, int], Any] = {}  # (centre, neighbour): the composed motion
         self._warped: dict[tuple[int, int], np.ndarray] = {}
 
-    def step(self, start: int, end: int) -> np.ndarray:
+    def step(self, start: int, end: int) -> Any:
         """The motion estimated from frame ``start`` to frame ``end`` (each ordered pair once)."""
         if (start, end) not in self._steps:
             self._steps[start, end] = self.method.step(start, end)
         return self._steps[start, end]
 
-    def flow(self, centre: int, neighbour: int) -> np.ndarray:
+    def flow(self, centre: int, neighbour: int) -> Any:
         """The motion from frame ``centre`` to frame ``neighbour``: one step, or the steps towards it composed, the
         motion to the frame before it first (``flow(c, n) = compose(flow(c, previous), step(previous, n))``)."""
         if (centre, neighbour) not in self._flows:

@@ -10,11 +10,12 @@ than a 200-slice one. Within a frame, the window of K frames is tiled in x and y
 (:mod:`grainwright.inference.runtime.tiling`); both rules are exact, so any split of a stack into chunks of
 output frames (each chunk reading the ``r`` frames beyond its ends) gives the same result as the whole stack.
 
-A model whose ``stack`` entry says ``align_neighbours = "optical-flow"`` gets each window's neighbours warped onto
-its centre frame first (:mod:`grainwright.inference.images.alignment`, the class the trainer uses): the flow is
-estimated between consecutive frames only, each such step kept while both its frames are in the window, and
-composed for the frames two away. A step depends on its two whole frames only, and a composed flow on its steps,
-so chunked still equals whole; the kept steps are bounded by the window, as the frames are.
+A model whose ``stack`` entry says ``align_neighbours = "optical-flow"`` or ``"dominant-shifts"`` gets each
+window's neighbours moved onto its centre frame first (:mod:`grainwright.inference.images.alignment`, the class the
+trainer uses): the motion is estimated between consecutive frames only, each such step kept while both its frames
+are in the window, and composed for the frames two away. A step depends on its two whole frames only, and a
+composed motion on its steps, so chunked still equals whole; the kept steps are bounded by the window, as the
+frames are.
 """
 from __future__ import annotations
 
@@ -51,7 +52,7 @@ def sliding_windows(read: Callable[[int], np.ndarray], count: int, frames: int, 
                     stop: int | None = None, alignment: str = "none") -> Iterator[tuple[int, np.ndarray]]:
     """Yield ``(i, window)`` for output frames ``start .. stop - 1``; ``window`` is ``(H, W, K * C)``, the K
     frames of :func:`window_indices` side by side along the channels (frame-major, as the models take them).
-    ``alignment`` ``"optical-flow"`` warps the neighbours onto the centre frame
+    An ``alignment`` other than ``"none"`` moves the neighbours onto the centre frame
     (:func:`grainwright.inference.images.alignment.aligned_frames`, as in training; float32 then).
 
     ``read(j)`` returns frame ``j`` as ``(H, W, C)``; each frame is read once and at most K are held.
