@@ -67,8 +67,7 @@ class PreparedFrame:
 
     def shifted(self, shift: tuple[int, int]) -> np.ndarray:
         """The frame sampled at ``x + shift`` (whole pixels, edge values beyond the frame)."""
-        rows, cols = self.image.shape
-        return self.padded[REACH + shift[0]:REACH + shift[0] + rows, REACH + shift[1]:REACH + shift[1] + cols]
+        return _moved(self.padded, REACH, shift, self.image.shape)
 
 
 def candidate_shifts(centre: PreparedFrame, neighbour: PreparedFrame) -> list[tuple[int, int]]:
@@ -130,9 +129,8 @@ def _field(blocks: np.ndarray, shifts: list[tuple[int, int]], shape: tuple[int, 
 def _shifted_costs(costs: np.ndarray, shift: tuple[int, int]) -> np.ndarray:
     """``costs`` (blocks) sampled at ``y - shift / 2`` blocks (rounded towards zero), edge values beyond."""
     rows, cols = (int(np.fix(value / 2)) for value in shift)
-    padded = np.pad(costs, ((abs(rows), abs(rows)), (abs(cols), abs(cols))), mode="edge")
-    top, left = abs(rows) - rows, abs(cols) - cols
-    return padded[top:top + costs.shape[0], left:left + costs.shape[1]]
+    reach = max(abs(rows), abs(cols))
+    return _moved(np.pad(costs, reach, mode="edge"), reach, (-rows, -cols), costs.shape)
 
 
 def pair_shifts(centre: PreparedFrame, neighbour: PreparedFrame) -> tuple[ShiftField, ShiftField]:
@@ -164,7 +162,7 @@ def _least(costs: np.ndarray) -> np.ndarray:
     return labels
 
 
-def _moved(padded: np.ndarray, reach: int, shift: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+def _moved(padded: np.ndarray, reach: int, shift: tuple[int, int] | np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     """The view of ``padded`` (an array padded by ``reach`` with edge values) sampled at ``x + shift``."""
     top, left = reach + int(shift[0]), reach + int(shift[1])
     return padded[top:top + shape[0], left:left + shape[1]]
@@ -197,10 +195,14 @@ def warp_by_shifts(neighbour: np.ndarray, field: ShiftField, padded: np.ndarray 
     """``neighbour`` ``(H, W, C)`` sampled at ``x + field(x)``, whole pixels, edge values beyond the frame
     (float32 in the neighbour's units). ``padded``: the neighbour already padded by the field's reach or more on
     each side (edge values), to save padding it again."""
-    reach = field.reach if padded is None else (padded.shape[0] - neighbour.shape[0]) // 2
     if padded is None:
-        padded = np.pad(np.asarray(neighbour, np.float32), ((reach, reach), (reach, reach), (0, 0)), mode="edge")
-    return _select(padded, reach, field)
+        padded = _padded_frame(neighbour, field.reach)
+    return _select(padded, (padded.shape[0] - neighbour.shape[0]) // 2, field)
+
+
+def _padded_frame(frame: np.ndarray, reach: int) -> np.ndarray:
+    """``frame`` ``(H, W, C)`` as float32, padded by ``reach`` pixels on each side with edge values."""
+    return np.pad(np.asarray(frame, np.float32), ((reach, reach), (reach, reach), (0, 0)), mode="edge")
 
 
 class DominantShifts:
@@ -235,9 +237,7 @@ class DominantShifts:
         frame = self.frames[neighbour]
         padded = self._padded.get(neighbour)
         if padded is None or (padded.shape[0] - frame.shape[0]) // 2 < field.reach:
-            reach = max(PADDING_STEPS * REACH, field.reach)
-            padded = np.pad(np.asarray(frame, np.float32), ((reach, reach), (reach, reach), (0, 0)), mode="edge")
-            self._padded[neighbour] = padded
+            padded = self._padded[neighbour] = _padded_frame(frame, max(PADDING_STEPS * REACH, field.reach))
         return warp_by_shifts(frame, field, padded)
 
     def forget(self, kept: set[int]) -> None:
